@@ -1,0 +1,70 @@
+// Bellman backups over a compiled Model: the hot loops every method shares.
+// Stateless functions over caller-owned arrays; thread-safe as long as callers do not share
+// output arrays. Terminal states always back up to 0.
+#ifndef MDP_SOLVER_INTERNAL_BELLMAN_H_
+#define MDP_SOLVER_INTERNAL_BELLMAN_H_
+
+#include <cmath>
+#include <limits>
+
+#include "solver/model.h"
+
+namespace mdp::internal {
+
+// Q value of row `r` against values `v`: r(s, a) + g * sum_s' p(s' | s, a) v(s').
+inline double RowQ(const Model& m, RowId r, const double* v) {
+  const int64_t* begin = m.row_entry_begin_data();
+  const StateId* next = m.entry_next_data();
+  const double* prob = m.entry_probability_data();
+  double acc = 0.0;
+  for (int64_t e = begin[r], end = begin[r + 1]; e < end; ++e) acc += prob[e] * v[next[e]];
+  return m.row_reward_data()[r] + m.discount() * acc;
+}
+
+// True iff `a` is strictly better than `b` under the objective.
+template <bool kMaximize>
+inline bool Better(double a, double b) {
+  return kMaximize ? a > b : a < b;
+}
+
+// Best Q at state s (0 for terminal states); sets *best_row to its first best row (or -1).
+template <bool kMaximize>
+inline double BackupState(const Model& m, StateId s, const double* v, RowId* best_row) {
+  const RowId* rb = m.state_row_begin_data();
+  RowId best = -1;
+  double best_q = 0.0;
+  for (RowId r = rb[s], end = rb[s + 1]; r < end; ++r) {
+    const double q = RowQ(m, r, v);
+    if (best < 0 || Better<kMaximize>(q, best_q)) {
+      best = r;
+      best_q = q;
+    }
+  }
+  if (best_row != nullptr) *best_row = best;
+  return best_q;
+}
+
+// out[s] = (T in)(s) for all s; returns sup |out - in|. `threads` as in SolveOptions.
+double SyncSweep(const Model& m, const double* in, double* out, int threads);
+// In-place Gauss-Seidel sweep over states in index order; returns sup of the changes.
+double GaussSeidelSweep(const Model& m, double* v);
+// out[s] = Q(s, rows[s], in) (0 where rows[s] < 0); returns sup |out - in|.
+double PolicySweep(const Model& m, const RowId* rows, const double* in, double* out, int threads);
+struct Improvement {
+  int64_t changed = 0;    // States whose row changed.
+  double residual = 0.0;  // sup |(T v)(s) - v(s)|.
+};
+// rows[s] = a best row of s against v (-1 for terminal). A state keeps its current row
+// unless another row is better by more than keep_slack * max(1, |best Q|), so that rounding
+// noise cannot make policy iteration cycle.
+Improvement ImprovePolicy(const Model& m, const double* v, double keep_slack, RowId* rows,
+                          int threads);
+// out = T in and rows = the first best row of each state; returns sup |out - in|.
+double GreedySweep(const Model& m, const double* in, double* out, RowId* rows, int threads);
+
+// Resolved thread count: 0 means all hardware threads.
+int ThreadCount(int threads);
+
+}  // namespace mdp::internal
+
+#endif  // MDP_SOLVER_INTERNAL_BELLMAN_H_

@@ -1,0 +1,73 @@
+// SolveOptions: how to solve a model. One plain struct with documented defaults, and a
+// table of the numeric fields' bounds (kSolveOptionBounds) used to check requests and to
+// describe the options in api-schema/. Values only; thread-safe to copy.
+#ifndef MDP_SOLVER_OPTIONS_H_
+#define MDP_SOLVER_OPTIONS_H_
+
+#include <array>
+#include <optional>
+#include <string_view>
+
+#include "solver/status.h"
+
+namespace mdp {
+
+enum class Method {
+  kValueIteration,           // Synchronous (Jacobi) value iteration.
+  kGaussSeidel,              // In-place value iteration, states in index order.
+  kPolicyIteration,          // Exact evaluation + greedy improvement until stable.
+  kModifiedPolicyIteration,  // `evaluation_sweeps` partial evaluation sweeps per improvement.
+};
+
+// How a policy's values are computed exactly: (I - g P_pi) V = r_pi.
+enum class LinearSolver {
+  kAuto,      // kDirect up to EvaluateOptions::direct_max_states states, else kBiCgStab.
+  kDirect,    // Sparse LU (Eigen SparseLU).
+  kBiCgStab,  // Krylov iteration (Eigen BiCGSTAB, diagonal preconditioner) + refinement.
+  kSweeps,    // Repeated application of the policy's Bellman operator (a contraction).
+};
+
+struct SolveOptions {
+  Method method = Method::kPolicyIteration;  // Default: exact, few iterations.
+  double tolerance = 1e-8;        // Target bound on sup |V - V*| (in reward units).
+  int64_t max_iterations = 100000;  // Outcome kIterationLimit when reached.
+  double time_limit_seconds = 0.0;  // 0 means no limit; else outcome kTimeLimit.
+  int64_t evaluation_sweeps = 20;   // Modified policy iteration: sweeps per improvement.
+  LinearSolver linear_solver = LinearSolver::kAuto;  // Policy iteration's evaluation.
+  double tie_tolerance = 1e-9;    // Extra slack (reward units) when grouping tied actions.
+  int threads = 1;                // Threads for synchronous sweeps; 0 = all cores.
+};
+
+struct OptionBound {
+  std::string_view name;
+  std::string_view description;
+  double default_value;
+  double min;
+  double max;
+};
+
+// Bounds of the numeric SolveOptions fields, in declaration order.
+inline constexpr std::array<OptionBound, 6> kSolveOptionBounds = {{
+    {"tolerance", "target bound on the sup-norm distance of the values to the optimum", 1e-8,
+     1e-14, 1e6},
+    {"max_iterations", "iteration cap; the outcome says iteration_limit when reached", 100000,
+     1, 1e9},
+    {"time_limit_seconds", "wall-clock limit in seconds, 0 for none", 0, 0, 1e7},
+    {"evaluation_sweeps", "modified policy iteration: evaluation sweeps per improvement", 20, 1,
+     1e6},
+    {"tie_tolerance", "extra slack when grouping actions as tied, in reward units", 1e-9, 0,
+     1e6},
+    {"threads", "threads for synchronous sweeps, 0 for all cores", 1, 0, 256},
+}};
+
+// Returns kInvalidArgument naming the field if any option is out of its bounds.
+Status CheckSolveOptions(const SolveOptions& options);
+
+std::string_view MethodName(Method method);          // "policy_iteration", ...
+std::optional<Method> ParseMethod(std::string_view name);
+std::string_view LinearSolverName(LinearSolver solver);  // "auto", "direct", "bicgstab", ...
+std::optional<LinearSolver> ParseLinearSolver(std::string_view name);
+
+}  // namespace mdp
+
+#endif  // MDP_SOLVER_OPTIONS_H_

@@ -1,0 +1,116 @@
+#include "solver/solution.h"
+
+#include <algorithm>
+#include <cmath>
+#include <limits>
+
+#include "solver/internal/bellman.h"
+
+namespace mdp {
+
+std::string_view SolveOutcomeName(SolveOutcome outcome) {
+  switch (outcome) {
+    case SolveOutcome::kConverged: return "converged";
+    case SolveOutcome::kIterationLimit: return "iteration_limit";
+    case SolveOutcome::kTimeLimit: return "time_limit";
+    case SolveOutcome::kCancelled: return "cancelled";
+    case SolveOutcome::kStalled: return "stalled";
+  }
+  return "unknown";
+}
+
+int64_t Solution::OptimalCount(const Model& m, StateId s) const {
+  int64_t count = 0;
+  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) count += optimal_row[r];
+  return count;
+}
+
+namespace {
+
+// Fills q, values, best_row, optimal_row and action_gap for state s.
+template <bool kMaximize>
+int FinishState(const Model& m, StateId s, const double* v1, double tie, Solution& out) {
+  const RowId begin = m.row_begin(s);
+  const RowId end = m.row_end(s);
+  out.values[s] = 0.0;
+  out.best_row[s] = -1;
+  out.action_gap[s] = std::numeric_limits<double>::quiet_NaN();
+  if (begin == end) return 0;
+  RowId best_index = begin;
+  for (RowId r = begin; r < end; ++r) {
+    out.q[r] = internal::RowQ(m, r, v1);
+    if (internal::Better<kMaximize>(out.q[r], out.q[best_index])) best_index = r;
+  }
+  const double best = out.q[best_index];
+  if (end - begin >= 2) {
+    double second = 0.0;
+    bool have_second = false;
+    for (RowId r = begin; r < end; ++r) {
+      if (r == best_index) continue;
+      if (!have_second || internal::Better<kMaximize>(out.q[r], second)) second = out.q[r];
+      have_second = true;
+    }
+    out.action_gap[s] = std::fabs(best - second);
+  }
+  out.values[s] = best;
+  const double slack = tie + 1e-12 * std::max(1.0, std::fabs(best));
+  int count = 0;
+  for (RowId r = begin; r < end; ++r) {
+    const bool optimal = std::fabs(out.q[r] - best) <= slack;
+    out.optimal_row[r] = optimal ? 1 : 0;
+    if (optimal && count++ == 0) out.best_row[s] = r;
+  }
+  return count;
+}
+
+template <bool kMaximize>
+int64_t FinishAll(const Model& m, const double* v1, double tie, int threads, Solution& out) {
+  int64_t tied = 0;
+#pragma omp parallel for num_threads(threads) reduction(+ : tied) schedule(static, 2048)
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (FinishState<kMaximize>(m, s, v1, tie, out) >= 2) ++tied;
+  }
+  return tied;
+}
+
+}  // namespace
+
+void Finalize(const Model& m, std::span<const double> v, const SolveOptions& options,
+              Solution& out) {
+  const int threads = internal::ThreadCount(options.threads);
+  const double g = m.discount();
+  std::vector<double> v1(m.num_states());
+  const double e = internal::SyncSweep(m, v.data(), v1.data(), threads);
+  out.residual = e;
+  const double v1_bound = g == 0.0 ? 0.0 : g * e / (1.0 - g);
+  out.q_error_bound = g * v1_bound;
+  out.value_error_bound = g * v1_bound;
+  out.policy_loss_bound = 2.0 * v1_bound;
+  out.tie_tolerance = options.tie_tolerance + 2.0 * out.q_error_bound;
+  out.values.assign(m.num_states(), 0.0);
+  out.q.assign(m.num_rows(), 0.0);
+  out.best_row.assign(m.num_states(), -1);
+  out.optimal_row.assign(m.num_rows(), 0);
+  out.action_gap.assign(m.num_states(), 0.0);
+  out.tied_states = m.objective() == Objective::kMaximize
+                        ? FinishAll<true>(m, v1.data(), out.tie_tolerance, threads, out)
+                        : FinishAll<false>(m, v1.data(), out.tie_tolerance, threads, out);
+  out.sweeps += 2;
+}
+
+std::vector<std::pair<StateId, double>> SmallestGaps(const Model& m, const Solution& solution,
+                                                     int k) {
+  std::vector<std::pair<double, StateId>> gaps;
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    const double gap = solution.action_gap[s];
+    if (std::isnan(gap) || solution.OptimalCount(m, s) >= 2) continue;
+    gaps.emplace_back(gap, s);
+  }
+  const size_t keep = std::min(gaps.size(), static_cast<size_t>(std::max(k, 0)));
+  std::partial_sort(gaps.begin(), gaps.begin() + keep, gaps.end());
+  std::vector<std::pair<StateId, double>> out;
+  for (size_t i = 0; i < keep; ++i) out.emplace_back(gaps[i].second, gaps[i].first);
+  return out;
+}
+
+}  // namespace mdp

@@ -1,0 +1,83 @@
+// Solution: what a solve produced — values, the Q-table, the optimal action sets, action
+// gaps — with the guarantees that hold for them. A plain value; the caller owns it; share it
+// read-only across threads freely.
+//
+// Guarantees (discounted criterion, discount g). Finalize() takes the last iterate V of any
+// method, applies one exact Bellman backup V1 = T V, measures the residual e = sup|V1 - V|,
+// and builds the Q-table from V1. Then (Puterman 1994, Markov Decision Processes, Thm 6.3.1,
+// and the g-contraction of T):
+//   sup |V1 - V*|          <= g e / (1 - g)
+//   sup |Q - Q*|           <= g * g e / (1 - g)              (q_error_bound)
+//   sup |values - V*|      <= g * g e / (1 - g)              (value_error_bound; values = max Q)
+//   greedy policy loss     <= 2 g e / (1 - g)                (policy_loss_bound)
+//
+// Optimal action sets. Row r of state s is in the set iff
+//   |Q(s, r) - values(s)| <= tie_tolerance + 1e-12 * max(1, |values(s)|),
+// where tie_tolerance = options.tie_tolerance + 2 * q_error_bound. Two actions with equal
+// true Q* differ in computed Q by at most 2 * q_error_bound, so every truly optimal action is
+// in the set; an action within the tolerance of the best is reported as tied with it.
+// The deterministic pick (best_row) is the first row of the set in document order. The
+// stochastic optimal policy is uniform over the set. The action gap is |best Q - second
+// best Q| over all available actions (NaN when a state has fewer than two).
+#ifndef MDP_SOLVER_SOLUTION_H_
+#define MDP_SOLVER_SOLUTION_H_
+
+#include <cstdint>
+#include <span>
+#include <string_view>
+#include <utility>
+#include <vector>
+
+#include "solver/model.h"
+#include "solver/options.h"
+
+namespace mdp {
+
+enum class SolveOutcome {
+  kConverged,       // value_error_bound <= options.tolerance.
+  kIterationLimit,  // max_iterations reached first.
+  kTimeLimit,       // time_limit_seconds passed first.
+  kCancelled,       // The CancelToken fired.
+  kStalled,         // The residual stopped shrinking (floating-point floor) above tolerance.
+};
+
+std::string_view SolveOutcomeName(SolveOutcome outcome);  // "converged", ...
+
+struct Solution {
+  Method method = Method::kPolicyIteration;
+  SolveOptions options;
+  SolveOutcome outcome = SolveOutcome::kConverged;
+  int64_t iterations = 0;  // Method iterations (improvement steps for policy iteration).
+  int64_t sweeps = 0;      // Full passes over the model, including evaluation and finalize.
+  double residual = 0.0;   // e = sup |T V - V| of the last iterate V.
+  double value_error_bound = 0.0;
+  double q_error_bound = 0.0;
+  double policy_loss_bound = 0.0;
+  double tie_tolerance = 0.0;  // Slack used for the optimal sets (see above).
+  double solve_seconds = 0.0;
+
+  std::vector<double> values;        // Per state: best Q (0 for terminal states).
+  std::vector<double> q;             // Per row.
+  std::vector<RowId> best_row;       // Per state: deterministic pick, -1 for terminal.
+  std::vector<uint8_t> optimal_row;  // Per row: 1 iff in its state's optimal set.
+  std::vector<double> action_gap;    // Per state; NaN with fewer than two actions.
+  int64_t tied_states = 0;           // States whose optimal set has two or more actions.
+
+  // Number of rows in the optimal set of state s.
+  int64_t OptimalCount(const Model& m, StateId s) const;
+};
+
+// Completes a solution from the last iterate `v` (see the header comment). Sets values, q,
+// best_row, optimal_row, action_gap, tied_states, residual and the bounds; leaves the
+// bookkeeping fields (method, outcome, iterations, times) to the caller but adds 2 sweeps.
+void Finalize(const Model& m, std::span<const double> v, const SolveOptions& options,
+              Solution& solution);
+
+// Up to k states with the smallest action gaps among states with two or more actions that
+// are not tied, smallest first.
+std::vector<std::pair<StateId, double>> SmallestGaps(const Model& m, const Solution& solution,
+                                                     int k);
+
+}  // namespace mdp
+
+#endif  // MDP_SOLVER_SOLUTION_H_

@@ -1,0 +1,77 @@
+// Validate() checks a ModelSpec and returns every problem it finds (up to a cap), each with
+// the place it concerns; it never stops at the first. Errors make a model unusable; warnings
+// do not. Pure function of its input: thread-safe, returns values the caller owns.
+//
+// Rules (api-schema/README.md is the user-facing statement of them):
+//  - discount in [0, 1); at least one state; at least one catalogue action;
+//  - non-terminal states have at least one action, terminal states none;
+//  - each state action names a catalogue action, at most once per state, and has outcomes;
+//  - outcome next states exist; probabilities finite and in [0, 1]; rewards finite;
+//  - outcome probabilities of a state action sum to 1 within kProbabilitySumTolerance;
+//  - names non-empty and unique (states; catalogue actions);
+//  - warnings: states no other state leads to, catalogue actions never used, outcomes with
+//    probability 0.
+#ifndef MDP_SOLVER_VALIDATE_H_
+#define MDP_SOLVER_VALIDATE_H_
+
+#include <cstdint>
+#include <string>
+#include <vector>
+
+#include "solver/model_spec.h"
+
+namespace mdp {
+
+// Absolute tolerance on |sum of outcome probabilities - 1| for one state action.
+inline constexpr double kProbabilitySumTolerance = 1e-6;
+
+// Which part of the model a finding is about. Indices that do not apply are -1.
+struct Location {
+  enum class Field {
+    kModel,              // The whole model.
+    kDiscount,           // criterion.discount
+    kStates,             // The states list.
+    kCatalogue,          // The action catalogue.
+    kCatalogueEntry,     // catalogue[action]
+    kStateName,          // states[state].name
+    kStateActions,       // states[state].actions
+    kSlotAction,         // states[state].actions[slot].action
+    kSlotReward,         // states[state].actions[slot].reward
+    kSlotOutcomes,       // states[state].actions[slot].outcomes
+    kOutcomeNext,        // ...outcomes[outcome].next
+    kOutcomeProbability, // ...outcomes[outcome].probability
+    kOutcomeReward,      // ...outcomes[outcome].reward
+    kState,              // states[state]
+  };
+  Field field = Field::kModel;
+  int64_t state = -1;    // Index of the state.
+  int64_t slot = -1;     // Index of the action within its state (0-based, document order).
+  int64_t outcome = -1;  // Index of the outcome within its state action.
+  int64_t action = -1;   // Index in the catalogue (kCatalogueEntry).
+};
+
+struct Finding {
+  enum class Severity { kError, kWarning };
+  Severity severity = Severity::kError;
+  Location where;
+  std::string message;  // Plain words, e.g. "probabilities sum to 0.97, not 1".
+};
+
+struct ValidateOptions {
+  int64_t max_errors = 100;  // Errors listed; beyond this only counted.
+  int64_t max_warnings = 100;
+};
+
+struct ValidationReport {
+  std::vector<Finding> errors;
+  std::vector<Finding> warnings;
+  int64_t errors_not_listed = 0;
+  int64_t warnings_not_listed = 0;
+  bool ok() const { return errors.empty() && errors_not_listed == 0; }
+};
+
+ValidationReport Validate(const ModelSpec& spec, const ValidateOptions& options = {});
+
+}  // namespace mdp
+
+#endif  // MDP_SOLVER_VALIDATE_H_

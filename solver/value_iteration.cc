@@ -1,0 +1,87 @@
+#include "solver/value_iteration.h"
+
+#include <cmath>
+#include <vector>
+
+#include "solver/internal/bellman.h"
+#include "solver/internal/run_control.h"
+
+namespace mdp {
+namespace {
+
+// Sets the outcome from the final bound: converged iff the stated bound meets the tolerance,
+// else the reason the loop stopped.
+void SetOutcome(std::optional<SolveOutcome> stop, Solution& solution) {
+  if (solution.value_error_bound <= solution.options.tolerance) {
+    solution.outcome = SolveOutcome::kConverged;
+  } else {
+    solution.outcome = stop.value_or(SolveOutcome::kStalled);
+  }
+}
+
+}  // namespace
+
+Solution ValueIteration(const Model& m, const SolveOptions& options, const ProgressFn* progress,
+                        const CancelToken* cancel) {
+  internal::RunControl control(options, progress, cancel);
+  const int threads = internal::ThreadCount(options.threads);
+  const double g = m.discount();
+  // Stopping rule: sup|V_{n+1} - V_n| <= tolerance (1 - g) / g gives sup|V_{n+1} - V*| <=
+  // tolerance (Puterman 1994, Thm 6.3.1); Finalize() restates the bound from one more backup.
+  const double target = internal::ResidualTarget(g, options.tolerance);
+  Solution solution;
+  solution.method = Method::kValueIteration;
+  solution.options = options;
+  std::vector<double> v(m.num_states(), 0.0);
+  std::vector<double> next(m.num_states(), 0.0);
+  std::optional<SolveOutcome> stop;
+  for (;;) {
+    const double e = internal::SyncSweep(m, v.data(), next.data(), threads);
+    v.swap(next);
+    ++solution.iterations;
+    ++solution.sweeps;
+    if (e <= target) break;
+    stop = control.After(solution.iterations, solution.sweeps, e, g * e / (1.0 - g), "sweep");
+    if (stop) break;
+  }
+  Finalize(m, v, options, solution);
+  SetOutcome(stop, solution);
+  solution.solve_seconds = control.elapsed_seconds();
+  return solution;
+}
+
+Solution GaussSeidelValueIteration(const Model& m, const SolveOptions& options,
+                                   const ProgressFn* progress, const CancelToken* cancel) {
+  internal::RunControl control(options, progress, cancel);
+  const double g = m.discount();
+  // The in-place operator is also a g-contraction with fixed point V* (Puterman 1994,
+  // sec. 6.3.3), so sup|v - V*| <= g d / (1 - g) for its own change d. Finalize() states the
+  // bound through one exact backup e <= (1 + g) sup|v - V*|, so aim d low enough that
+  // g^2 e / (1 - g) meets the tolerance; resume with a lower aim if rounding defeats it.
+  double target = g == 0.0 ? internal::ResidualTarget(g, options.tolerance)
+                           : options.tolerance * (1.0 - g) * (1.0 - g) / (g * g * g * (1.0 + g));
+  Solution solution;
+  solution.method = Method::kGaussSeidel;
+  solution.options = options;
+  std::vector<double> v(m.num_states(), 0.0);
+  std::optional<SolveOutcome> stop;
+  for (;;) {
+    for (;;) {
+      const double d = internal::GaussSeidelSweep(m, v.data());
+      ++solution.iterations;
+      ++solution.sweeps;
+      if (d <= target) break;
+      stop = control.After(solution.iterations, solution.sweeps, d, g * d / (1.0 - g), "sweep");
+      if (stop) break;
+    }
+    Finalize(m, v, options, solution);
+    if (stop || solution.value_error_bound <= options.tolerance) break;
+    target *= 0.1;
+    if (target == 0.0) break;
+  }
+  SetOutcome(stop, solution);
+  solution.solve_seconds = control.elapsed_seconds();
+  return solution;
+}
+
+}  // namespace mdp
