@@ -1,0 +1,309 @@
+#include "server/cli.h"
+
+#include <CLI/CLI.hpp>
+#include <cstdio>
+#include <iomanip>
+#include <optional>
+#include <ostream>
+#include <sstream>
+#include <string>
+
+#include "server/file_io.h"
+#include "server/json_codec.h"
+#include "server/model_codec.h"
+
+namespace mdp::server {
+namespace {
+
+void PrintIssues(std::ostream& err, const std::string& path,
+                 const std::vector<DocumentIssue>& issues, std::string_view kind) {
+  for (const DocumentIssue& i : issues) {
+    err << path << ": " << (i.pointer.empty() ? "(document)" : i.pointer) << ": " << kind
+        << i.message << "\n";
+  }
+}
+
+// Reads and decodes a model; prints problems to `err`. Nullopt iff the model is unusable.
+std::optional<Model> LoadModel(const std::string& path, std::ostream& err, bool quiet_warnings,
+                               ModelDecodeResult* full = nullptr) {
+  Result<std::string> text = ReadWholeFile(path);
+  if (!text.ok()) {
+    err << "mdpserve: " << text.status().message() << "\n";
+    return std::nullopt;
+  }
+  ModelDecodeResult decoded = DecodeModel(*text);
+  PrintIssues(err, path, decoded.errors, "");
+  if (decoded.errors_not_listed > 0) {
+    err << path << ": " << decoded.errors_not_listed << " more errors not listed\n";
+  }
+  if (!quiet_warnings) PrintIssues(err, path, decoded.warnings, "warning: ");
+  std::optional<Model> model = std::move(decoded.model);
+  if (full != nullptr) *full = std::move(decoded);
+  return model;
+}
+
+Status Emit(const Json& doc, const std::string& out_path, std::ostream& out) {
+  const std::string text = doc.dump(2) + "\n";
+  if (out_path.empty() || out_path == "-") {
+    out << text;
+    return Status::Ok();
+  }
+  return WriteFileAtomically(out_path, text);
+}
+
+std::string Fixed(double x) {
+  std::ostringstream s;
+  s << std::setprecision(10) << x;
+  return s.str();
+}
+
+// A human-readable policy table: one line per state.
+void PrintTable(const Model& m, const Solution& sol, std::ostream& out) {
+  size_t width = 5;
+  for (StateId s = 0; s < m.num_states(); ++s) width = std::max(width, m.state_name(s).size());
+  out << std::left << std::setw(static_cast<int>(width)) << "state" << "  "
+      << std::setw(14) << "value" << "  " << std::setw(16) << "action"
+      << "  " << std::setw(12) << "action gap" << "  tied with\n";
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    const RowId best = sol.best_row[s];
+    std::string tied;
+    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+      if (sol.optimal_row[r] && r != best) tied += (tied.empty() ? "" : ", ") + m.row_action_name(r);
+    }
+    const double gap = sol.action_gap[s];
+    out << std::left << std::setw(static_cast<int>(width)) << m.state_name(s) << "  "
+        << std::setw(14) << Fixed(sol.values[s]) << "  " << std::setw(16)
+        << (best >= 0 ? m.row_action_name(best) : std::string("(terminal)")) << "  "
+        << std::setw(12) << (std::isnan(gap) ? std::string("-") : Fixed(gap)) << "  "
+        << tied << "\n";
+  }
+  out << "outcome " << SolveOutcomeName(sol.outcome) << " after " << sol.iterations
+      << " iterations; values within " << sol.value_error_bound << " of optimal"
+      << (m.reward_unit().empty() ? "" : " (" + m.reward_unit() + ")") << "\n";
+}
+
+struct SolveArgs {
+  std::string model, out, method = "policy_iteration", linear_solver = "auto", detail = "full";
+  SolveOptions options;
+  bool table = false;
+};
+
+int RunSolve(const SolveArgs& args, std::ostream& out, std::ostream& err) {
+  SolveOptions options = args.options;
+  std::optional<Method> method = ParseMethod(args.method);
+  std::optional<LinearSolver> linear = ParseLinearSolver(args.linear_solver);
+  if (!method || !linear) {
+    err << "mdpserve: unknown --method or --linear-solver\n";
+    return kExitBadInput;
+  }
+  options.method = *method;
+  options.linear_solver = *linear;
+  std::optional<Model> model = LoadModel(args.model, err, false);
+  if (!model) return kExitBadInput;
+  Result<Solution> solution = Solve(*model, options);
+  if (!solution.ok()) {
+    err << "mdpserve: " << solution.status().message() << "\n";
+    return kExitBadInput;
+  }
+  if (solution->outcome != SolveOutcome::kConverged) {
+    err << "mdpserve: warning: solve stopped before the tolerance was met ("
+        << SolveOutcomeName(solution->outcome) << "); bounds in the output still hold\n";
+  }
+  if (args.table) {
+    PrintTable(*model, *solution, out);
+    if (args.out.empty()) return kExitOk;
+  }
+  const SolutionDetail detail =
+      args.detail == "summary" ? SolutionDetail::kSummary : SolutionDetail::kFull;
+  Status written = Emit(EncodeSolution(*model, *solution, detail), args.out, out);
+  if (!written.ok()) {
+    err << "mdpserve: " << written.message() << "\n";
+    return kExitBadInput;
+  }
+  return kExitOk;
+}
+
+int RunValidate(const std::string& path, std::ostream& out, std::ostream& err) {
+  ModelDecodeResult decoded;
+  std::optional<Model> model = LoadModel(path, err, false, &decoded);
+  (void)Emit(EncodeIssues(decoded.errors, decoded.warnings, decoded.errors_not_listed), "", out);
+  return model ? kExitOk : kExitBadInput;
+}
+
+struct VerifyArgs {
+  std::string model, values, policy;
+  VerifyOptions options;
+};
+
+// Solves `m` tightly for use as the optimal reference.
+Result<Solution> ReferenceSolution(const Model& m) {
+  SolveOptions options;
+  options.method = Method::kPolicyIteration;
+  options.tolerance = 1e-10;
+  return Solve(m, options);
+}
+
+int RunVerify(const VerifyArgs& args, std::ostream& out, std::ostream& err) {
+  if (args.values.empty() == args.policy.empty()) {
+    err << "mdpserve: verify needs exactly one of --values FILE or --policy FILE\n";
+    return kExitBadInput;
+  }
+  std::optional<Model> model = LoadModel(args.model, err, true);
+  if (!model) return kExitBadInput;
+  const std::string& path = args.values.empty() ? args.policy : args.values;
+  Result<std::string> text = ReadWholeFile(path);
+  if (!text.ok()) {
+    err << "mdpserve: " << text.status().message() << "\n";
+    return kExitBadInput;
+  }
+  if (!args.values.empty()) {
+    Decoded<std::vector<double>> values = DecodeValues(*model, *text);
+    if (!values.ok()) {
+      PrintIssues(err, path, values.errors, "");
+      return kExitBadInput;
+    }
+    ValuesReport report = VerifyValues(*model, values.value, args.options);
+    (void)Emit(EncodeValuesReport(*model, report), "", out);
+    return report.pass ? kExitOk : kExitVerdictFailed;
+  }
+  Decoded<Policy> policy = DecodePolicy(*model, *text);
+  if (!policy.ok()) {
+    PrintIssues(err, path, policy.errors, "");
+    return kExitBadInput;
+  }
+  Result<Solution> reference = ReferenceSolution(*model);
+  if (!reference.ok()) {
+    err << "mdpserve: " << reference.status().message() << "\n";
+    return kExitBadInput;
+  }
+  Result<PolicyReport> report = VerifyPolicy(*model, policy.value, *reference, args.options);
+  if (!report.ok()) {
+    err << "mdpserve: " << report.status().message() << "\n";
+    return kExitBadInput;
+  }
+  (void)Emit(EncodePolicyReport(*model, *report), "", out);
+  return report->pass ? kExitOk : kExitVerdictFailed;
+}
+
+struct EvaluateArgs {
+  std::string model, policy, linear_solver = "auto";
+};
+
+int RunEvaluate(const EvaluateArgs& args, std::ostream& out, std::ostream& err) {
+  std::optional<LinearSolver> linear = ParseLinearSolver(args.linear_solver);
+  if (!linear) {
+    err << "mdpserve: unknown --linear-solver\n";
+    return kExitBadInput;
+  }
+  std::optional<Model> model = LoadModel(args.model, err, true);
+  if (!model) return kExitBadInput;
+  Result<std::string> text = ReadWholeFile(args.policy);
+  if (!text.ok()) {
+    err << "mdpserve: " << text.status().message() << "\n";
+    return kExitBadInput;
+  }
+  Decoded<Policy> policy = DecodePolicy(*model, *text);
+  if (!policy.ok()) {
+    PrintIssues(err, args.policy, policy.errors, "");
+    return kExitBadInput;
+  }
+  EvaluateOptions options;
+  options.solver = *linear;
+  Result<PolicyValues> values = EvaluatePolicy(*model, policy.value, options);
+  if (!values.ok()) {
+    err << "mdpserve: " << values.status().message() << "\n";
+    return kExitBadInput;
+  }
+  (void)Emit(EncodeEvaluation(*model, *values), "", out);
+  return kExitOk;
+}
+
+void AddSolveOptions(CLI::App* cmd, SolveArgs& a) {
+  cmd->add_option("MODEL", a.model, "model document (JSON), or - for standard input")->required();
+  cmd->add_option("--method", a.method,
+                  "value_iteration | gauss_seidel | policy_iteration | modified_policy_iteration")
+      ->capture_default_str()
+      ->check(CLI::IsMember({"value_iteration", "gauss_seidel", "policy_iteration",
+                             "modified_policy_iteration"}));
+  cmd->add_option("--tolerance", a.options.tolerance,
+                  "target bound on sup |V - V*| in reward units")
+      ->capture_default_str()
+      ->check(CLI::Range(1e-14, 1e6));
+  cmd->add_option("--max-iterations", a.options.max_iterations, "iteration cap")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{1}, int64_t{1000000000}));
+  cmd->add_option("--time-limit", a.options.time_limit_seconds, "seconds, 0 for none")
+      ->capture_default_str()
+      ->check(CLI::Range(0.0, 1e7));
+  cmd->add_option("--evaluation-sweeps", a.options.evaluation_sweeps,
+                  "modified policy iteration: sweeps per improvement")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{1}, int64_t{1000000}));
+  cmd->add_option("--linear-solver", a.linear_solver,
+                  "policy evaluation: auto | direct | bicgstab | sweeps")
+      ->capture_default_str()
+      ->check(CLI::IsMember({"auto", "direct", "bicgstab", "sweeps"}));
+  cmd->add_option("--tie-tolerance", a.options.tie_tolerance,
+                  "extra slack when grouping tied actions (reward units)")
+      ->capture_default_str()
+      ->check(CLI::Range(0.0, 1e6));
+  cmd->add_option("--threads", a.options.threads, "threads for sweeps, 0 for all cores")
+      ->capture_default_str()
+      ->check(CLI::Range(0, 256));
+  cmd->add_option("--detail", a.detail, "summary | full (full adds the per-state Q-table)")
+      ->capture_default_str()
+      ->check(CLI::IsMember({"summary", "full"}));
+  cmd->add_option("--out", a.out, "write the solution document here instead of stdout");
+  cmd->add_flag("--table", a.table, "print a readable policy table to stdout");
+}
+
+}  // namespace
+
+int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
+  CLI::App app{"mdpserve: solve, verify and evaluate finite Markov decision processes"};
+  app.require_subcommand(1);
+  std::string validate_path;
+  CLI::App* validate = app.add_subcommand("validate", "check a model document, list every problem");
+  validate->add_option("MODEL", validate_path, "model document (JSON), or -")->required();
+
+  SolveArgs solve_args;
+  CLI::App* solve = app.add_subcommand("solve", "solve a model; print the solution document");
+  AddSolveOptions(solve, solve_args);
+
+  VerifyArgs verify_args;
+  CLI::App* verify = app.add_subcommand(
+      "verify", "bound how far candidate values or a candidate policy are from optimal");
+  verify->add_option("MODEL", verify_args.model, "model document (JSON)")->required();
+  verify->add_option("--values", verify_args.values, "values or solution document");
+  verify->add_option("--policy", verify_args.policy, "policy or solution document");
+  verify->add_option("--tolerance", verify_args.options.tolerance, "verdict threshold")
+      ->capture_default_str()
+      ->check(CLI::Range(0.0, 1e12));
+  verify->add_option("--worst", verify_args.options.worst_k, "how many worst states to list")
+      ->capture_default_str()
+      ->check(CLI::Range(0, 100000));
+
+  EvaluateArgs evaluate_args;
+  CLI::App* evaluate = app.add_subcommand("evaluate", "exact values of a given policy");
+  evaluate->add_option("MODEL", evaluate_args.model, "model document (JSON)")->required();
+  evaluate->add_option("--policy", evaluate_args.policy, "policy or solution document")
+      ->required();
+  evaluate->add_option("--linear-solver", evaluate_args.linear_solver,
+                       "auto | direct | bicgstab | sweeps")
+      ->capture_default_str()
+      ->check(CLI::IsMember({"auto", "direct", "bicgstab", "sweeps"}));
+
+  try {
+    app.parse(argc, argv);
+  } catch (const CLI::ParseError& e) {
+    const int code = app.exit(e, out, err);
+    return code == 0 ? kExitOk : kExitBadInput;
+  }
+  if (validate->parsed()) return RunValidate(validate_path, out, err);
+  if (solve->parsed()) return RunSolve(solve_args, out, err);
+  if (verify->parsed()) return RunVerify(verify_args, out, err);
+  if (evaluate->parsed()) return RunEvaluate(evaluate_args, out, err);
+  return kExitBadInput;
+}
+
+}  // namespace mdp::server

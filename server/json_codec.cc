@@ -1,0 +1,311 @@
+#include "server/json_codec.h"
+
+#include <cmath>
+#include <string>
+
+namespace mdp::server {
+namespace {
+
+constexpr int64_t kMaxListedErrors = 100;
+
+Json NumberOrNull(double x) { return std::isfinite(x) ? Json(x) : Json(nullptr); }
+
+std::string_view ObjectiveName(Objective o) {
+  return o == Objective::kMaximize ? "maximize" : "minimize";
+}
+
+Json ModelSummary(const Model& m) {
+  Json out = {{"name", m.name()},
+              {"states", m.num_states()},
+              {"actions", m.num_actions()},
+              {"state_actions", m.num_rows()},
+              {"outcomes", m.num_outcomes_in_document()}};
+  if (!m.reward_unit().empty()) out["reward_unit"] = m.reward_unit();
+  return out;
+}
+
+Json StateEntry(const Model& m, const Solution& sol, StateId s) {
+  Json q = Json::object();
+  Json optimal = Json::array();
+  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+    q[m.row_action_name(r)] = sol.q[r];
+    if (sol.optimal_row[r]) optimal.push_back(m.row_action_name(r));
+  }
+  const RowId best = sol.best_row[s];
+  return {{"state", m.state_name(s)},
+          {"terminal", m.terminal(s)},
+          {"value", sol.values[s]},
+          {"action", best >= 0 ? Json(m.row_action_name(best)) : Json(nullptr)},
+          {"optimal_actions", std::move(optimal)},
+          {"action_gap", NumberOrNull(sol.action_gap[s])},
+          {"q", std::move(q)}};
+}
+
+Json StateMap(const Model& m, const std::vector<double>& values) {
+  Json out = Json::object();
+  for (StateId s = 0; s < m.num_states(); ++s) out[m.state_name(s)] = values[s];
+  return out;
+}
+
+void AddError(std::vector<DocumentIssue>& errors, std::string pointer, std::string message) {
+  if (static_cast<int64_t>(errors.size()) < kMaxListedErrors) {
+    errors.push_back({std::move(pointer), std::move(message)});
+  }
+}
+
+// Reads `text` and returns the object member `member` ("values" or "policy"), checking the
+// document's format is `own_format` or a solution document. Null on error.
+const Json* OpenCandidate(const Json& root, std::string_view member, std::string_view own_format,
+                          std::vector<DocumentIssue>& errors) {
+  if (!root.is_object()) {
+    AddError(errors, "", "the document must be a JSON object");
+    return nullptr;
+  }
+  auto format = root.find("format");
+  if (format != root.end() && !(format->is_string() && (*format == own_format ||
+                                                        *format == "mdpserve/solution@1"))) {
+    AddError(errors, "/format", "must be '" + std::string(own_format) + "'");
+    return nullptr;
+  }
+  auto it = root.find(member);
+  if (it == root.end() || !it->is_object()) {
+    AddError(errors, "/" + std::string(member),
+             it == root.end() ? "required field is missing" : "must be an object");
+    return nullptr;
+  }
+  return &*it;
+}
+
+// Reports states of `m` missing from `map` (terminal states may be missing).
+void CheckCoverage(const Model& m, const Json& map, std::string_view member,
+                   std::vector<DocumentIssue>& errors) {
+  int64_t missing = 0;
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (m.terminal(s) || map.contains(m.state_name(s))) continue;
+    if (++missing <= 10) {
+      AddError(errors, "/" + std::string(member), "no entry for state '" + m.state_name(s) + "'");
+    }
+  }
+  if (missing > 10) {
+    AddError(errors, "/" + std::string(member),
+             std::to_string(missing - 10) + " more states have no entry");
+  }
+}
+
+// Sets the row probabilities of state s from one policy entry.
+void ReadPolicyEntry(const Model& m, StateId s, const Json& entry, const std::string& ptr,
+                     Policy& policy, std::vector<DocumentIssue>& errors) {
+  if (m.terminal(s)) {
+    AddError(errors, ptr, "state is terminal and takes no action");
+    return;
+  }
+  auto set = [&](const std::string& action, double p, const std::string& where) {
+    std::optional<RowId> row = m.FindRow(s, action);
+    if (!row) {
+      AddError(errors, where, "action '" + action + "' is not available in this state");
+      return;
+    }
+    policy.row_probability[*row] = p;
+  };
+  if (entry.is_string()) {
+    set(entry.get<std::string>(), 1.0, ptr);
+    return;
+  }
+  if (!entry.is_object()) {
+    AddError(errors, ptr, "must be an action name or an object of action probabilities");
+    return;
+  }
+  for (auto it = entry.begin(); it != entry.end(); ++it) {
+    const std::string where = ptr + "/" + EscapePointerToken(it.key());
+    if (!it->is_number() || !std::isfinite(it->get<double>())) {
+      AddError(errors, where, "probability must be a finite number");
+      continue;
+    }
+    const double p = it->get<double>();
+    if (p < 0.0 || p > 1.0) {
+      AddError(errors, where, "probability must be between 0 and 1");
+      continue;
+    }
+    set(it.key(), p, where);
+  }
+}
+
+}  // namespace
+
+Json EncodeCriterion(const Criterion& criterion) {
+  return {{"kind", "discounted"}, {"discount", criterion.discount}};
+}
+
+Json EncodeSolveOptions(const SolveOptions& o) {
+  return {{"tolerance", o.tolerance},
+          {"max_iterations", o.max_iterations},
+          {"time_limit_seconds", o.time_limit_seconds},
+          {"evaluation_sweeps", o.evaluation_sweeps},
+          {"linear_solver", LinearSolverName(o.linear_solver)},
+          {"tie_tolerance", o.tie_tolerance},
+          {"threads", o.threads}};
+}
+
+Json EncodeSolution(const Model& m, const Solution& sol, SolutionDetail detail) {
+  Json gaps = Json::array();
+  for (const auto& [s, gap] : SmallestGaps(m, sol, 10)) {
+    gaps.push_back({{"state", m.state_name(s)}, {"gap", gap}});
+  }
+  Json policy = Json::object();
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (sol.best_row[s] >= 0) policy[m.state_name(s)] = m.row_action_name(sol.best_row[s]);
+  }
+  Json out = {{"format", "mdpserve/solution@1"},
+              {"model", ModelSummary(m)},
+              {"objective", ObjectiveName(m.objective())},
+              {"criterion", EncodeCriterion(m.criterion())},
+              {"method", MethodName(sol.method)},
+              {"options", EncodeSolveOptions(sol.options)},
+              {"outcome", SolveOutcomeName(sol.outcome)},
+              {"iterations", sol.iterations},
+              {"sweeps", sol.sweeps},
+              {"residual", sol.residual},
+              {"value_error_bound", sol.value_error_bound},
+              {"q_error_bound", sol.q_error_bound},
+              {"policy_loss_bound", sol.policy_loss_bound},
+              {"tie_tolerance", sol.tie_tolerance},
+              {"solve_seconds", sol.solve_seconds},
+              {"tied_states", sol.tied_states},
+              {"smallest_gaps", std::move(gaps)},
+              {"values", StateMap(m, sol.values)},
+              {"policy", std::move(policy)}};
+  if (detail == SolutionDetail::kFull) {
+    Json states = Json::array();
+    for (StateId s = 0; s < m.num_states(); ++s) states.push_back(StateEntry(m, sol, s));
+    out["states"] = std::move(states);
+  }
+  return out;
+}
+
+Json EncodeValuesReport(const Model& m, const ValuesReport& report) {
+  Json worst = Json::array();
+  for (const StateResidual& w : report.worst) {
+    worst.push_back({{"state", m.state_name(w.state)},
+                     {"residual", w.residual},
+                     {"candidate", w.candidate},
+                     {"backup", w.backup}});
+  }
+  return {{"format", "mdpserve/verification@1"},
+          {"kind", "values"},
+          {"verdict", report.pass ? "pass" : "fail"},
+          {"tolerance", report.tolerance},
+          {"max_residual", report.max_residual},
+          {"value_error_bound", report.value_error_bound},
+          {"greedy_policy_loss_bound", report.greedy_policy_loss_bound},
+          {"worst_states", std::move(worst)}};
+}
+
+Json EncodePolicyReport(const Model& m, const PolicyReport& report) {
+  Json worst = Json::array();
+  for (const StateLoss& w : report.worst) {
+    worst.push_back({{"state", m.state_name(w.state)},
+                     {"loss", w.loss},
+                     {"value", w.value},
+                     {"optimal_value", w.optimal_value}});
+  }
+  Json suboptimal = Json::array();
+  for (const SuboptimalChoice& c : report.suboptimal) {
+    Json chosen = Json::array();
+    Json optimal = Json::array();
+    for (RowId r : c.chosen) chosen.push_back(m.row_action_name(r));
+    for (RowId r : c.optimal) optimal.push_back(m.row_action_name(r));
+    suboptimal.push_back({{"state", m.state_name(c.state)},
+                          {"chosen", std::move(chosen)},
+                          {"optimal_actions", std::move(optimal)}});
+  }
+  return {{"format", "mdpserve/verification@1"},
+          {"kind", "policy"},
+          {"verdict", report.pass ? "pass" : "fail"},
+          {"tolerance", report.tolerance},
+          {"max_loss", report.max_loss},
+          {"evaluation_error_bound", report.evaluation_error_bound},
+          {"optimal_value_error_bound", report.optimal_value_error_bound},
+          {"linear_solver", LinearSolverName(report.solver_used)},
+          {"worst_states", std::move(worst)},
+          {"suboptimal_states", std::move(suboptimal)},
+          {"suboptimal_count", report.suboptimal_count},
+          {"values", StateMap(m, report.values)}};
+}
+
+Json EncodeEvaluation(const Model& m, const PolicyValues& values) {
+  return {{"format", "mdpserve/evaluation@1"},
+          {"linear_solver", LinearSolverName(values.solver_used)},
+          {"residual", values.residual},
+          {"value_error_bound", values.value_error_bound},
+          {"iterations", values.iterations},
+          {"values", StateMap(m, values.values)}};
+}
+
+Json EncodeIssues(const std::vector<DocumentIssue>& errors,
+                  const std::vector<DocumentIssue>& warnings, int64_t errors_not_listed) {
+  auto list = [](const std::vector<DocumentIssue>& issues) {
+    Json out = Json::array();
+    for (const auto& i : issues) out.push_back({{"pointer", i.pointer}, {"message", i.message}});
+    return out;
+  };
+  return {{"format", "mdpserve/errors@1"},
+          {"errors", list(errors)},
+          {"warnings", list(warnings)},
+          {"truncated", errors_not_listed}};
+}
+
+Decoded<std::vector<double>> DecodeValues(const Model& m, std::string_view text) {
+  Decoded<std::vector<double>> out;
+  JsonReadResult read = ReadJson(text, JsonReadOptions{});
+  if (!read.errors.empty()) {
+    out.errors = std::move(read.errors);
+    return out;
+  }
+  const Json* map = OpenCandidate(read.root, "values", "mdpserve/values@1", out.errors);
+  if (map == nullptr) return out;
+  out.value.assign(m.num_states(), 0.0);
+  for (auto it = map->begin(); it != map->end(); ++it) {
+    const std::string ptr = "/values/" + EscapePointerToken(it.key());
+    std::optional<StateId> s = m.FindState(it.key());
+    if (!s) {
+      AddError(out.errors, ptr, "the model has no state '" + it.key() + "'");
+    } else if (!it->is_number() || !std::isfinite(it->get<double>())) {
+      AddError(out.errors, ptr, "value must be a finite number");
+    } else if (m.terminal(*s) && it->get<double>() != 0.0) {
+      AddError(out.errors, ptr, "a terminal state's value is 0");
+    } else {
+      out.value[*s] = it->get<double>();
+    }
+  }
+  CheckCoverage(m, *map, "values", out.errors);
+  return out;
+}
+
+Decoded<Policy> DecodePolicy(const Model& m, std::string_view text) {
+  Decoded<Policy> out;
+  JsonReadResult read = ReadJson(text, JsonReadOptions{});
+  if (!read.errors.empty()) {
+    out.errors = std::move(read.errors);
+    return out;
+  }
+  const Json* map = OpenCandidate(read.root, "policy", "mdpserve/policy@1", out.errors);
+  if (map == nullptr) return out;
+  out.value.row_probability.assign(m.num_rows(), 0.0);
+  for (auto it = map->begin(); it != map->end(); ++it) {
+    const std::string ptr = "/policy/" + EscapePointerToken(it.key());
+    std::optional<StateId> s = m.FindState(it.key());
+    if (!s) {
+      AddError(out.errors, ptr, "the model has no state '" + it.key() + "'");
+      continue;
+    }
+    ReadPolicyEntry(m, *s, *it, ptr, out.value, out.errors);
+  }
+  CheckCoverage(m, *map, "policy", out.errors);
+  if (out.errors.empty()) {
+    Status status = CheckPolicy(m, out.value);
+    if (!status.ok()) AddError(out.errors, "/policy", status.message());
+  }
+  return out;
+}
+
+}  // namespace mdp::server

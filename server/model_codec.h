@@ -1,0 +1,58 @@
+// DecodeModel: reads a model document (api-schema/model.schema.json, format
+// "mdpserve/model@1") into a ModelSpec, validates it, and compiles it into a Model. Reports
+// every problem it finds (up to a cap), each with an RFC 6901 JSON Pointer into the document.
+// The states list is decoded one state at a time as the text is read, so a document of
+// millions of states never exists as one DOM. Stateless; thread-safe.
+#ifndef MDP_SERVER_MODEL_CODEC_H_
+#define MDP_SERVER_MODEL_CODEC_H_
+
+#include <cstdint>
+#include <optional>
+#include <string>
+#include <string_view>
+#include <vector>
+
+#include "server/json_reader.h"
+#include "solver/model.h"
+#include "solver/model_spec.h"
+
+namespace mdp::server {
+
+inline constexpr std::string_view kModelFormat = "mdpserve/model@1";
+
+// Size caps on documents ("absurd sizes"). Defaults are documented in api-schema/README.md.
+struct DecodeLimits {
+  int64_t max_states = 50'000'000;
+  int64_t max_catalogue = 1'000'000;
+  int64_t max_actions_per_state = 10'000;
+  int64_t max_outcomes_per_action = 1'000'000;
+  int64_t max_outcomes = 400'000'000;
+  int max_depth = 64;
+  int64_t max_errors = 100;
+  int64_t max_warnings = 100;
+};
+
+struct ModelDecodeResult {
+  std::optional<Model> model;  // Set iff `errors` is empty and errors_not_listed == 0.
+  std::vector<DocumentIssue> errors;
+  std::vector<DocumentIssue> warnings;
+  int64_t errors_not_listed = 0;
+  int64_t warnings_not_listed = 0;
+  bool ok() const { return model.has_value(); }
+};
+
+// Decodes, validates and compiles.
+ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits = {});
+
+// Decodes without compiling: the spec as written plus the decoder's own findings (types,
+// names, structure); Validate()'s findings are not included. For tests and tools.
+struct SpecDecodeResult {
+  ModelSpec spec;
+  std::vector<DocumentIssue> errors;
+  int64_t errors_not_listed = 0;
+};
+SpecDecodeResult DecodeModelSpec(std::string_view text, const DecodeLimits& limits = {});
+
+}  // namespace mdp::server
+
+#endif  // MDP_SERVER_MODEL_CODEC_H_

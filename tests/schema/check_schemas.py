@@ -1,0 +1,970 @@
+#!/usr/bin/python3
+"""Checks of mdpserve's JSON Schemas, demo models and (optionally) the CLI's documents.
+
+    /usr/bin/python3 tests/schema/check_schemas.py --root REPO [--mdpserve PATH_TO_BINARY]
+
+Without --mdpserve it checks:
+  (a) every api-schema/*.schema.json is a valid JSON Schema 2020-12 document, with the
+      expected $id, a title and a description on every property;
+  (b) every api-schema/examples/*.json validates against model.schema.json and obeys the
+      cross-reference rules that the schema cannot express (a small reference check here);
+  (c) a table of deliberately bad model documents is REJECTED by model.schema.json, with an
+      error located at or under the expected JSON Pointer; a table of unusual but valid models
+      is accepted; models that only the decoder can reject (cross-references) are accepted by
+      the schema, which documents the schema's limits; sample input and output documents are
+      accepted or rejected by the other schemas as the README says.
+With --mdpserve it also runs the CLI:
+  (d) `solve EXAMPLE --out TMP` (exit 0) must write a solution document valid against
+      solution.schema.json and consistent with the model; `verify EXAMPLE --values TMP` and
+      `verify EXAMPLE --policy TMP` (exit 0 = pass, 1 = fail) must print verification
+      documents; `evaluate EXAMPLE --policy TMP` (exit 0) an evaluation document; `validate
+      EXAMPLE` (exit 0) an errors document without errors. Every bad model must be refused by
+      `validate` (non-zero exit, errors document with an error at the expected pointer) and by
+      `solve` (non-zero exit, `POINTER: message` lines on stderr); valid and warning-only
+      models must be accepted by `validate` (exit 0, no errors).
+
+Prints one line per check and ends with `N passed, M failed`; exits 1 when anything failed.
+Uses only the standard library and jsonschema.
+"""
+
+import argparse
+import copy
+import glob
+import json
+import math
+import os
+import re
+import subprocess
+import sys
+import tempfile
+
+import jsonschema
+from jsonschema import Draft202012Validator
+
+SCHEMA_BASE = "https://mdpserve.invalid/schema/"
+SCHEMA_FILES = [
+    "model.schema.json", "values.schema.json", "policy.schema.json", "solution.schema.json",
+    "verification.schema.json", "evaluation.schema.json", "errors.schema.json",
+]
+CLI_TIMEOUT = 600  # seconds per CLI run
+
+# Ties the demo descriptions promise (state -> actions that must all be optimal).
+EXPECTED_TIES = {
+    "pump-maintenance.json": {"failed_peak": {"service", "replace"},
+                              "failed_off": {"service", "replace"}},
+    "warehouse-robot.json": {"r0c2": {"west", "east"}},
+}
+
+
+# --------------------------------------------------------------------------------------------
+# Reporting
+
+class Report:
+    def __init__(self):
+        self.passed = 0
+        self.failed = 0
+
+    def check(self, name, ok, detail="", info=""):
+        """Counts and prints one check; `detail` explains a failure, `info` annotates a pass."""
+        if ok:
+            self.passed += 1
+            print("PASS %s%s" % (name, (" (%s)" % info) if info else ""))
+        else:
+            self.failed += 1
+            print("FAIL %s%s" % (name, (": %s" % detail) if detail else ""))
+        sys.stdout.flush()
+        return ok
+
+
+def pointer_of(path):
+    """RFC 6901 pointer from a sequence of keys and indices."""
+    return "".join("/" + str(p).replace("~", "~0").replace("/", "~1") for p in path)
+
+
+def within(pointer, expected):
+    """True when `pointer` designates `expected` or something inside it."""
+    return expected == "" or pointer == expected or pointer.startswith(expected + "/")
+
+
+# --------------------------------------------------------------------------------------------
+# Schemas
+
+class Schemas:
+    """Loads the schema set and makes validators that resolve references between the files
+    without any network access."""
+
+    def __init__(self, schema_dir):
+        self.by_file = {}
+        for f in SCHEMA_FILES:
+            with open(os.path.join(schema_dir, f), encoding="utf-8") as fh:
+                self.by_file[f] = json.load(fh)
+        self.by_id = {s.get("$id", f): s for f, s in self.by_file.items()}
+        self._validators = {}
+
+    def validator(self, fname):
+        if fname in self._validators:
+            return self._validators[fname]
+        schema = self.by_file[fname]
+        v = None
+        try:
+            from referencing import Registry, Resource  # jsonschema >= 4.18
+            from referencing.jsonschema import DRAFT202012
+            registry = Registry().with_resources(
+                (sid, Resource.from_contents(s, default_specification=DRAFT202012))
+                for sid, s in self.by_id.items())
+            v = Draft202012Validator(schema, registry=registry)
+        except ImportError:
+            resolver = jsonschema.RefResolver(
+                base_uri=schema.get("$id", ""), referrer=schema, store=dict(self.by_id))
+            v = Draft202012Validator(schema, resolver=resolver)
+        self._validators[fname] = v
+        return v
+
+    def errors(self, fname, instance):
+        """All validation errors as (pointer, message) pairs."""
+        return [(pointer_of(e.absolute_path), e.message)
+                for e in self.validator(fname).iter_errors(instance)]
+
+
+def missing_descriptions(schema, where="#"):
+    """Pointers to property and $defs subschemas that lack a description. if/then/else branches
+    only refine constraints and are not walked."""
+    out = []
+    if not isinstance(schema, dict):
+        return out
+    for key in ("properties", "$defs"):
+        for name, sub in schema.get(key, {}).items():
+            here = "%s/%s/%s" % (where, key, name)
+            if isinstance(sub, dict) and not sub.get("description"):
+                out.append(here)
+            out.extend(missing_descriptions(sub, here))
+    for key in ("items", "additionalProperties"):
+        sub = schema.get(key)
+        if isinstance(sub, dict):
+            here = "%s/%s" % (where, key)
+            if key == "additionalProperties" and not sub.get("description"):
+                out.append(here)
+            out.extend(missing_descriptions(sub, here))
+    for key in ("allOf", "oneOf", "anyOf"):
+        for i, sub in enumerate(schema.get(key, [])):
+            out.extend(missing_descriptions(sub, "%s/%s/%d" % (where, key, i)))
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# A reference check of the model rules that JSON Schema cannot express (used on the examples
+# and to make sure the decoder-only bad cases really break a rule).
+
+def cross_reference_problems(doc):
+    problems = []
+    states = doc.get("states", [])
+    names = [s.get("name") for s in states]
+    seen = set()
+    for i, n in enumerate(names):
+        if n in seen:
+            problems.append(("/states/%d/name" % i, "duplicate state name %r" % n))
+        seen.add(n)
+    catalogue = set(doc.get("actions", []))
+    for i, s in enumerate(states):
+        used = set()
+        for j, sa in enumerate(s.get("actions", [])):
+            p = "/states/%d/actions/%d" % (i, j)
+            a = sa.get("action")
+            if a not in catalogue:
+                problems.append((p + "/action", "action %r not in the catalogue" % a))
+            if a in used:
+                problems.append((p + "/action", "action %r used twice in one state" % a))
+            used.add(a)
+            total = 0.0
+            for k, o in enumerate(sa.get("outcomes", [])):
+                if o.get("next") not in seen:
+                    problems.append(("%s/outcomes/%d/next" % (p, k), "unknown next state"))
+                for field in ("probability", "reward"):
+                    if field in o and not math.isfinite(o[field]):
+                        problems.append(("%s/outcomes/%d/%s" % (p, k, field), "not finite"))
+                total += o.get("probability", 0.0)
+            if "reward" in sa and not math.isfinite(sa["reward"]):
+                problems.append((p + "/reward", "not finite"))
+            if abs(total - 1.0) > 1e-6:
+                problems.append((p + "/outcomes", "probabilities sum to %r" % total))
+    return problems
+
+
+def warning_sources(doc):
+    """Pointers the decoder should warn about: states no other state leads to, unused catalogue
+    actions, zero-probability outcomes."""
+    warnings = []
+    led_to, used = set(), set()
+    for i, s in enumerate(doc["states"]):
+        for j, sa in enumerate(s.get("actions", [])):
+            used.add(sa["action"])
+            for k, o in enumerate(sa["outcomes"]):
+                if o["next"] != s["name"]:
+                    led_to.add(o["next"])
+                if o["probability"] == 0:
+                    warnings.append("/states/%d/actions/%d/outcomes/%d" % (i, j, k))
+    for i, s in enumerate(doc["states"]):
+        if s["name"] not in led_to:
+            warnings.append("/states/%d" % i)
+    for i, a in enumerate(doc["actions"]):
+        if a not in used:
+            warnings.append("/actions/%d" % i)
+    return warnings
+
+
+# --------------------------------------------------------------------------------------------
+# Test documents
+
+BASE_MODEL = {
+    "format": "mdpserve/model@1",
+    "name": "Schema check base model",
+    "objective": "maximize",
+    "criterion": {"kind": "discounted", "discount": 0.9},
+    "actions": ["stay", "go"],
+    "states": [
+        {"name": "a",
+         "actions": [
+             {"action": "stay", "reward": 1.0,
+              "outcomes": [{"next": "a", "probability": 0.5},
+                           {"next": "b", "probability": 0.5, "reward": 2.0}]},
+             {"action": "go",
+              "outcomes": [{"next": "c", "probability": 1.0, "reward": 3.0}]}]},
+        {"name": "b",
+         "actions": [
+             {"action": "stay", "outcomes": [{"next": "a", "probability": 1.0}]},
+             {"action": "go", "outcomes": [{"next": "c", "probability": 1.0}]}]},
+        {"name": "c", "terminal": True},
+    ],
+}
+OUT0 = "/states/0/actions/0/outcomes/0"
+
+
+def variant(change):
+    doc = copy.deepcopy(BASE_MODEL)
+    result = change(doc)
+    return doc if result is None else result
+
+
+def _set(path, value):
+    def change(doc):
+        target = doc
+        for p in path[:-1]:
+            target = target[p]
+        target[path[-1]] = value
+    return change
+
+
+def _del(path):
+    def change(doc):
+        target = doc
+        for p in path[:-1]:
+            target = target[p]
+        del target[path[-1]]
+    return change
+
+
+def _rename_probability(doc):
+    o = doc["states"][0]["actions"][0]["outcomes"][0]
+    o["probabilty"] = o.pop("probability")
+
+
+# (label, document, expected pointer): the schema must reject, with an error at or under the
+# pointer. The decoder must reject them too.
+SCHEMA_BAD = [
+    ("missing name", variant(_del(["name"])), ""),
+    ("empty model name", variant(_set(["name"], "")), "/name"),
+    ("missing format", variant(_del(["format"])), ""),
+    ("unknown format version", variant(_set(["format"], "mdpserve/model@2")), "/format"),
+    ("objective misspelt", variant(_set(["objective"], "maximise")), "/objective"),
+    ("discount 1.0", variant(_set(["criterion", "discount"], 1.0)), "/criterion/discount"),
+    ("discount -0.1", variant(_set(["criterion", "discount"], -0.1)), "/criterion/discount"),
+    ("discount as string", variant(_set(["criterion", "discount"], "0.9")),
+     "/criterion/discount"),
+    ("discount missing", variant(_del(["criterion", "discount"])), "/criterion"),
+    ("unknown criterion kind", variant(_set(["criterion"], {"kind": "undiscounted"})),
+     "/criterion"),
+    ("reserved criterion kind average", variant(_set(["criterion"], {"kind": "average"})),
+     "/criterion"),
+    ("reserved kind finite_horizon",
+     variant(_set(["criterion"], {"kind": "finite_horizon", "horizon": 10})), "/criterion"),
+    ("criterion without kind", variant(_set(["criterion"], {"discount": 0.9})), "/criterion"),
+    ("discounted criterion with extra field",
+     variant(_set(["criterion", "horizon"], 5)), "/criterion"),
+    ("probability -0.2",
+     variant(_set(["states", 0, "actions", 0, "outcomes", 0, "probability"], -0.2)),
+     OUT0 + "/probability"),
+    ("probability 1.5",
+     variant(_set(["states", 0, "actions", 0, "outcomes", 0, "probability"], 1.5)),
+     OUT0 + "/probability"),
+    ("probability as string",
+     variant(_set(["states", 0, "actions", 0, "outcomes", 0, "probability"], "0.5")),
+     OUT0 + "/probability"),
+    ("unknown field probabilty (misspelt)", variant(_rename_probability), OUT0),
+    ("outcome without next", variant(_del(["states", 0, "actions", 0, "outcomes", 0, "next"])),
+     OUT0),
+    ("next is a number",
+     variant(_set(["states", 0, "actions", 0, "outcomes", 0, "next"], 1)), OUT0 + "/next"),
+    ("outcome reward as string",
+     variant(_set(["states", 0, "actions", 0, "outcomes", 1, "reward"], "2")),
+     "/states/0/actions/0/outcomes/1/reward"),
+    ("state action reward null",
+     variant(_set(["states", 0, "actions", 0, "reward"], None)), "/states/0/actions/0/reward"),
+    ("empty outcomes", variant(_set(["states", 0, "actions", 1, "outcomes"], [])),
+     "/states/0/actions/1/outcomes"),
+    ("state action without action name",
+     variant(_del(["states", 0, "actions", 1, "action"])), "/states/0/actions/1"),
+    ("unknown field in state action",
+     variant(_set(["states", 0, "actions", 1, "probability"], 1.0)), "/states/0/actions/1"),
+    ("empty states", variant(_set(["states"], [])), "/states"),
+    ("states is an object", variant(_set(["states"], {"a": {}})), "/states"),
+    ("empty action catalogue", variant(_set(["actions"], [])), "/actions"),
+    ("duplicate catalogue action", variant(_set(["actions"], ["stay", "go", "stay"])),
+     "/actions"),
+    ("catalogue action not a string", variant(_set(["actions"], ["stay", 7])), "/actions/1"),
+    ("terminal with string value", variant(_set(["states", 2, "terminal"], "yes")),
+     "/states/2"),
+    ("terminal state with actions",
+     variant(_set(["states", 2, "actions"],
+                  [{"action": "stay", "outcomes": [{"next": "c", "probability": 1.0}]}])),
+     "/states/2/actions"),
+    ("non-terminal state without actions", variant(_del(["states", 1, "actions"])),
+     "/states/1"),
+    ("non-terminal state with empty actions", variant(_set(["states", 1, "actions"], [])),
+     "/states/1/actions"),
+    ("explicitly non-terminal state without actions",
+     variant(lambda d: d["states"].__setitem__(2, {"name": "c", "terminal": False})),
+     "/states/2"),
+    ("state without name", variant(_del(["states", 1, "name"])), "/states/1"),
+    ("state name of 257 characters", variant(_set(["states", 2, "name"], "x" * 257)),
+     "/states/2/name"),
+    ("state name with a newline", variant(_set(["states", 2, "name"], "c\n")),
+     "/states/2/name"),
+    ("action name with a tab", variant(_set(["actions", 1], "go\tnow")), "/actions/1"),
+    ("empty state name", variant(_set(["states", 2, "name"], "")), "/states/2/name"),
+    ("unknown field in state", variant(_set(["states", 1, "reward"], 1.0)), "/states/1"),
+    ("unknown top-level field", variant(_set(["horizon"], 10)), ""),
+    ("description too long", variant(_set(["description"], "d" * 10001)), "/description"),
+    ("reward_unit too long", variant(_set(["reward_unit"], "u" * 65)), "/reward_unit"),
+    ("document is an array", [copy.deepcopy(BASE_MODEL)], ""),
+]
+
+# (label, document): unusual but valid models; the schema and the decoder must accept them.
+SCHEMA_GOOD = [
+    ("base model", copy.deepcopy(BASE_MODEL)),
+    ("discount 0", variant(_set(["criterion", "discount"], 0))),
+    ("discount 0.999999", variant(_set(["criterion", "discount"], 0.999999))),
+    ("integer probability 1", variant(_set(["states", 1, "actions", 0, "outcomes", 0,
+                                            "probability"], 1))),
+    ("terminal with empty actions", variant(_set(["states", 2, "actions"], []))),
+    ("explicit terminal false", variant(_set(["states", 0, "terminal"], False))),
+    ("metadata present",
+     variant(lambda d: d.update({"description": "free text\nwith lines", "reward_unit": "EUR"}))),
+    ("minimize objective, negative rewards",
+     variant(lambda d: (d.update({"objective": "minimize"}),
+                        d["states"][0]["actions"][0].update({"reward": -4}))[-1])),
+    ("same next twice with different rewards",
+     variant(_set(["states", 1, "actions", 0, "outcomes"],
+                  [{"next": "a", "probability": 0.25, "reward": 1.0},
+                   {"next": "a", "probability": 0.75, "reward": -1.0}]))),
+    ("probabilities summing to 1 within 1e-6",
+     variant(_set(["states", 0, "actions", 0, "outcomes"],
+                  [{"next": "a", "probability": 0.5000004},
+                   {"next": "b", "probability": 0.5, "reward": 2.0}]))),
+    ("names with spaces, punctuation and non-ASCII letters",
+     variant(lambda d: json.loads(json.dumps(d).replace('"a"', '"K\\u00fchlraum \\u2192 Tor 3"')
+                                  .replace('"go"', '"go (fast), then \\"stop\\""')))),
+    ("state name of 256 characters",
+     variant(lambda d: json.loads(json.dumps(d).replace('"b"', json.dumps("b" * 256))))),
+]
+
+# (label, JSON text, expected pointer): models the schema accepts (or cannot parse) but the
+# decoder must reject: rules JSON Schema cannot express, and malformed JSON.
+DECODER_BAD = [
+    ("duplicate state names",
+     json.dumps(variant(lambda d: d["states"].append(copy.deepcopy(d["states"][1])))),
+     "/states/3"),
+    ("action used twice in one state",
+     json.dumps(variant(_set(["states", 0, "actions", 1, "action"], "stay"))),
+     "/states/0/actions/1"),
+    ("action not in the catalogue",
+     json.dumps(variant(_set(["states", 0, "actions", 1, "action"], "jump"))),
+     "/states/0/actions/1"),
+    ("next names no state",
+     json.dumps(variant(_set(["states", 0, "actions", 0, "outcomes", 0, "next"], "z"))), OUT0),
+    ("probabilities summing to 0.9",
+     json.dumps(variant(_set(["states", 0, "actions", 0, "outcomes", 0, "probability"], 0.4))),
+     "/states/0/actions/0"),
+    ("probabilities summing to 1.00001",
+     json.dumps(variant(_set(["states", 0, "actions", 0, "outcomes", 0, "probability"],
+                             0.50001))), "/states/0/actions/0"),
+    ("reward 1e999 (overflows)",
+     json.dumps(variant(_set(["states", 0, "actions", 0, "reward"], 123.5))).replace(
+         "123.5", "1e999"), "/states/0/actions/0/reward"),
+    ("outcome reward -1e999 (overflows)",
+     json.dumps(variant(_set(["states", 0, "actions", 0, "outcomes", 1, "reward"], 123.5)))
+     .replace("123.5", "-1e999"), "/states/0/actions/0/outcomes/1/reward"),
+    ("malformed JSON (trailing comma)", json.dumps(BASE_MODEL)[:-1] + ",}", ""),
+    ("malformed JSON (truncated)", json.dumps(BASE_MODEL)[:40], ""),
+    ("empty input", "", ""),
+]
+
+# (label, document, expected warning pointer): valid models that draw a warning.
+WARNING_MODELS = [
+    ("state no other state leads to",
+     variant(lambda d: d["states"].insert(2, {
+         "name": "island", "actions": [
+             {"action": "go", "outcomes": [{"next": "c", "probability": 1.0}]}]})),
+     "/states/2"),
+    ("catalogue action no state uses", variant(_set(["actions"], ["stay", "go", "idle"])),
+     "/actions/2"),
+    ("outcome with probability 0",
+     variant(lambda d: d["states"][1]["actions"][0]["outcomes"].append(
+         {"next": "b", "probability": 0.0})), "/states/1/actions/0/outcomes/1"),
+]
+
+
+def sample_solution():
+    return {
+        "format": "mdpserve/solution@1",
+        "model": {"name": BASE_MODEL["name"], "states": 3, "actions": 2, "state_actions": 4,
+                  "outcomes": 5},
+        "objective": "maximize",
+        "criterion": {"kind": "discounted", "discount": 0.9},
+        "method": "value_iteration",
+        "options": {"tolerance": 1e-9, "max_iterations": 100000, "time_limit_seconds": None,
+                    "tie_tolerance": 1e-9},
+        "outcome": "converged",
+        "iterations": 212, "sweeps": 212,
+        "residual": 8.1e-10, "value_error_bound": 7.3e-9, "q_error_bound": 7.3e-9,
+        "policy_loss_bound": 1.5e-8, "tie_tolerance": 1e-9, "solve_seconds": 0.0003,
+        "tied_states": 1,
+        "smallest_gaps": [{"state": "b", "gap": 0.0}, {"state": "a", "gap": 0.27}],
+        "values": {"a": 3.27, "b": 3.0, "c": 0.0},
+        "policy": {"a": "stay", "b": "stay"},
+        "states": [
+            {"state": "a", "terminal": False, "value": 3.27, "action": "stay",
+             "optimal_actions": ["stay"], "action_gap": 0.27, "q": {"stay": 3.27, "go": 3.0}},
+            {"state": "b", "terminal": False, "value": 3.0, "action": "stay",
+             "optimal_actions": ["stay", "go"], "action_gap": 0.0,
+             "q": {"stay": 3.0, "go": 3.0}},
+            {"state": "c", "terminal": True, "value": 0.0, "action": None,
+             "optimal_actions": [], "action_gap": None, "q": {}},
+        ],
+    }
+
+
+def sample_verification(kind):
+    if kind == "values":
+        return {"format": "mdpserve/verification@1", "kind": "values", "verdict": "pass",
+                "tolerance": 1e-6, "max_residual": 2e-9,
+                "worst_states": [{"state": "a", "residual": 2e-9, "candidate": 3.27,
+                                  "backup": 3.270000002}],
+                "value_error_bound": 2e-8, "greedy_policy_loss_bound": 3.6e-8}
+    return {"format": "mdpserve/verification@1", "kind": "policy", "verdict": "fail",
+            "tolerance": 1e-6, "max_loss": 0.27,
+            "worst_states": [{"state": "a", "loss": 0.27, "value": 3.0, "optimal_value": 3.27}],
+            "suboptimal_states": [{"state": "a", "chosen": ["go"], "optimal_actions": ["stay"]}],
+            "evaluation_error_bound": 1e-12, "optimal_value_error_bound": 1e-9,
+            "values": {"a": 3.0, "b": 3.0, "c": 0.0}}
+
+
+def dropped(doc, key):
+    doc = copy.deepcopy(doc)
+    del doc[key]
+    return doc
+
+
+def changed(doc, key, value):
+    doc = copy.deepcopy(doc)
+    doc[key] = value
+    return doc
+
+
+def sample_state_changed(**kw):
+    doc = sample_solution()
+    doc["states"][0].update(kw)
+    return doc
+
+
+# (label, schema file, document, must be accepted)
+OTHER_DOCS = [
+    ("values document", "values.schema.json",
+     {"format": "mdpserve/values@1", "values": {"a": 3.27, "b": 3}}, True),
+    ("solution accepted as values document", "values.schema.json", sample_solution(), True),
+    ("values document with unknown field", "values.schema.json",
+     {"format": "mdpserve/values@1", "values": {"a": 1.0}, "extra": 1}, False),
+    ("values document with string value", "values.schema.json",
+     {"format": "mdpserve/values@1", "values": {"a": "1.0"}}, False),
+    ("values document with an empty state name", "values.schema.json",
+     {"format": "mdpserve/values@1", "values": {"": 1.0}}, False),
+    ("values document with wrong format", "values.schema.json",
+     {"format": "mdpserve/policy@1", "values": {"a": 1.0}}, False),
+    ("values document without values", "values.schema.json",
+     {"format": "mdpserve/values@1"}, False),
+    ("deterministic policy document", "policy.schema.json",
+     {"format": "mdpserve/policy@1", "policy": {"a": "stay", "b": "go"}}, True),
+    ("stochastic policy document", "policy.schema.json",
+     {"format": "mdpserve/policy@1", "policy": {"a": {"stay": 0.25, "go": 0.75}, "b": "go"}},
+     True),
+    ("solution accepted as policy document", "policy.schema.json", sample_solution(), True),
+    ("policy with probability 1.2", "policy.schema.json",
+     {"format": "mdpserve/policy@1", "policy": {"a": {"stay": 1.2}}}, False),
+    ("policy with empty stochastic entry", "policy.schema.json",
+     {"format": "mdpserve/policy@1", "policy": {"a": {}}}, False),
+    ("policy entry as number", "policy.schema.json",
+     {"format": "mdpserve/policy@1", "policy": {"a": 1}}, False),
+    ("policy document with unknown field", "policy.schema.json",
+     {"format": "mdpserve/policy@1", "policy": {"a": "stay"}, "values": {}}, False),
+    ("sample solution", "solution.schema.json", sample_solution(), True),
+    ("summary solution (no states)", "solution.schema.json",
+     dropped(sample_solution(), "states"), True),
+    ("solution with an extra member", "solution.schema.json",
+     changed(sample_solution(), "memory_bytes", 4096), True),
+    ("solution cancelled before any sweep", "solution.schema.json",
+     dict(sample_solution(), outcome="cancelled", iterations=0, sweeps=0, residual=None,
+          value_error_bound=None, q_error_bound=None, policy_loss_bound=None), True),
+    ("solution without values", "solution.schema.json",
+     dropped(sample_solution(), "values"), False),
+    ("solution with unknown method", "solution.schema.json",
+     changed(sample_solution(), "method", "simplex"), False),
+    ("solution with unknown outcome", "solution.schema.json",
+     changed(sample_solution(), "outcome", "diverged"), False),
+    ("solution with negative residual", "solution.schema.json",
+     changed(sample_solution(), "residual", -1e-9), False),
+    ("solution state without q", "solution.schema.json",
+     (lambda d: (d["states"][0].pop("q"), d)[1])(sample_solution()), False),
+    ("solution state with string action gap", "solution.schema.json",
+     sample_state_changed(action_gap="inf"), False),
+    ("solution with wrong format", "solution.schema.json",
+     changed(sample_solution(), "format", "mdpserve/values@1"), False),
+    ("verification of values", "verification.schema.json", sample_verification("values"), True),
+    ("verification of a policy", "verification.schema.json", sample_verification("policy"),
+     True),
+    ("values verification without max_residual", "verification.schema.json",
+     dropped(sample_verification("values"), "max_residual"), False),
+    ("policy verification without values", "verification.schema.json",
+     dropped(sample_verification("policy"), "values"), False),
+    ("values verification with policy-shaped worst state", "verification.schema.json",
+     changed(sample_verification("values"), "worst_states",
+             sample_verification("policy")["worst_states"]), False),
+    ("verification with verdict ok", "verification.schema.json",
+     changed(sample_verification("values"), "verdict", "ok"), False),
+    ("verification with unknown kind", "verification.schema.json",
+     changed(sample_verification("values"), "kind", "q"), False),
+    ("evaluation", "evaluation.schema.json",
+     {"format": "mdpserve/evaluation@1", "values": {"a": 3.27, "b": 3.0, "c": 0.0},
+      "linear_solver": "direct", "residual": 4e-16, "value_error_bound": 4e-15}, True),
+    ("evaluation with unknown linear solver", "evaluation.schema.json",
+     {"format": "mdpserve/evaluation@1", "values": {"a": 1.0},
+      "linear_solver": "cholesky", "residual": 0.0, "value_error_bound": 0.0}, False),
+    ("evaluation without residual", "evaluation.schema.json",
+     {"format": "mdpserve/evaluation@1", "values": {"a": 1.0},
+      "linear_solver": "sweeps", "value_error_bound": 0.0}, False),
+    ("errors document", "errors.schema.json",
+     {"format": "mdpserve/errors@1",
+      "errors": [{"pointer": "/states/0/actions/0/outcomes/0/probability",
+                  "message": "probability -0.2 is negative"},
+                 {"pointer": "", "message": "line 3, column 7: expected ','"},
+                 {"pointer": "/values/a~1b~0c", "message": "escaped pointer"}],
+      "warnings": [{"pointer": "/states/4", "message": "no other state leads here"}],
+      "truncated": 0}, True),
+    ("errors document with pointer missing its slash", "errors.schema.json",
+     {"format": "mdpserve/errors@1", "errors": [{"pointer": "states/0", "message": "x"}],
+      "warnings": [], "truncated": 0}, False),
+    ("errors document with a bad ~ escape", "errors.schema.json",
+     {"format": "mdpserve/errors@1", "errors": [{"pointer": "/a~2", "message": "x"}],
+      "warnings": [], "truncated": 0}, False),
+    ("errors document with 101 errors", "errors.schema.json",
+     {"format": "mdpserve/errors@1",
+      "errors": [{"pointer": "/states/%d" % i, "message": "x"} for i in range(101)],
+      "warnings": [], "truncated": 0}, False),
+    ("errors document without truncated", "errors.schema.json",
+     {"format": "mdpserve/errors@1", "errors": [], "warnings": []}, False),
+]
+
+
+# --------------------------------------------------------------------------------------------
+# Parts (a) to (c)
+
+def check_schema_files(rep, root):
+    schema_dir = os.path.join(root, "api-schema")
+    for f in SCHEMA_FILES:
+        path = os.path.join(schema_dir, f)
+        try:
+            with open(path, encoding="utf-8") as fh:
+                schema = json.load(fh)
+        except (OSError, ValueError) as e:
+            rep.check("schema %s parses" % f, False, str(e))
+            continue
+        try:
+            Draft202012Validator.check_schema(schema)
+            rep.check("schema %s is a valid 2020-12 schema" % f, True)
+        except jsonschema.exceptions.SchemaError as e:
+            rep.check("schema %s is a valid 2020-12 schema" % f, False, e.message)
+        header = []
+        if schema.get("$schema") != "https://json-schema.org/draft/2020-12/schema":
+            header.append("$schema")
+        if schema.get("$id") != SCHEMA_BASE + f:
+            header.append("$id")
+        if not schema.get("title"):
+            header.append("title")
+        if not schema.get("description"):
+            header.append("description")
+        rep.check("schema %s has $schema, $id, title, description" % f, not header,
+                  "bad: " + ", ".join(header) if header else "")
+        missing = missing_descriptions(schema)
+        rep.check("schema %s documents every property" % f, not missing,
+                  "no description at " + ", ".join(missing[:5]) if missing else "")
+    try:
+        return Schemas(schema_dir)
+    except (OSError, ValueError) as e:
+        rep.check("schema set loads", False, str(e))
+        return None
+
+
+def check_examples(rep, root, schemas):
+    examples = sorted(glob.glob(os.path.join(root, "api-schema", "examples", "*.json")))
+    rep.check("at least 3 example models", len(examples) >= 3, "%d found" % len(examples),
+              info="%d found" % len(examples))
+    for path in examples:
+        name = os.path.basename(path)
+        with open(path, encoding="utf-8") as fh:
+            doc = json.load(fh)
+        errs = schemas.errors("model.schema.json", doc)
+        rep.check("example %s matches model.schema.json" % name, not errs,
+                  "; ".join("%s: %s" % e for e in errs[:3]))
+        if errs:
+            continue
+        problems = cross_reference_problems(doc)
+        rep.check("example %s obeys the cross-reference rules" % name, not problems,
+                  "; ".join("%s: %s" % p for p in problems[:3]))
+        warns = warning_sources(doc)
+        n = len(doc["states"])
+        rep.check("example %s is warning-free with 8..40 states" % name,
+                  not warns and 8 <= n <= 40, "%d states; warnings at %s" % (n, warns[:3]),
+                  info="%d states" % n)
+
+
+def check_bad_models(rep, schemas):
+    for label, doc, expected in SCHEMA_BAD:
+        errs = schemas.errors("model.schema.json", doc)
+        located = [p for p, _ in errs if within(p, expected)]
+        rep.check("schema rejects bad model: %s" % label, bool(located),
+                  "accepted" if not errs else
+                  "no error at or under %r, got %s" % (expected, [p for p, _ in errs]),
+                  info="at %r" % located[0] if located else "")
+    for label, doc in SCHEMA_GOOD:
+        errs = schemas.errors("model.schema.json", doc)
+        problems = cross_reference_problems(doc)
+        rep.check("schema accepts valid model: %s" % label, not errs and not problems,
+                  "; ".join("%s: %s" % e for e in (errs + problems)[:3]))
+    for label, text, _ in DECODER_BAD:
+        try:
+            doc = json.loads(text)
+        except ValueError:
+            rep.check("decoder-only case is not JSON: %s" % label, True)
+            continue
+        errs = schemas.errors("model.schema.json", doc)
+        problems = cross_reference_problems(doc)
+        rep.check("schema cannot see decoder-only error: %s" % label, not errs and problems,
+                  "schema errors %s; reference problems %s" % (errs[:2], problems[:2]))
+    for label, doc, expected in WARNING_MODELS:
+        errs = schemas.errors("model.schema.json", doc)
+        warns = warning_sources(doc)
+        rep.check("schema accepts warning-only model: %s" % label,
+                  not errs and expected in warns, "errors %s; warnings %s" % (errs[:2], warns))
+
+
+def check_other_documents(rep, schemas):
+    for label, fname, doc, accept in OTHER_DOCS:
+        errs = schemas.errors(fname, doc)
+        if accept:
+            rep.check("%s accepts %s" % (fname, label), not errs,
+                      "; ".join("%s: %s" % e for e in errs[:3]))
+        else:
+            rep.check("%s rejects %s" % (fname, label), bool(errs), "accepted",
+                      info="at %r" % errs[0][0] if errs else "")
+
+
+# --------------------------------------------------------------------------------------------
+# Part (d): the CLI
+
+def run(cmd, cwd):
+    try:
+        p = subprocess.run(cmd, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                           stdin=subprocess.DEVNULL, timeout=CLI_TIMEOUT)
+    except subprocess.TimeoutExpired:
+        return None, "", "timed out after %d s" % CLI_TIMEOUT
+    except OSError as e:
+        return None, "", str(e)
+    return (p.returncode, p.stdout.decode("utf-8", "replace"),
+            p.stderr.decode("utf-8", "replace"))
+
+
+def short(text, n=300):
+    text = text.strip().replace("\n", " | ")
+    return text if len(text) <= n else text[:n] + "..."
+
+
+def _no_constant(name):
+    raise ValueError("%s is not JSON (RFC 8259 has no NaN or infinity)" % name)
+
+
+def parse_json(text):
+    """Strict parse of a CLI output: Python's NaN/Infinity extensions are errors."""
+    try:
+        return json.loads(text, parse_constant=_no_constant), None
+    except ValueError as e:
+        return None, str(e)
+
+
+def validated_output(rep, schemas, label, fname, text):
+    """Parses and validates an output document; returns it or None."""
+    doc, err = parse_json(text)
+    if doc is None:
+        rep.check("%s prints JSON" % label, False, "%s; output: %s" % (err, short(text)))
+        return None
+    errs = schemas.errors(fname, doc)
+    rep.check("%s output matches %s" % (label, fname), not errs,
+              "; ".join("%s: %s" % e for e in errs[:3]))
+    return doc if not errs else None
+
+
+def check_solution_content(rep, label, model, sol, ties):
+    problems = []
+    states = model["states"]
+    terminal = {s["name"] for s in states if s.get("terminal", False)}
+    available = {s["name"]: [a["action"] for a in s.get("actions", [])] for s in states}
+    nonterminal = [s["name"] for s in states if s["name"] not in terminal]
+    m = sol["model"]
+    if m["name"] != model["name"]:
+        problems.append("model.name %r" % m["name"])
+    if m["states"] != len(states):
+        problems.append("model.states %r, expected %d" % (m["states"], len(states)))
+    if m["actions"] != len(model["actions"]):
+        problems.append("model.actions %r" % m["actions"])
+    n_sa = sum(len(v) for v in available.values())
+    if m["state_actions"] != n_sa:
+        problems.append("model.state_actions %r, expected %d" % (m["state_actions"], n_sa))
+    n_out = sum(len(a["outcomes"]) for s in states for a in s.get("actions", []))
+    if not 0 < m["outcomes"] <= n_out:
+        problems.append("model.outcomes %r, model lists %d" % (m["outcomes"], n_out))
+    if m.get("reward_unit") != model.get("reward_unit"):
+        problems.append("model.reward_unit %r" % m.get("reward_unit"))
+    if sol["objective"] != model["objective"]:
+        problems.append("objective %r" % sol["objective"])
+    if sol["criterion"] != model["criterion"]:
+        problems.append("criterion %r" % sol["criterion"])
+    missing = [s for s in nonterminal if s not in sol["values"]]
+    if missing:
+        problems.append("values lack %s" % missing[:3])
+    stray = [s for s in sol["values"] if s not in available]
+    if stray:
+        problems.append("values name unknown states %s" % stray[:3])
+    nonzero = [s for s in terminal if sol["values"].get(s, 0.0) != 0.0]
+    if nonzero:
+        problems.append("terminal states with non-zero value %s" % nonzero[:3])
+    if set(sol["policy"]) != set(nonterminal):
+        problems.append("policy keys differ from the non-terminal states")
+    bad = [s for s, a in sol["policy"].items() if a not in available.get(s, [])]
+    if bad:
+        problems.append("policy picks unavailable actions in %s" % bad[:3])
+    rep.check("%s solution is consistent with the model" % label, not problems,
+              "; ".join(problems[:4]))
+    if "states" not in sol:
+        rep.check("%s solution has per-state detail by default" % label, False,
+                  "no `states` member")
+        return
+    detail = []
+    entries = sol["states"]
+    if [e["state"] for e in entries] != [s["name"] for s in states]:
+        detail.append("states entries are not one per state in model order")
+    by_name = {e["state"]: e for e in entries}
+    tied = 0
+    for s in states:
+        e = by_name.get(s["name"])
+        if e is None:
+            continue
+        name = s["name"]
+        if e["terminal"] != (name in terminal):
+            detail.append("%s: terminal %r" % (name, e["terminal"]))
+        if name in terminal:
+            if e["action"] is not None or e["optimal_actions"] or e["q"] or e["value"] != 0:
+                detail.append("%s: terminal entry not empty" % name)
+            continue
+        if set(e["q"]) != set(available[name]):
+            detail.append("%s: q keys %s" % (name, sorted(e["q"])))
+        if e["action"] != sol["policy"].get(name):
+            detail.append("%s: action differs from policy" % name)
+        if e["action"] not in e["optimal_actions"]:
+            detail.append("%s: action not among optimal_actions" % name)
+        if not set(e["optimal_actions"]) <= set(available[name]):
+            detail.append("%s: optimal_actions not available" % name)
+        if (e["action_gap"] is None) != (len(available[name]) < 2):
+            detail.append("%s: action_gap %r with %d actions"
+                          % (name, e["action_gap"], len(available[name])))
+        if e["value"] != sol["values"].get(name):
+            detail.append("%s: value differs from values" % name)
+        if len(e["optimal_actions"]) > 1:
+            tied += 1
+    if tied != sol["tied_states"]:
+        detail.append("tied_states %r but %d entries have several optimal actions"
+                      % (sol["tied_states"], tied))
+    rep.check("%s per-state detail is consistent" % label, not detail, "; ".join(detail[:4]))
+    for state, actions in sorted(ties.items()):
+        e = by_name.get(state)
+        got = set(e["optimal_actions"]) if e else set()
+        rep.check("%s reports the tie in %s" % (label, state), actions <= got,
+                  "optimal_actions %s, expected %s among them" % (sorted(got), sorted(actions)))
+
+
+def check_cli_example(rep, schemas, binary, root, tmp, path):
+    name = os.path.basename(path)
+    label = name
+    with open(path, encoding="utf-8") as fh:
+        model = json.load(fh)
+    nonterminal = [s["name"] for s in model["states"] if not s.get("terminal", False)]
+
+    rc, out, err = run([binary, "validate", path], root)
+    if rep.check("validate %s exits 0" % name, rc == 0, "exit %r; %s" % (rc, short(err))):
+        doc = validated_output(rep, schemas, "validate %s" % name, "errors.schema.json", out)
+        if doc is not None:
+            rep.check("validate %s reports no errors" % name,
+                      not doc["errors"] and doc["truncated"] == 0,
+                      "; ".join("%s: %s" % (e["pointer"], e["message"])
+                                for e in doc["errors"][:3]),
+                      info="%d warnings" % len(doc["warnings"]))
+
+    sol_path = os.path.join(tmp, name.replace(".json", ".solution.json"))
+    rc, out, err = run([binary, "solve", path, "--out", sol_path], root)
+    if not rep.check("solve %s exits 0" % name, rc == 0, "exit %r; %s" % (rc, short(err))):
+        return
+    try:
+        with open(sol_path, encoding="utf-8") as fh:
+            text = fh.read()
+    except OSError as e:
+        rep.check("solve %s writes --out" % name, False, str(e))
+        return
+    sol = validated_output(rep, schemas, "solve %s" % name, "solution.schema.json", text)
+    if sol is None:
+        return
+    check_solution_content(rep, "solve %s" % label, model, sol, EXPECTED_TIES.get(name, {}))
+
+    for kind in ("values", "policy"):
+        rc, out, err = run([binary, "verify", path, "--" + kind, sol_path], root)
+        what = "verify %s --%s" % (name, kind)
+        if not rep.check("%s exits 0 or 1" % what, rc in (0, 1),
+                         "exit %r; %s" % (rc, short(err))):
+            continue
+        doc = validated_output(rep, schemas, what, "verification.schema.json", out)
+        if doc is None:
+            continue
+        rep.check("%s reports kind %s with a verdict matching the exit code" % (what, kind),
+                  doc["kind"] == kind and doc["verdict"] == ("pass" if rc == 0 else "fail"),
+                  "kind %r, verdict %r, exit %d" % (doc["kind"], doc["verdict"], rc),
+                  info="verdict %s" % doc["verdict"])
+        if kind == "policy":
+            missing = [s for s in nonterminal if s not in doc["values"]]
+            rep.check("%s gives V^pi for every non-terminal state" % what, not missing,
+                      "missing %s" % missing[:3])
+
+    what = "evaluate %s --policy" % name
+    rc, out, err = run([binary, "evaluate", path, "--policy", sol_path], root)
+    if rep.check("%s exits 0" % what, rc == 0, "exit %r; %s" % (rc, short(err))):
+        doc = validated_output(rep, schemas, what, "evaluation.schema.json", out)
+        if doc is not None:
+            far = []
+            for s in nonterminal:
+                if s not in doc["values"] or s not in sol["values"]:
+                    far.append("%s missing" % s)
+                    continue
+                slack = doc["value_error_bound"]
+                for b in ("value_error_bound", "policy_loss_bound"):
+                    slack += sol[b] if sol[b] is not None else float("inf")
+                v, w = doc["values"][s], sol["values"][s]
+                if abs(v - w) > slack + 1e-9 * (1.0 + abs(w)):
+                    far.append("%s: V^pi %r vs V %r" % (s, v, w))
+            rep.check("%s agrees with the solved values within the bounds" % what, not far,
+                      "; ".join(far[:3]))
+
+
+STDERR_LINE = re.compile(r"^(|(/([^~/]|~[01])*)+): ")
+
+
+def check_cli_refusals(rep, schemas, binary, root, tmp):
+    cases = [(label, json.dumps(doc), expected) for label, doc, expected in SCHEMA_BAD]
+    cases += DECODER_BAD
+    for i, (label, text, expected) in enumerate(cases):
+        path = os.path.join(tmp, "bad-%02d.json" % i)
+        with open(path, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        what = "validate refuses %s" % label
+        rc, out, err = run([binary, "validate", path], root)
+        if not rep.check("%s (non-zero exit)" % what, rc not in (None, 0) and 0 < rc < 128,
+                         "exit %r; %s" % (rc, short(err))):
+            continue
+        doc = validated_output(rep, schemas, what, "errors.schema.json", out)
+        if doc is None:
+            continue
+        pointers = [e["pointer"] for e in doc["errors"]]
+        rep.check("%s at or under %r" % (what, expected),
+                  any(within(p, expected) for p in pointers), "errors at %s" % pointers[:5])
+        what = "solve refuses %s" % label
+        rc, out, err = run([binary, "solve", path, "--out", path + ".out"], root)
+        lines = [ln for ln in err.splitlines() if STDERR_LINE.match(ln)]
+        rep.check("%s with POINTER: message on stderr" % what,
+                  rc not in (None, 0) and 0 < rc < 128
+                  and any(within(ln.split(": ", 1)[0], expected) for ln in lines),
+                  "exit %r; stderr: %s" % (rc, short(err)))
+    accepted = [(label, doc, None) for label, doc in SCHEMA_GOOD] + WARNING_MODELS
+    for i, (label, doc, warning) in enumerate(accepted):
+        path = os.path.join(tmp, "good-%02d.json" % i)
+        with open(path, "w", encoding="utf-8") as fh:
+            json.dump(doc, fh)
+        what = "validate accepts %s" % label
+        rc, out, err = run([binary, "validate", path], root)
+        if not rep.check("%s (exit 0)" % what, rc == 0, "exit %r; %s" % (rc, short(err))):
+            continue
+        out_doc = validated_output(rep, schemas, what, "errors.schema.json", out)
+        if out_doc is None:
+            continue
+        rep.check("%s without errors" % what, not out_doc["errors"],
+                  "errors at %s" % [e["pointer"] for e in out_doc["errors"]][:5])
+        if warning is not None:
+            pointers = [w["pointer"] for w in out_doc["warnings"]]
+            rep.check("%s with a warning at or under %r" % (what, warning),
+                      any(within(p, warning) for p in pointers), "warnings at %s" % pointers)
+
+
+# --------------------------------------------------------------------------------------------
+
+def main():
+    ap = argparse.ArgumentParser(description="Check mdpserve's schemas, examples and CLI output.")
+    ap.add_argument("--root", default=os.path.join(os.path.dirname(os.path.abspath(__file__)),
+                                                   "..", ".."),
+                    help="repository root (default: two levels above this script)")
+    ap.add_argument("--mdpserve", help="path of the mdpserve binary; enables the CLI checks")
+    args = ap.parse_args()
+    root = os.path.abspath(args.root)
+    rep = Report()
+
+    schemas = check_schema_files(rep, root)
+    if schemas is not None:
+        check_examples(rep, root, schemas)
+        check_bad_models(rep, schemas)
+        check_other_documents(rep, schemas)
+        if args.mdpserve:
+            binary = os.path.abspath(args.mdpserve)
+            if rep.check("mdpserve binary is executable", os.access(binary, os.X_OK), binary):
+                with tempfile.TemporaryDirectory(prefix="mdpserve-schema-") as tmp:
+                    for path in sorted(glob.glob(os.path.join(root, "api-schema", "examples",
+                                                              "*.json"))):
+                        check_cli_example(rep, schemas, binary, root, tmp, path)
+                    check_cli_refusals(rep, schemas, binary, root, tmp)
+
+    print("%d passed, %d failed" % (rep.passed, rep.failed))
+    return 1 if rep.failed else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
