@@ -41,7 +41,7 @@ class DomBuilder : public nlohmann::json_sax<Json> {
   bool key(string_t& k) override {
     Frame& top = frames_.back();
     if (top.node->contains(k)) {
-      return Fail(Pointer() + "/" + EscapePointerToken(k), "duplicate key '" + k + "'");
+      return Fail(Pointer(false) + "/" + EscapePointerToken(k), "duplicate key '" + k + "'");
     }
     top.key = std::move(k);
     return true;
@@ -69,12 +69,21 @@ class DomBuilder : public nlohmann::json_sax<Json> {
     return false;
   }
 
-  // Pointer to the place the next value goes.
-  std::string Pointer() const {
+  // Pointer to the place the next value goes (all frames), or to the innermost open
+  // container itself (all but the last). An array that is not innermost already holds its
+  // open element, so that element is its last one.
+  std::string Pointer(bool include_innermost = true) const {
     std::string out;
-    for (const Frame& f : frames_) {
+    const size_t n = include_innermost ? frames_.size() : frames_.size() - 1;
+    for (size_t j = 0; j < n; ++j) {
+      const Frame& f = frames_[j];
       out += '/';
-      out += f.node->is_array() ? std::to_string(f.node->size()) : EscapePointerToken(f.key);
+      if (f.node->is_array()) {
+        const size_t size = f.node->size();
+        out += std::to_string(j + 1 == frames_.size() ? size : size - 1);
+      } else {
+        out += EscapePointerToken(f.key);
+      }
     }
     return out;
   }

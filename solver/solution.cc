@@ -29,7 +29,8 @@ namespace {
 
 // Fills q, values, best_row, optimal_row and action_gap for state s.
 template <bool kMaximize>
-int FinishState(const Model& m, StateId s, const double* v1, double tie, Solution& out) {
+int FinishState(const Model& m, StateId s, const double* v1, double tie, double pick_tie,
+                Solution& out) {
   const RowId begin = m.row_begin(s);
   const RowId end = m.row_end(s);
   out.values[s] = 0.0;
@@ -53,22 +54,27 @@ int FinishState(const Model& m, StateId s, const double* v1, double tie, Solutio
     out.action_gap[s] = std::fabs(best - second);
   }
   out.values[s] = best;
-  const double slack = tie + 1e-12 * std::max(1.0, std::fabs(best));
+  // The pick: the first row (document order) within the caller's tie tolerance plus
+  // rounding of the best Q. The set: every row within the wider tolerance that also covers
+  // the solve's error bound.
+  const double rounding = 1e-12 * std::max(1.0, std::fabs(best));
   int count = 0;
   for (RowId r = begin; r < end; ++r) {
-    const bool optimal = std::fabs(out.q[r] - best) <= slack;
-    out.optimal_row[r] = optimal ? 1 : 0;
-    if (optimal && count++ == 0) out.best_row[s] = r;
+    const double behind = std::fabs(out.q[r] - best);
+    out.optimal_row[r] = behind <= tie + rounding ? 1 : 0;
+    count += out.optimal_row[r];
+    if (out.best_row[s] < 0 && behind <= pick_tie + rounding) out.best_row[s] = r;
   }
   return count;
 }
 
 template <bool kMaximize>
-int64_t FinishAll(const Model& m, const double* v1, double tie, int threads, Solution& out) {
+int64_t FinishAll(const Model& m, const double* v1, double tie, double pick_tie, int threads,
+                  Solution& out) {
   int64_t tied = 0;
 #pragma omp parallel for num_threads(threads) reduction(+ : tied) schedule(static, 2048)
   for (StateId s = 0; s < m.num_states(); ++s) {
-    if (FinishState<kMaximize>(m, s, v1, tie, out) >= 2) ++tied;
+    if (FinishState<kMaximize>(m, s, v1, tie, pick_tie, out) >= 2) ++tied;
   }
   return tied;
 }
@@ -92,9 +98,16 @@ void Finalize(const Model& m, std::span<const double> v, const SolveOptions& opt
   out.best_row.assign(m.num_states(), -1);
   out.optimal_row.assign(m.num_rows(), 0);
   out.action_gap.assign(m.num_states(), 0.0);
-  out.tied_states = m.objective() == Objective::kMaximize
-                        ? FinishAll<true>(m, v1.data(), out.tie_tolerance, threads, out)
-                        : FinishAll<false>(m, v1.data(), out.tie_tolerance, threads, out);
+  const double pick = options.tie_tolerance;
+  out.tied_states =
+      m.objective() == Objective::kMaximize
+          ? FinishAll<true>(m, v1.data(), out.tie_tolerance, pick, threads, out)
+          : FinishAll<false>(m, v1.data(), out.tie_tolerance, pick, threads, out);
+  // The pick may trail the best Q by up to pick + rounding, which costs at most that much
+  // per step: add it, discounted over the horizon, to the greedy policy's loss bound.
+  double largest = 0.0;
+  for (double x : out.values) largest = std::max(largest, std::fabs(x));
+  out.policy_loss_bound += (pick + 1e-12 * std::max(1.0, largest)) / (1.0 - g);
   out.sweeps += 2;
 }
 

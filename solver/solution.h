@@ -9,15 +9,20 @@
 //   sup |V1 - V*|          <= g e / (1 - g)
 //   sup |Q - Q*|           <= g * g e / (1 - g)              (q_error_bound)
 //   sup |values - V*|      <= g * g e / (1 - g)              (value_error_bound; values = max Q)
-//   greedy policy loss     <= 2 g e / (1 - g)                (policy_loss_bound)
+//   greedy policy loss     <= 2 g e / (1 - g) + d / (1 - g)  (policy_loss_bound)
+// where d = options.tie_tolerance + 1e-12 * max(1, max |values|) is how far the deterministic
+// pick may trail the best Q (a policy whose actions trail T V1 by d per step loses at most
+// d / (1 - g) more: the same contraction argument).
 //
 // Optimal action sets. Row r of state s is in the set iff
 //   |Q(s, r) - values(s)| <= tie_tolerance + 1e-12 * max(1, |values(s)|),
 // where tie_tolerance = options.tie_tolerance + 2 * q_error_bound. Two actions with equal
 // true Q* differ in computed Q by at most 2 * q_error_bound, so every truly optimal action is
 // in the set; an action within the tolerance of the best is reported as tied with it.
-// The deterministic pick (best_row) is the first row of the set in document order. The
-// stochastic optimal policy is uniform over the set. The action gap is |best Q - second
+// The deterministic pick (best_row) is the first row in document order whose Q is within
+// options.tie_tolerance + 1e-12 * max(1, |values(s)|) of the best: exact ties break by
+// document order, and the pick is always in the set. The stochastic optimal policy is
+// uniform over the set. The action gap is |best Q - second
 // best Q| over all available actions (NaN when a state has fewer than two).
 #ifndef MDP_SOLVER_SOLUTION_H_
 #define MDP_SOLVER_SOLUTION_H_

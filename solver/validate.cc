@@ -39,7 +39,7 @@ class Collector {
 
 std::string Number(double x) {
   std::ostringstream out;
-  out.precision(17);
+  out.precision(12);
   out << x;
   return out.str();
 }

@@ -403,6 +403,9 @@ DECODER_BAD = [
     ("outcome reward -1e999 (overflows)",
      json.dumps(variant(_set(["states", 0, "actions", 0, "outcomes", 1, "reward"], 123.5)))
      .replace("123.5", "-1e999"), "/states/0/actions/0/outcomes/1/reward"),
+    ("duplicate key in an object",
+     json.dumps(BASE_MODEL).replace('"name": "a", ', '"name": "a", "name": "a2", ', 1),
+     "/states/0"),
     ("malformed JSON (trailing comma)", json.dumps(BASE_MODEL)[:-1] + ",}", ""),
     ("malformed JSON (truncated)", json.dumps(BASE_MODEL)[:40], ""),
     ("empty input", "", ""),
@@ -645,6 +648,18 @@ def check_examples(rep, root, schemas):
                   info="%d states" % n)
 
 
+class DuplicateKey(ValueError):
+    pass
+
+
+def _unique_keys(pairs):
+    keys = [k for k, _ in pairs]
+    for k in keys:
+        if keys.count(k) > 1:
+            raise DuplicateKey("key %r twice" % k)
+    return dict(pairs)
+
+
 def check_bad_models(rep, schemas):
     for label, doc, expected in SCHEMA_BAD:
         errs = schemas.errors("model.schema.json", doc)
@@ -660,7 +675,10 @@ def check_bad_models(rep, schemas):
                   "; ".join("%s: %s" % e for e in (errs + problems)[:3]))
     for label, text, _ in DECODER_BAD:
         try:
-            doc = json.loads(text)
+            doc = json.loads(text, object_pairs_hook=_unique_keys)
+        except DuplicateKey as e:
+            rep.check("decoder-only case has a duplicate key: %s" % label, True, info=str(e))
+            continue
         except ValueError:
             rep.check("decoder-only case is not JSON: %s" % label, True)
             continue
@@ -888,7 +906,24 @@ def check_cli_example(rep, schemas, binary, root, tmp, path):
                       "; ".join(far[:3]))
 
 
-STDERR_LINE = re.compile(r"^(|(/([^~/]|~[01])*)+): ")
+POINTER_RE = re.compile(r"^(/([^~/]|~[01])*)*$")
+
+
+def stderr_pointers(stderr, path):
+    """Pointers of the `POINTER: message` lines on stderr. Tolerated variations: a leading
+    `PATH: ` naming the input file (compiler style) and `(document)` for the empty pointer."""
+    pointers = []
+    for line in stderr.splitlines():
+        if line.startswith(path + ": "):
+            line = line[len(path) + 2:]
+        if ": " not in line:
+            continue
+        pointer = line.split(": ", 1)[0]
+        if pointer == "(document)":
+            pointer = ""
+        if POINTER_RE.match(pointer):
+            pointers.append(pointer)
+    return pointers
 
 
 def check_cli_refusals(rep, schemas, binary, root, tmp):
@@ -911,10 +946,10 @@ def check_cli_refusals(rep, schemas, binary, root, tmp):
                   any(within(p, expected) for p in pointers), "errors at %s" % pointers[:5])
         what = "solve refuses %s" % label
         rc, out, err = run([binary, "solve", path, "--out", path + ".out"], root)
-        lines = [ln for ln in err.splitlines() if STDERR_LINE.match(ln)]
+        pointers = stderr_pointers(err, path)
         rep.check("%s with POINTER: message on stderr" % what,
                   rc not in (None, 0) and 0 < rc < 128
-                  and any(within(ln.split(": ", 1)[0], expected) for ln in lines),
+                  and any(within(p, expected) for p in pointers),
                   "exit %r; stderr: %s" % (rc, short(err)))
     accepted = [(label, doc, None) for label, doc in SCHEMA_GOOD] + WARNING_MODELS
     for i, (label, doc, warning) in enumerate(accepted):

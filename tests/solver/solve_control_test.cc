@@ -1,0 +1,106 @@
+// Tests the run control shared by all methods (solver/internal/run_control.h via Solve()):
+// progress callbacks, cancellation, iteration and time limits, option checks.
+#include <gtest/gtest.h>
+
+#include "solver/solver.h"
+#include "tests/testing/status_matchers.h"
+#include "tests/testing/test_models.h"
+
+namespace mdp {
+namespace {
+
+Model SlowModel() {
+  testing::RandomModelOptions o;
+  o.states = 200;
+  o.discount = 0.999;  // Value iteration needs thousands of sweeps.
+  return testing::MustBuild(testing::RandomSpec(5, o));
+}
+
+TEST(SolveControlTest, ProgressIsReportedWithGrowingIterations) {
+  const Model m = SlowModel();
+  std::vector<Progress> seen;
+  ProgressFn progress = [&](const Progress& p) { seen.push_back(p); };
+  SolveOptions options;
+  options.method = Method::kValueIteration;
+  options.max_iterations = 50;
+  Result<Solution> s = Solve(m, options, &progress);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->outcome, SolveOutcome::kIterationLimit);
+  EXPECT_EQ(s->iterations, 50);
+  ASSERT_EQ(seen.size(), 50u);
+  for (size_t i = 0; i < seen.size(); ++i) {
+    EXPECT_EQ(seen[i].iteration, static_cast<int64_t>(i + 1));
+    EXPECT_GT(seen[i].residual, 0.0);
+    EXPECT_GE(seen[i].elapsed_seconds, 0.0);
+  }
+}
+
+TEST(SolveControlTest, CancelStopsEveryMethodWithAValidPartialAnswer) {
+  const Model m = SlowModel();
+  for (Method method : {Method::kValueIteration, Method::kGaussSeidel, Method::kPolicyIteration,
+                        Method::kModifiedPolicyIteration}) {
+    SCOPED_TRACE(std::string(MethodName(method)));
+    CancelToken cancel;
+    ProgressFn progress = [&](const Progress& p) {
+      if (p.iteration >= 2) cancel.Cancel();
+    };
+    SolveOptions options;
+    options.method = method;
+    options.tolerance = 1e-12;
+    Result<Solution> s = Solve(m, options, &progress, &cancel);
+    ASSERT_OK(s);
+    if (s->outcome != SolveOutcome::kConverged) {
+      EXPECT_EQ(s->outcome, SolveOutcome::kCancelled);
+      EXPECT_LE(s->iterations, 3);
+    }
+    EXPECT_EQ(s->values.size(), static_cast<size_t>(m.num_states()));
+  }
+}
+
+TEST(SolveControlTest, TimeLimitEndsTheSolve) {
+  testing::RandomModelOptions o;
+  o.states = 20000;
+  o.discount = 0.999;  // Tens of thousands of sweeps of about 1 ms each.
+  const Model m = testing::MustBuild(testing::RandomSpec(5, o));
+  SolveOptions options;
+  options.method = Method::kValueIteration;
+  options.tolerance = 1e-14;
+  options.time_limit_seconds = 0.05;
+  Result<Solution> s = Solve(m, options);
+  ASSERT_OK(s);
+  EXPECT_TRUE(s->outcome == SolveOutcome::kTimeLimit || s->outcome == SolveOutcome::kStalled)
+      << SolveOutcomeName(s->outcome);
+  EXPECT_GT(s->value_error_bound, 0.0);
+}
+
+TEST(SolveControlTest, OptionsOutOfBoundsAreRefused) {
+  const Model m = SlowModel();
+  SolveOptions options;
+  options.tolerance = 0.0;
+  EXPECT_EQ(Solve(m, options).status().code(), StatusCode::kInvalidArgument);
+  options = SolveOptions{};
+  options.max_iterations = 0;
+  EXPECT_EQ(Solve(m, options).status().code(), StatusCode::kInvalidArgument);
+  options = SolveOptions{};
+  options.threads = -1;
+  Result<Solution> s = Solve(m, options);
+  ASSERT_FALSE(s.ok());
+  EXPECT_NE(s.status().message().find("threads"), std::string::npos);
+}
+
+TEST(SolveControlTest, ThreadedSweepsGiveTheSameAnswer) {
+  const Model m = testing::MustBuild(testing::RandomSpec(9, {}));
+  SolveOptions one;
+  one.method = Method::kValueIteration;
+  SolveOptions two = one;
+  two.threads = 2;
+  Result<Solution> a = Solve(m, one);
+  Result<Solution> b = Solve(m, two);
+  ASSERT_OK(a);
+  ASSERT_OK(b);
+  EXPECT_EQ(a->values, b->values);  // Same arithmetic per state, so bit-identical.
+  EXPECT_EQ(a->iterations, b->iterations);
+}
+
+}  // namespace
+}  // namespace mdp
