@@ -218,13 +218,14 @@ void PrintTo(const BadDocument& row, std::ostream* os) { *os << row.name; }
 
 BadDocument Tweak(std::string name, std::string_view from, std::string_view to,
                   std::string pointer, std::string message) {
-  BadDocument row{std::move(name), Kiln(), std::move(pointer), std::move(message)};
+  BadDocument row{std::move(name), Kiln(), std::move(pointer), std::move(message), {}};
   row.tweak_applied = ReplaceOnce(row.text, from, to);
   return row;
 }
 
 BadDocument Whole(std::string name, std::string text, std::string pointer, std::string message) {
-  return BadDocument{std::move(name), std::move(text), std::move(pointer), std::move(message)};
+  return BadDocument{std::move(name), std::move(text), std::move(pointer), std::move(message),
+                     {}};
 }
 
 BadDocument Capped(std::string name, DecodeLimits limits, std::string pointer,
@@ -385,7 +386,8 @@ TEST_P(BadDocumentTest, IsRejectedWithPointerAndMessage) {
       << "expected '" << row.pointer << "': ..." << row.message << "...; got" << Describe(result.errors);
 }
 
-INSTANTIATE_TEST_SUITE_P(ModelCodecTest, BadDocumentTest, ::testing::ValuesIn(AllBadDocuments()),
+INSTANTIATE_TEST_SUITE_P(ModelCodecTest, BadDocumentTest,
+                         ::testing::ValuesIn(AllBadDocuments()),
                          [](const ::testing::TestParamInfo<BadDocument>& info) {
                            return info.param.name;
                          });
