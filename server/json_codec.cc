@@ -197,7 +197,8 @@ Json EncodeValuesReport(const Model& m, const ValuesReport& report) {
           {"max_residual", report.max_residual},
           {"value_error_bound", report.value_error_bound},
           {"greedy_policy_loss_bound", report.greedy_policy_loss_bound},
-          {"worst_states", std::move(worst)}};
+          {"worst_states", std::move(worst)},
+          {"residuals", StateMap(m, report.residuals)}};
 }
 
 Json EncodePolicyReport(const Model& m, const PolicyReport& report) {
@@ -229,7 +230,8 @@ Json EncodePolicyReport(const Model& m, const PolicyReport& report) {
           {"worst_states", std::move(worst)},
           {"suboptimal_states", std::move(suboptimal)},
           {"suboptimal_count", report.suboptimal_count},
-          {"values", StateMap(m, report.values)}};
+          {"values", StateMap(m, report.values)},
+          {"losses", StateMap(m, report.losses)}};
 }
 
 Json EncodeEvaluation(const Model& m, const PolicyValues& values) {

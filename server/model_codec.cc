@@ -475,6 +475,48 @@ SpecDecodeResult DecodeSpecWith(std::string_view text, const DecodeLimits& limit
   return out;
 }
 
+
+// True iff the validator's finding is about a placeholder the decoder left where it had
+// already reported a problem (JSON cannot express NaN, and names and indices the decoder
+// could not read are left empty or -1), or lies inside a place already reported.
+bool RepeatsDecoderError(const ModelSpec& spec, const Finding& f,
+                         const std::unordered_set<std::string>& reported, bool catalogue_ok,
+                         bool discount_unreadable) {
+  using F = Location::Field;
+  const Location& w = f.where;
+  auto outcome = [&]() { return spec.slot_first_outcome[spec.state_first_slot[w.state] + w.slot] + w.outcome; };
+  auto slot = [&]() { return spec.state_first_slot[w.state] + w.slot; };
+  switch (w.field) {
+    case F::kOutcomeProbability:
+      if (std::isnan(spec.outcome_probability[outcome()])) return true;
+      break;
+    case F::kOutcomeReward:
+      if (std::isnan(spec.outcome_reward[outcome()])) return true;
+      break;
+    case F::kOutcomeNext:
+      if (spec.outcome_next[outcome()] < 0) return true;
+      break;
+    case F::kSlotReward:
+      if (std::isnan(spec.slot_reward[slot()])) return true;
+      break;
+    case F::kSlotAction:
+      if (spec.slot_action[slot()] < 0 || !catalogue_ok) return true;
+      break;
+    case F::kStateName:
+      if (spec.state_names[w.state].empty()) return true;
+      break;
+    case F::kCatalogueEntry:
+      if (spec.action_names[w.action].empty()) return true;
+      break;
+    case F::kDiscount:
+      if (discount_unreadable) return true;
+      break;
+    default:
+      break;
+  }
+  return AlreadyReported(LocationPointer(w), reported);
+}
+
 }  // namespace
 
 SpecDecodeResult DecodeModelSpec(std::string_view text, const DecodeLimits& limits) {
@@ -483,32 +525,31 @@ SpecDecodeResult DecodeModelSpec(std::string_view text, const DecodeLimits& limi
 }
 
 ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits) {
+  ModelDecodeResult out;
+  if (text.find_first_not_of(" \t\r\n") == std::string_view::npos) {
+    out.errors.push_back({"", "the document is empty"});
+    return out;
+  }
   Decoder decoder(limits);
   SpecDecodeResult decoded = DecodeSpecWith(text, limits, decoder);
-  ModelDecodeResult out;
   out.errors = std::move(decoded.errors);
   out.errors_not_listed = decoded.errors_not_listed;
-  if (out.errors.empty() && text.find_first_not_of(" \t\r\n") == std::string_view::npos) {
-    out.errors.push_back({"", "the document is empty"});
-  }
   const bool readable = out.errors.empty() || !decoded.spec.state_names.empty() ||
                         !decoded.spec.action_names.empty();
   if (readable) {
-    std::unordered_set<std::string> seen;
-    for (const auto& e : out.errors) seen.insert(e.pointer);
-    ValidateOptions options{limits.max_errors, limits.max_warnings};
-    ValidationReport report = Validate(decoded.spec, options);
-    for (const Finding& f : report.errors) {
-      std::string pointer = LocationPointer(f.where);
-      if (f.where.field == Location::Field::kSlotAction && !decoder.catalogue_ok()) continue;
-      if (f.where.field == Location::Field::kDiscount && decoder.discount_unreadable()) continue;
-      if (AlreadyReported(pointer, seen)) continue;
-      if (static_cast<int64_t>(out.errors.size()) >= limits.max_errors) {
-        ++out.errors_not_listed;
-        continue;
-      }
-      out.errors.push_back({std::move(pointer), f.message});
-    }
+    std::unordered_set<std::string> reported;
+    for (const auto& e : out.errors) reported.insert(e.pointer);
+    ValidateOptions options;
+    options.max_errors = std::max<int64_t>(0, limits.max_errors - static_cast<int64_t>(out.errors.size()));
+    options.max_warnings = limits.max_warnings;
+    const ModelSpec& spec = decoded.spec;
+    options.skip = [&](const Finding& f) {
+      return f.severity == Finding::Severity::kError &&
+             RepeatsDecoderError(spec, f, reported, decoder.catalogue_ok(),
+                                 decoder.discount_unreadable());
+    };
+    ValidationReport report = Validate(spec, options);
+    for (const Finding& f : report.errors) out.errors.push_back({LocationPointer(f.where), f.message});
     out.errors_not_listed += report.errors_not_listed;
     for (const Finding& f : report.warnings) {
       out.warnings.push_back({LocationPointer(f.where), f.message});

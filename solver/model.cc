@@ -69,7 +69,10 @@ double AppendRow(const ModelSpec& spec, SlotId slot, std::vector<std::pair<State
 }  // namespace
 
 Result<Model> BuildModel(const ModelSpec& spec) {
-  ValidationReport report = Validate(spec, ValidateOptions{1, 0});
+  ValidateOptions first_error_only;
+  first_error_only.max_errors = 1;
+  first_error_only.max_warnings = 0;
+  ValidationReport report = Validate(spec, first_error_only);
   if (!report.ok()) {
     return InvalidArgumentError("model is not valid: " + report.errors.front().message);
   }

@@ -14,16 +14,22 @@ class Collector {
   explicit Collector(const ValidateOptions& options) : options_(options) {}
 
   void Error(Location where, std::string message) {
+    if (Skipped(Finding::Severity::kError, where, message)) return;
     Add(Finding::Severity::kError, where, std::move(message), report_.errors,
         report_.errors_not_listed, options_.max_errors);
   }
   void Warning(Location where, std::string message) {
+    if (Skipped(Finding::Severity::kWarning, where, message)) return;
     Add(Finding::Severity::kWarning, where, std::move(message), report_.warnings,
         report_.warnings_not_listed, options_.max_warnings);
   }
   ValidationReport Take() { return std::move(report_); }
 
  private:
+  bool Skipped(Finding::Severity severity, const Location& where, const std::string& message) {
+    return options_.skip && options_.skip(Finding{severity, where, message});
+  }
+
   static void Add(Finding::Severity severity, Location where, std::string message,
                   std::vector<Finding>& list, int64_t& not_listed, int64_t cap) {
     if (static_cast<int64_t>(list.size()) >= cap) {

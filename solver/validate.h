@@ -15,6 +15,7 @@
 #define MDP_SOLVER_VALIDATE_H_
 
 #include <cstdint>
+#include <functional>
 #include <string>
 #include <vector>
 
@@ -60,6 +61,9 @@ struct Finding {
 struct ValidateOptions {
   int64_t max_errors = 100;  // Errors listed; beyond this only counted.
   int64_t max_warnings = 100;
+  // If set, findings for which it returns true are dropped: neither listed nor counted.
+  // A decoder that has already reported a problem uses it to avoid reporting it twice.
+  std::function<bool(const Finding&)> skip;
 };
 
 struct ValidationReport {

@@ -97,8 +97,7 @@ TEST_F(JsonCodecTest, DecodeValuesLetsTerminalStatesBeOmitted) {
 
 TEST_F(JsonCodecTest, DecodeValuesAcceptsASolutionDocument) {
   const Solution solution = SolveGreenhouse();
-  const std::string text =
-      EncodeSolution(model_, solution, SolutionDetail::kFull).dump();
+  const std::string text = EncodeSolution(model_, solution, SolutionDetail::kFull).dump();
   Decoded<std::vector<double>> values = DecodeValues(model_, text);
   ASSERT_TRUE(values.ok()) << Describe(values.errors);
   EXPECT_EQ(values.value, solution.values);
@@ -118,8 +117,8 @@ TEST_F(JsonCodecTest, DecodeValuesReportsUnknownAndMissingStates) {
 }
 
 TEST_F(JsonCodecTest, DecodeValuesRejectsBadEntries) {
-  Decoded<std::vector<double>> values = DecodeValues(
-      model_, R"({"values": {"dry": "four", "wet": null, "seedling": 4, "done": 2}})");
+  Decoded<std::vector<double>> values =
+      DecodeValues(model_, R"({"values": {"dry": "four", "wet": null, "seedling": 4, "done": 2}})");
   EXPECT_FALSE(values.ok());
   EXPECT_TRUE(HasIssue(values.errors, "/values/dry", "finite number")) << Describe(values.errors);
   EXPECT_TRUE(HasIssue(values.errors, "/values/wet", "finite number")) << Describe(values.errors);
@@ -332,8 +331,8 @@ TEST_F(JsonCodecTest, EncodeValuesReportNamesTheWorstStates) {
 
 TEST_F(JsonCodecTest, EncodePolicyReportListsSuboptimalChoices) {
   const Solution sol = SolveGreenhouse();
-  Decoded<Policy> policy = DecodePolicy(
-      model_, R"({"policy": {"dry": "wait", "wet": "harvest", "seedling": "grow"}})");
+  Decoded<Policy> policy =
+      DecodePolicy(model_, R"({"policy": {"dry": "wait", "wet": "harvest", "seedling": "grow"}})");
   ASSERT_TRUE(policy.ok()) << Describe(policy.errors);
   Result<PolicyReport> report = VerifyPolicy(model_, policy.value, sol, VerifyOptions{});
   ASSERT_OK(report);
@@ -350,8 +349,8 @@ TEST_F(JsonCodecTest, EncodePolicyReportListsSuboptimalChoices) {
 }
 
 TEST_F(JsonCodecTest, EncodeEvaluationGivesThePolicyValues) {
-  Decoded<Policy> policy = DecodePolicy(
-      model_, R"({"policy": {"dry": "wait", "wet": "harvest", "seedling": "grow"}})");
+  Decoded<Policy> policy =
+      DecodePolicy(model_, R"({"policy": {"dry": "wait", "wet": "harvest", "seedling": "grow"}})");
   ASSERT_TRUE(policy.ok()) << Describe(policy.errors);
   Result<PolicyValues> values = EvaluatePolicy(model_, policy.value, EvaluateOptions{});
   ASSERT_OK(values);
@@ -364,9 +363,9 @@ TEST_F(JsonCodecTest, EncodeEvaluationGivesThePolicyValues) {
 }
 
 TEST(JsonCodecIssuesTest, EncodeIssuesListsErrorsWarningsAndTheRest) {
-  const Json doc = EncodeIssues({{"/objective", "must be \"maximize\" or \"minimize\""},
-                                 {"", "the document is empty"}},
-                                {{"/states/3", "no other state leads to this state"}}, 12);
+  const Json doc = EncodeIssues(
+      {{"/objective", "must be \"maximize\" or \"minimize\""}, {"", "the document is empty"}},
+      {{"/states/3", "no other state leads to this state"}}, 12);
   EXPECT_EQ(doc, Json::parse(R"({
       "format": "mdpserve/errors@1",
       "errors": [{"pointer": "/objective", "message": "must be \"maximize\" or \"minimize\""},

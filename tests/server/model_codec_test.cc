@@ -216,16 +216,15 @@ struct BadDocument {
 
 void PrintTo(const BadDocument& row, std::ostream* os) { *os << row.name; }
 
-BadDocument Tweak(std::string name, std::string_view from, std::string_view to,
-                  std::string pointer, std::string message) {
+BadDocument Tweak(std::string name, std::string_view from, std::string_view to, std::string pointer,
+                  std::string message) {
   BadDocument row{std::move(name), Kiln(), std::move(pointer), std::move(message), {}};
   row.tweak_applied = ReplaceOnce(row.text, from, to);
   return row;
 }
 
 BadDocument Whole(std::string name, std::string text, std::string pointer, std::string message) {
-  return BadDocument{std::move(name), std::move(text), std::move(pointer), std::move(message),
-                     {}};
+  return BadDocument{std::move(name), std::move(text), std::move(pointer), std::move(message), {}};
 }
 
 BadDocument Capped(std::string name, DecodeLimits limits, std::string pointer,
@@ -244,9 +243,8 @@ std::string DeepPointer() {
 std::vector<BadDocument> SyntaxAndHeaderRows() {
   const std::string deep = std::string(65, '[') + std::string(65, ']');
   return {
-      Tweak("missing_comma", R"("name": "Kiln",)", R"("name": "Kiln")", "/name",
-            "line 4, column"),
-      Whole("empty_text", "", "", "unexpected end of input"),
+      Tweak("missing_comma", R"("name": "Kiln",)", R"("name": "Kiln")", "/name", "line 4, column"),
+      Whole("empty_text", "", "", "the document is empty"),
       Whole("root_is_array", "[" + Kiln() + "]", "", "must be a JSON object, not an array"),
       Tweak("duplicate_key", R"("objective": "maximize",)",
             R"("objective": "maximize", "objective": "minimize",)", "/objective",
@@ -261,19 +259,17 @@ std::vector<BadDocument> SyntaxAndHeaderRows() {
       Tweak("format_of_another_kind", "mdpserve/model@1", "mdpserve/policy@1", "/format",
             "must be 'mdpserve/model@1'"),
       Tweak("missing_name", R"("name": "Kiln",)", "", "/name", "required field is missing"),
-      Tweak("empty_model_name", R"("name": "Kiln")", R"("name": "")", "/name",
-            "must not be empty"),
+      Tweak("empty_model_name", R"("name": "Kiln")", R"("name": "")", "/name", "must not be empty"),
       Tweak("unknown_top_level_field", R"("objective": "maximize",)",
             R"("objective": "maximize", "colour": "teal",)", "/colour", "unknown field"),
       Tweak("objective_maximise", R"("maximize")", R"("maximise")", "/objective",
             R"("maximize" or "minimize")"),
-      Tweak("criterion_average_is_reserved", R"("discounted")", R"("average")",
-            "/criterion/kind", "'average' is not supported"),
+      Tweak("criterion_average_is_reserved", R"("discounted")", R"("average")", "/criterion/kind",
+            "'average' is not supported"),
       Tweak("criterion_kind_unknown", R"("discounted")", R"("sideways")", "/criterion/kind",
             "unknown criterion 'sideways'"),
       Tweak("discount_one", "0.8}", "1.0}", "/criterion/discount", "at least 0 and below 1"),
-      Tweak("discount_negative", "0.8}", "-0.5}", "/criterion/discount",
-            "at least 0 and below 1"),
+      Tweak("discount_negative", "0.8}", "-0.5}", "/criterion/discount", "at least 0 and below 1"),
       Tweak("discount_as_string", "0.8}", R"("0.8"})", "/criterion/discount",
             "must be a number, not a string"),
       Tweak("discount_missing", R"(, "discount": 0.8)", "", "/criterion/discount",
@@ -305,11 +301,10 @@ std::vector<BadDocument> StateRows() {
       Tweak("name_with_control_character", R"({"name": "cracked")", R"({"name": "crac\u0007ked")",
             "/states/2/name", "must not contain control characters"),
       Tweak("name_with_c1_control_character", R"({"name": "cracked")",
-            R"({"name": "crac\u0085ked")",
-            "/states/2/name", "must not contain control characters"),
+            R"({"name": "crac\u0085ked")", "/states/2/name", "must not contain control characters"),
       Tweak("name_longer_than_256", R"({"name": "cracked")",
-            R"({"name": ")" + std::string(257, 'k') + "\"",
-            "/states/2/name", "longer than 256 characters"),
+            R"({"name": ")" + std::string(257, 'k') + "\"", "/states/2/name",
+            "longer than 256 characters"),
       Tweak("action_not_in_catalogue", cold_rest,
             R"("sleep", "outcomes": [{"next": "cold", "probability": 1.0}]})",
             "/states/0/actions/1/action", "'sleep' is not in the model's action list"),
@@ -328,8 +323,8 @@ std::vector<BadDocument> OutcomeRows() {
   const std::string second = R"({"next": "cold", "probability": 0.25})";
   return {
       Tweak("next_names_unknown_state", R"({"next": "hot", "probability": 0.75)",
-            R"({"next": "warm", "probability": 0.75)",
-            "/states/0/actions/0/outcomes/0/next", "next state 'warm' is not defined"),
+            R"({"next": "warm", "probability": 0.75)", "/states/0/actions/0/outcomes/0/next",
+            "next state 'warm' is not defined"),
       Tweak("probability_negative", "0.75", "-0.1", p, "probability is negative"),
       Tweak("probability_above_one", "0.75", "1.5", p, "probability exceeds 1"),
       // nlohmann refuses a literal that overflows a double: a read error where it stands.
@@ -350,19 +345,17 @@ std::vector<BadDocument> SizeCapRows() {
   catalogue.max_catalogue = 1;
   per_state.max_actions_per_state = 1;
   per_action.max_outcomes_per_action = 1;
-  total.max_outcomes = 3;  // States 0 holds 3; the next state action would make 5.
+  total.max_outcomes = 3;  // State 0 holds 3; the next state action would make 5.
   depth.max_depth = 3;     // Root, states, a state: its actions list is the 4th level.
   return {
       Capped("too_many_states", states, "/states/2", "more than 2 states"),
       Capped("too_many_catalogue_actions", catalogue, "/actions", "more than 1 actions"),
-      Capped("too_many_actions_in_a_state", per_state, "/states/0/actions",
-             "more than 1 actions"),
+      Capped("too_many_actions_in_a_state", per_state, "/states/0/actions", "more than 1 actions"),
       Capped("too_many_outcomes_in_a_state_action", per_action, "/states/0/actions/0/outcomes",
              "more than 1 outcomes"),
       Capped("too_many_outcomes_in_the_model", total, "/states/1/actions/0/outcomes",
              "the model has more than 3 outcomes"),
-      Capped("nesting_deeper_than_a_small_cap", depth, "/states/0/actions",
-             "deeper than 3 levels"),
+      Capped("nesting_deeper_than_a_small_cap", depth, "/states/0/actions", "deeper than 3 levels"),
   };
 }
 
@@ -383,11 +376,11 @@ TEST_P(BadDocumentTest, IsRejectedWithPointerAndMessage) {
   EXPECT_FALSE(result.ok());
   EXPECT_FALSE(result.model.has_value());
   EXPECT_TRUE(HasIssue(result.errors, row.pointer, row.message))
-      << "expected '" << row.pointer << "': ..." << row.message << "...; got" << Describe(result.errors);
+      << "expected '" << row.pointer << "': ..." << row.message << "...; got"
+      << Describe(result.errors);
 }
 
-INSTANTIATE_TEST_SUITE_P(ModelCodecTest, BadDocumentTest,
-                         ::testing::ValuesIn(AllBadDocuments()),
+INSTANTIATE_TEST_SUITE_P(ModelCodecTest, BadDocumentTest, ::testing::ValuesIn(AllBadDocuments()),
                          [](const ::testing::TestParamInfo<BadDocument>& info) {
                            return info.param.name;
                          });
@@ -406,9 +399,8 @@ TEST(ModelCodecTest, ReportsEveryIndependentProblem) {
                           R"({"next": "warm", "probability": 0.25})"));
   ModelDecodeResult result = DecodeModel(text);
   EXPECT_FALSE(result.ok());
-  EXPECT_EQ(Pointers(result.errors),
-            (std::set<std::string>{"/objective", "/states/1/colour",
-                                   "/states/0/actions/0/outcomes/1/next"}))
+  EXPECT_EQ(Pointers(result.errors), (std::set<std::string>{"/objective", "/states/1/colour",
+                                                            "/states/0/actions/0/outcomes/1/next"}))
       << Describe(result.errors);
   EXPECT_EQ(result.errors.size(), 3u) << Describe(result.errors);
   EXPECT_EQ(result.errors_not_listed, 0);
@@ -428,7 +420,8 @@ std::string RingOfBadProbabilities() {
   }
   return R"({"format": "mdpserve/model@1", "name": "Ring", "objective": "minimize",
     "criterion": {"kind": "discounted", "discount": 0.9}, "actions": ["go"],
-    "states": [)" + states + "]}";
+    "states": [)" +
+         states + "]}";
 }
 
 TEST(ModelCodecTest, ListsAtMostOneHundredErrorsAndCountsTheRest) {
@@ -449,6 +442,40 @@ TEST(ModelCodecTest, ErrorCapComesFromTheLimits) {
   EXPECT_EQ(result.errors_not_listed, 143);
 }
 
+// Problems the decoder reports (a probability given as a string) must not be counted again
+// by the validator, listed or not.
+TEST(ModelCodecTest, DecoderErrorsAreNotCountedTwice) {
+  std::string text = RingOfBadProbabilities();
+  std::string strings;
+  for (size_t at = 0; (at = text.find("-0.5", at)) != std::string::npos;) {
+    text.replace(at, 4, "\"0.25\"");
+  }
+  for (size_t at = 0; (at = text.find("1.5", at)) != std::string::npos;) {
+    text.replace(at, 3, "\"0.75\"");
+  }
+  ModelDecodeResult result = DecodeModel(text);
+  EXPECT_FALSE(result.ok());
+  EXPECT_EQ(result.errors.size(), 100u);
+  EXPECT_EQ(result.errors_not_listed, 50);  // 150 string probabilities in all.
+  for (const auto& e : result.errors) {
+    EXPECT_NE(e.message.find("must be a number"), std::string::npos) << e.pointer;
+  }
+}
+
+TEST(ModelCodecTest, MixedDecoderAndValidatorErrorsAreCountedOnce) {
+  // First 30 states: string probabilities (decoder); the other 45: out of range (validator).
+  std::string text = RingOfBadProbabilities();
+  size_t at = 0;
+  for (int replaced = 0; replaced < 30; ++replaced) {
+    at = text.find("-0.5", at);
+    text.replace(at, 4, "\"0.25\"");
+    at = text.find("1.5", at);
+    text.replace(at, 3, "\"0.75\"");
+  }
+  ModelDecodeResult result = DecodeModel(text);
+  EXPECT_EQ(result.errors.size() + result.errors_not_listed, 150u);
+}
+
 TEST(ModelCodecTest, WarningsLeaveTheModelUsable) {
   std::string text = Kiln();
   ASSERT_TRUE(ReplaceOnce(text, R"(["fire", "rest"])", R"(["fire", "rest", "polish"])"));
@@ -466,16 +493,16 @@ TEST(ModelCodecTest, WarningsLeaveTheModelUsable) {
       << Describe(result.warnings);
   EXPECT_TRUE(HasIssue(result.warnings, "/actions/2", "'polish' is not available in any state"))
       << Describe(result.warnings);
-  EXPECT_TRUE(HasIssue(result.warnings, "/states/0/actions/0/outcomes/2/probability",
-                       "probability 0"))
+  EXPECT_TRUE(
+      HasIssue(result.warnings, "/states/0/actions/0/outcomes/2/probability", "probability 0"))
       << Describe(result.warnings);
   EXPECT_EQ(result.warnings.size(), 3u) << Describe(result.warnings);
 }
 
 TEST(ModelCodecTest, PointersEscapeTildeAndSlashInKeys) {
   std::string text = Kiln();
-  ASSERT_TRUE(ReplaceOnce(text, R"("objective": "maximize",)",
-                          R"("objective": "maximize", "a/b~c": 1,)"));
+  ASSERT_TRUE(
+      ReplaceOnce(text, R"("objective": "maximize",)", R"("objective": "maximize", "a/b~c": 1,)"));
   ASSERT_TRUE(ReplaceOnce(text, R"({"name": "hot", )", R"({"name": "hot", "~/": 2, )"));
   ModelDecodeResult result = DecodeModel(text);
   EXPECT_FALSE(result.ok());
