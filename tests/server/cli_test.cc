@@ -16,29 +16,19 @@
 #include <vector>
 
 #include "server/json_reader.h"
+#include "tests/testing/documents.h"
 
 namespace mdp::server {
 namespace {
 
-// An invented greenhouse bed (discount 0.5). By hand: V(dry) = 4 (water), V(wet) = 10
-// (harvest), V(seedling) = 4; choosing "wait" in "dry" instead gives V(dry) = 0.8.
-constexpr std::string_view kGreenhouse = R"({
-  "format": "mdpserve/model@1", "name": "Greenhouse",
-  "objective": "maximize", "criterion": {"kind": "discounted", "discount": 0.5},
-  "actions": ["water", "wait", "harvest", "grow"],
-  "states": [
-    {"name": "dry", "actions": [
-      {"action": "water", "reward": -1, "outcomes": [{"next": "wet", "probability": 1}]},
-      {"action": "wait", "outcomes": [{"next": "dry", "probability": 0.5},
-                                      {"next": "seedling", "probability": 0.5}]}]},
-    {"name": "wet", "actions": [
-      {"action": "harvest", "outcomes": [{"next": "done", "probability": 1, "reward": 10}]},
-      {"action": "wait", "outcomes": [{"next": "dry", "probability": 0.5},
-                                      {"next": "wet", "probability": 0.5}]}]},
-    {"name": "seedling", "actions": [
-      {"action": "grow", "reward": 2, "outcomes": [{"next": "dry", "probability": 1}]}]},
-    {"name": "done", "terminal": true}]})";
+using test_documents::kGreenhouse;
+using test_documents::HasIssue;
+using test_documents::Describe;
 
+
+
+// Waiting when dry (kGreenhouse): V(dry) = 0.5 (0.5 V(dry) + 0.5 V(seedling)) and
+// V(seedling) = 2 + 0.5 V(dry), so V(dry) = 0.8 and V(seedling) = 2.4.
 constexpr std::string_view kWaitWhenDry = R"({"format": "mdpserve/policy@1",
   "policy": {"dry": "wait", "wet": "harvest", "seedling": "grow"}})";
 

@@ -11,30 +11,16 @@
 
 #include "server/model_codec.h"
 #include "tests/testing/status_matchers.h"
+#include "tests/testing/documents.h"
 
 namespace mdp::server {
 namespace {
 
-// An invented greenhouse bed (discount 0.5). By hand: V(wet) = 10 (harvest), V(dry) = 4
-// (water: -1 + 0.5 * 10), V(seedling) = 2 + 0.5 * 4 = 4; Q(dry, wait) = 0.5 * (0.5 * 4 +
-// 0.5 * 4) = 2 and Q(wet, wait) = 0.5 * (0.5 * 4 + 0.5 * 10) = 3.5. Rows in order: dry/water,
-// dry/wait, wet/harvest, wet/wait, seedling/grow.
-constexpr std::string_view kGreenhouse = R"({
-  "format": "mdpserve/model@1", "name": "Greenhouse", "reward_unit": "baskets",
-  "objective": "maximize", "criterion": {"kind": "discounted", "discount": 0.5},
-  "actions": ["water", "wait", "harvest", "grow"],
-  "states": [
-    {"name": "dry", "actions": [
-      {"action": "water", "reward": -1, "outcomes": [{"next": "wet", "probability": 1}]},
-      {"action": "wait", "outcomes": [{"next": "dry", "probability": 0.5},
-                                      {"next": "seedling", "probability": 0.5}]}]},
-    {"name": "wet", "actions": [
-      {"action": "harvest", "outcomes": [{"next": "done", "probability": 1, "reward": 10}]},
-      {"action": "wait", "outcomes": [{"next": "dry", "probability": 0.5},
-                                      {"next": "wet", "probability": 0.5}]}]},
-    {"name": "seedling", "actions": [
-      {"action": "grow", "reward": 2, "outcomes": [{"next": "dry", "probability": 1}]}]},
-    {"name": "done", "terminal": true}]})";
+using test_documents::kGreenhouse;
+using test_documents::HasIssue;
+using test_documents::Describe;
+
+
 
 // Two equally good ways to the same end: a tie in state "fork".
 constexpr std::string_view kFork = R"({
@@ -46,19 +32,7 @@ constexpr std::string_view kFork = R"({
       {"action": "right", "reward": 1, "outcomes": [{"next": "end", "probability": 1}]}]},
     {"name": "end", "terminal": true}]})";
 
-bool HasIssue(const std::vector<DocumentIssue>& issues, std::string_view pointer,
-              std::string_view message_part) {
-  for (const DocumentIssue& i : issues) {
-    if (i.pointer == pointer && i.message.find(message_part) != std::string::npos) return true;
-  }
-  return false;
-}
 
-std::string Describe(const std::vector<DocumentIssue>& issues) {
-  std::string out;
-  for (const DocumentIssue& i : issues) out += "\n  '" + i.pointer + "': " + i.message;
-  return out.empty() ? "\n  (none)" : out;
-}
 
 class JsonCodecTest : public ::testing::Test {
  protected:

@@ -1,6 +1,7 @@
 // Tests server/model_codec.{h,cc}: DecodeModel and DecodeModelSpec on valid model documents
 // and on a table of broken ones, each rejected with a JSON Pointer and a plain message.
 #include "server/model_codec.h"
+#include "tests/testing/documents.h"
 
 #include <gtest/gtest.h>
 
@@ -14,6 +15,10 @@
 
 namespace mdp::server {
 namespace {
+
+using test_documents::kGreenhouse;
+using test_documents::HasIssue;
+using test_documents::Describe;
 
 // An invented kiln: firing a cold kiln heats it; firing a hot one earns more but may crack
 // it; resting cools it. The base of every broken document below.
@@ -51,19 +56,7 @@ bool ReplaceOnce(std::string& text, std::string_view from, std::string_view to) 
   return true;
 }
 
-bool HasIssue(const std::vector<DocumentIssue>& issues, std::string_view pointer,
-              std::string_view message_part) {
-  for (const DocumentIssue& i : issues) {
-    if (i.pointer == pointer && i.message.find(message_part) != std::string::npos) return true;
-  }
-  return false;
-}
 
-std::string Describe(const std::vector<DocumentIssue>& issues) {
-  std::string out;
-  for (const DocumentIssue& i : issues) out += "\n  '" + i.pointer + "': " + i.message;
-  return out.empty() ? "\n  (none)" : out;
-}
 
 std::set<std::string> Pointers(const std::vector<DocumentIssue>& issues) {
   std::set<std::string> out;

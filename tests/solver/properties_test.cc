@@ -15,20 +15,12 @@
 namespace mdp {
 namespace {
 
+using testing::kAllMethods;
+using testing::MustSolve;
+
 using testing::RandomModelOptions;
 using testing::RandomSpec;
 
-const Method kAllMethods[] = {Method::kValueIteration, Method::kGaussSeidel,
-                              Method::kPolicyIteration, Method::kModifiedPolicyIteration};
-
-Solution MustSolve(const Model& m, Method method, double tolerance) {
-  SolveOptions options;
-  options.method = method;
-  options.tolerance = tolerance;
-  Result<Solution> s = Solve(m, options);
-  EXPECT_OK(s);
-  return std::move(*s);
-}
 
 double SupDiff(const std::vector<double>& a, const std::vector<double>& b) {
   double d = 0.0;

@@ -11,20 +11,12 @@
 namespace mdp {
 namespace {
 
+using testing::kAllMethods;
+using testing::MustSolve;
+
 using testing::Out;
 using testing::SpecWriter;
 
-const Method kAllMethods[] = {Method::kValueIteration, Method::kGaussSeidel,
-                              Method::kPolicyIteration, Method::kModifiedPolicyIteration};
-
-Solution MustSolve(const Model& m, Method method, double tolerance = 1e-10) {
-  SolveOptions options;
-  options.method = method;
-  options.tolerance = tolerance;
-  Result<Solution> solution = Solve(m, options);
-  EXPECT_OK(solution);
-  return std::move(*solution);
-}
 
 // Howard 1960, Dynamic Programming and Markov Processes, the two-state toymaker (from
 // memory): state 1 "successful toy", state 2 "unsuccessful toy". In state 1, no advertising

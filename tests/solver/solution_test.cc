@@ -13,6 +13,9 @@
 namespace mdp {
 namespace {
 
+using testing::kAllMethods;
+using testing::MustSolve;
+
 using testing::SpecWriter;
 
 // "stay" earns 1 forever (1 / (1 - g)); "leave" earns 5 once into a terminal state. At
@@ -26,14 +29,6 @@ Model StayOrLeave(double g) {
   return w.Build();
 }
 
-Solution MustSolve(const Model& m, Method method = Method::kPolicyIteration) {
-  SolveOptions options;
-  options.method = method;
-  options.tolerance = 1e-10;
-  Result<Solution> s = Solve(m, options);
-  EXPECT_OK(s);
-  return std::move(*s);
-}
 
 TEST(SolutionTest, ExactTieIsReportedWithBothActions) {
   const Model m = StayOrLeave(0.8);

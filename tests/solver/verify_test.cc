@@ -13,15 +13,11 @@
 namespace mdp {
 namespace {
 
+using testing::kAllMethods;
+using testing::MustSolve;
+
 using testing::SpecWriter;
 
-Solution MustSolve(const Model& m) {
-  SolveOptions options;
-  options.tolerance = 1e-11;
-  Result<Solution> s = Solve(m, options);
-  EXPECT_OK(s);
-  return std::move(*s);
-}
 
 // A model with no terminal states: shifting V* by a constant c makes T V - V = (g - 1) c in
 // every state, so the residual is (1 - g) |c| and the implied bound e / (1 - g) is |c|
@@ -31,7 +27,7 @@ TEST(VerifyValuesTest, ConstantShiftGivesExactResidualAndBound) {
   o.terminal_fraction = 0.0;
   o.discount = 0.9;
   const Model m = testing::MustBuild(testing::RandomSpec(21, o));
-  const Solution s = MustSolve(m);
+  const Solution s = MustSolve(m, Method::kPolicyIteration, 1e-11);
   for (double c : {0.5, -2.0}) {
     std::vector<double> candidate = s.values;
     for (double& v : candidate) v += c;
@@ -48,7 +44,7 @@ TEST(VerifyValuesTest, ConstantShiftGivesExactResidualAndBound) {
 
 TEST(VerifyValuesTest, OptimalValuesPassAndWorstStateIsThePerturbedOne) {
   const Model m = testing::MustBuild(testing::RandomSpec(22, {}));
-  const Solution s = MustSolve(m);
+  const Solution s = MustSolve(m, Method::kPolicyIteration, 1e-11);
   VerifyOptions options;
   EXPECT_TRUE(VerifyValues(m, s.values, options).pass);
   std::vector<double> candidate = s.values;
@@ -70,7 +66,7 @@ TEST(VerifyPolicyTest, SuboptimalPolicyLossIsExact) {
   w.Action("here", "stay", {{"here", 1.0, 1.0}});
   w.Action("here", "leave", {{"gone", 1.0, 5.0}});
   const Model m = w.Build();
-  const Solution s = MustSolve(m);
+  const Solution s = MustSolve(m, Method::kPolicyIteration, 1e-11);
   const std::vector<RowId> leave = {1, -1};
   Result<PolicyReport> r = VerifyPolicy(m, DeterministicPolicy(m, leave), s, VerifyOptions{});
   ASSERT_OK(r);
@@ -98,7 +94,7 @@ TEST(VerifyPolicyTest, OptimalPoliciesPassIncludingUniformOverTies) {
   w.Action("here", "stay", {{"here", 1.0, 1.0}});
   w.Action("here", "leave", {{"gone", 1.0, 5.0}});
   const Model m = w.Build();
-  const Solution s = MustSolve(m);
+  const Solution s = MustSolve(m, Method::kPolicyIteration, 1e-11);
   for (const Policy& p : {GreedyPolicy(m, s), UniformOptimalPolicy(m, s)}) {
     Result<PolicyReport> r = VerifyPolicy(m, p, s, VerifyOptions{});
     ASSERT_OK(r);
@@ -114,7 +110,7 @@ TEST(VerifyPolicyTest, MinimizeLossIsPolicyCostAboveOptimum) {
   w.Action("s", "cheap", {{"end", 1.0, 1.0}});
   w.Action("s", "dear", {{"end", 1.0, 4.0}});
   const Model m = w.Build();
-  const Solution s = MustSolve(m);
+  const Solution s = MustSolve(m, Method::kPolicyIteration, 1e-11);
   EXPECT_NEAR(s.values[0], 1.0, 1e-12);
   const std::vector<RowId> dear = {1, -1};
   Result<PolicyReport> r = VerifyPolicy(m, DeterministicPolicy(m, dear), s, VerifyOptions{});

@@ -1,10 +1,14 @@
 #include "tests/testing/test_models.h"
 
+#include <gtest/gtest.h>
+
 #include <algorithm>
 #include <cstdlib>
 #include <iostream>
 #include <numeric>
 #include <random>
+
+#include "solver/solver.h"
 
 namespace mdp::testing {
 
@@ -47,6 +51,18 @@ Model MustBuild(const ModelSpec& spec) {
     std::abort();
   }
   return std::move(*model);
+}
+
+Solution MustSolve(const Model& m, Method method, double tolerance) {
+  SolveOptions options;
+  options.method = method;
+  options.tolerance = tolerance;
+  Result<Solution> solution = Solve(m, options);
+  if (!solution.ok()) {
+    ADD_FAILURE() << "solve failed: " << solution.status().ToString();
+    return Solution();
+  }
+  return std::move(*solution);
 }
 
 SpecWriter::SpecWriter(double discount, Objective objective)

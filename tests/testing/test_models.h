@@ -9,6 +9,8 @@
 #include <vector>
 
 #include "solver/model.h"
+#include "solver/options.h"
+#include "solver/solution.h"
 #include "solver/model_spec.h"
 
 namespace mdp::testing {
@@ -28,6 +30,14 @@ ModelSpec RandomSpec(uint64_t seed, const RandomModelOptions& options);
 
 // Builds a Model from `spec`; aborts the test binary if the spec is invalid.
 Model MustBuild(const ModelSpec& spec);
+
+inline constexpr Method kAllMethods[] = {Method::kValueIteration, Method::kGaussSeidel,
+                                         Method::kPolicyIteration,
+                                         Method::kModifiedPolicyIteration};
+
+// Solves `m` with `method` to `tolerance`; records a test failure if the call fails.
+Solution MustSolve(const Model& m, Method method = Method::kPolicyIteration,
+                   double tolerance = 1e-10);
 
 // A one-line outcome list entry for SpecWriter.
 struct Out {
