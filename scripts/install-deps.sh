@@ -7,7 +7,8 @@ packages=(
   build-essential cmake pkg-config
   nlohmann-json3-dev libeigen3-dev libspdlog-dev libfmt-dev
   libgtest-dev libgmock-dev googletest libbenchmark-dev
-  libcpp-httplib-dev libcli11-dev libsqlite3-dev libssl-dev zlib1g-dev
+  libcpp-httplib-dev libcli11-dev libsqlite3-dev libssl-dev zlib1g-dev libbrotli-dev
+  wrk nginx-light curl
   python3 python3-scipy python3-numpy python3-jsonschema
 )
 

@@ -11,6 +11,7 @@
 #include "server/file_io.h"
 #include "server/json_codec.h"
 #include "server/model_codec.h"
+#include "server/serve.h"
 
 namespace mdp::server {
 namespace {
@@ -293,6 +294,11 @@ int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
       ->capture_default_str()
       ->check(CLI::IsMember({"auto", "direct", "bicgstab", "sweeps"}));
 
+  ServerConfig serve_config;
+  CLI::App* serve = app.add_subcommand(
+      "serve", "run the planning service over HTTP (see api-schema/openapi.json)");
+  AddServeOptions(serve, serve_config);
+
   try {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
@@ -303,6 +309,7 @@ int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
   if (solve->parsed()) return RunSolve(solve_args, out, err);
   if (verify->parsed()) return RunVerify(verify_args, out, err);
   if (evaluate->parsed()) return RunEvaluate(evaluate_args, out, err);
+  if (serve->parsed()) return RunServe(serve_config, out);
   return kExitBadInput;
 }
 

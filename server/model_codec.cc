@@ -563,6 +563,7 @@ ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits)
     return out;
   }
   out.model = std::move(*model);
+  out.spec = std::move(decoded.spec);
   return out;
 }
 

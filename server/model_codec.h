@@ -34,6 +34,7 @@ struct DecodeLimits {
 
 struct ModelDecodeResult {
   std::optional<Model> model;  // Set iff `errors` is empty and errors_not_listed == 0.
+  ModelSpec spec;              // The model as written (set with `model`), for re-encoding.
   std::vector<DocumentIssue> errors;
   std::vector<DocumentIssue> warnings;
   int64_t errors_not_listed = 0;

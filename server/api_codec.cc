@@ -1,0 +1,288 @@
+#include "server/api_codec.h"
+
+#include <algorithm>
+#include <cmath>
+
+#include "server/canonical.h"
+#include "server/json_codec.h"
+
+namespace mdp::server {
+namespace {
+
+Status Invalid(const std::string& pointer, const std::string& message) {
+  return InvalidArgumentError(pointer + ": " + message);
+}
+
+Result<Json> ParseObject(std::string_view text) {
+  JsonReadResult read = ReadJson(text, JsonReadOptions{});
+  if (!read.errors.empty()) {
+    return InvalidArgumentError(
+        (read.errors.front().pointer.empty() ? "(document)" : read.errors.front().pointer) +
+        ": " + read.errors.front().message);
+  }
+  if (!read.root.is_object()) return Invalid("(document)", "must be a JSON object");
+  return std::move(read.root);
+}
+
+Status ReadDouble(const Json& obj, const char* key, const std::string& ptr, double* out) {
+  auto it = obj.find(key);
+  if (it == obj.end()) return Status::Ok();
+  if (!it->is_number()) return Invalid(ptr + "/" + key, "must be a number");
+  *out = it->get<double>();
+  return Status::Ok();
+}
+
+Status ReadInt(const Json& obj, const char* key, const std::string& ptr, int64_t* out) {
+  auto it = obj.find(key);
+  if (it == obj.end()) return Status::Ok();
+  if (!it->is_number_integer()) return Invalid(ptr + "/" + key, "must be an integer");
+  *out = it->get<int64_t>();
+  return Status::Ok();
+}
+
+Json NumberOrNull(double x) { return std::isfinite(x) ? Json(x) : Json(nullptr); }
+
+}  // namespace
+
+Result<SolveOptions> DecodeSolveOptions(const Json& json) {
+  const std::string ptr = "/options";
+  if (!json.is_object()) return Invalid(ptr, "must be an object");
+  SolveOptions o;
+  for (auto it = json.begin(); it != json.end(); ++it) {
+    static const char* kKnown[] = {"method", "tolerance", "max_iterations", "time_limit_seconds",
+                                   "evaluation_sweeps", "linear_solver", "tie_tolerance",
+                                   "threads"};
+    if (std::none_of(std::begin(kKnown), std::end(kKnown),
+                     [&](const char* k) { return it.key() == k; })) {
+      return Invalid(ptr + "/" + EscapePointerToken(it.key()), "unknown option");
+    }
+  }
+  if (auto it = json.find("method"); it != json.end()) {
+    std::optional<Method> m = it->is_string() ? ParseMethod(it->get<std::string>()) : std::nullopt;
+    if (!m) {
+      return Invalid(ptr + "/method", "must be one of value_iteration, gauss_seidel, "
+                                      "policy_iteration, modified_policy_iteration");
+    }
+    o.method = *m;
+  }
+  if (auto it = json.find("linear_solver"); it != json.end()) {
+    std::optional<LinearSolver> s =
+        it->is_string() ? ParseLinearSolver(it->get<std::string>()) : std::nullopt;
+    if (!s) return Invalid(ptr + "/linear_solver", "must be auto, direct, bicgstab or sweeps");
+    o.linear_solver = *s;
+  }
+  int64_t threads = o.threads;
+  MDP_RETURN_IF_ERROR(ReadDouble(json, "tolerance", ptr, &o.tolerance));
+  MDP_RETURN_IF_ERROR(ReadInt(json, "max_iterations", ptr, &o.max_iterations));
+  MDP_RETURN_IF_ERROR(ReadDouble(json, "time_limit_seconds", ptr, &o.time_limit_seconds));
+  MDP_RETURN_IF_ERROR(ReadInt(json, "evaluation_sweeps", ptr, &o.evaluation_sweeps));
+  MDP_RETURN_IF_ERROR(ReadDouble(json, "tie_tolerance", ptr, &o.tie_tolerance));
+  MDP_RETURN_IF_ERROR(ReadInt(json, "threads", ptr, &threads));
+  o.threads = static_cast<int>(std::clamp<int64_t>(threads, -1, 1 << 20));
+  MDP_RETURN_IF_ERROR(CheckSolveOptions(o));
+  return o;
+}
+
+Result<SolveOptions> DecodeSolveOptionsText(std::string_view text) {
+  Result<Json> json = ParseObject(text);
+  if (!json.ok()) return json.status();
+  return DecodeSolveOptions(*json);
+}
+
+Result<SolveRequest> DecodeSolveRequest(std::string_view body) {
+  Result<Json> json = ParseObject(body);
+  if (!json.ok()) return json.status();
+  SolveRequest request;
+  for (auto it = json->begin(); it != json->end(); ++it) {
+    if (it.key() != "model_id" && it.key() != "options") {
+      return Invalid("/" + EscapePointerToken(it.key()), "unknown field");
+    }
+  }
+  auto id = json->find("model_id");
+  if (id == json->end() || !id->is_string()) {
+    return Invalid("/model_id", "required: the id of an uploaded model");
+  }
+  request.model_id = id->get<std::string>();
+  if (auto options = json->find("options"); options != json->end()) {
+    Result<SolveOptions> decoded = DecodeSolveOptions(*options);
+    if (!decoded.ok()) return decoded.status();
+    request.options = *decoded;
+  }
+  return request;
+}
+
+Result<VerifyRequest> DecodeVerifyRequest(std::string_view body) {
+  Result<Json> json = ParseObject(body);
+  if (!json.ok()) return json.status();
+  VerifyRequest request;
+  const bool values = json->contains("values");
+  const bool policy = json->contains("policy");
+  if (values == policy) {
+    return Invalid("(document)", "give exactly one of \"values\" or \"policy\"");
+  }
+  request.kind = values ? "values" : "policy";
+  MDP_RETURN_IF_ERROR(ReadDouble(*json, "tolerance", "", &request.tolerance));
+  if (!(request.tolerance >= 0.0 && std::isfinite(request.tolerance))) {
+    return Invalid("/tolerance", "must be a finite number at least 0");
+  }
+  int64_t worst = request.worst;
+  MDP_RETURN_IF_ERROR(ReadInt(*json, "worst", "", &worst));
+  if (worst < 0 || worst > 10000) return Invalid("/worst", "must be between 0 and 10000");
+  request.worst = static_cast<int>(worst);
+  if (auto it = json->find("solution_id"); it != json->end()) {
+    if (!it->is_string()) return Invalid("/solution_id", "must be a string");
+    request.solution_id = it->get<std::string>();
+  }
+  return request;
+}
+
+Json EncodeSolutionReport(const Model& m, const Solution& solution,
+                          const std::string& solution_id) {
+  Json report = EncodeSolution(m, solution, SolutionDetail::kSummary);
+  report.erase("values");
+  report.erase("policy");
+  report["id"] = solution_id;
+  return report;
+}
+
+Json EncodeModelRecord(const ModelRecord& r) {
+  Json out = {{"id", r.id},
+              {"name", r.name},
+              {"states", r.states},
+              {"actions", r.actions},
+              {"state_actions", r.state_actions},
+              {"outcomes", r.outcomes},
+              {"created_at", r.created_at}};
+  out["warnings"] = r.warnings_json.empty() ? Json::array() : Json::parse(r.warnings_json);
+  return out;
+}
+
+Json EncodeUpload(const UploadResult& upload) {
+  Json out = EncodeModelRecord(upload.record);
+  out["created"] = upload.created;
+  Json warnings = Json::array();
+  for (const DocumentIssue& w : upload.warnings) {
+    warnings.push_back({{"pointer", w.pointer}, {"message", w.message}});
+  }
+  out["warnings"] = std::move(warnings);
+  return out;
+}
+
+Json EncodeJobView(const JobView& view) {
+  const JobRecord& r = view.record;
+  auto optional = [](const std::string& s) { return s.empty() ? Json(nullptr) : Json(s); };
+  Json out = {{"id", r.id},
+              {"kind", r.kind},
+              {"model_id", r.model_id},
+              {"status", JobStatusName(r.status)},
+              {"created_at", r.created_at},
+              {"started_at", optional(r.started_at)},
+              {"finished_at", optional(r.finished_at)},
+              {"solution_id", optional(r.solution_id)},
+              {"error", optional(r.error)}};
+  if (r.kind == "solve" && !r.request_json.empty()) out["options"] = Json::parse(r.request_json);
+  if (!r.result_json.empty()) out["result"] = Json::parse(r.result_json);
+  if (view.progress) {
+    out["progress"] = {{"iteration", view.progress->iteration},
+                       {"sweeps", view.progress->sweeps},
+                       {"residual", NumberOrNull(view.progress->residual)},
+                       {"error_bound", NumberOrNull(view.progress->error_bound)},
+                       {"elapsed_seconds", view.progress->elapsed_seconds},
+                       {"phase", view.phase}};
+  } else {
+    out["progress"] = nullptr;
+  }
+  return out;
+}
+
+Json EncodeSolutionRecord(const SolutionRecord& r) {
+  Json out = r.report_json.empty() ? Json::object() : Json::parse(r.report_json);
+  out["id"] = r.id;
+  out["model_id"] = r.model_id;
+  out["created_at"] = r.created_at;
+  return out;
+}
+
+void AppendBestAction(std::string& out, const Plan& plan, StateId s) {
+  const Model& m = *plan.model;
+  const Solution& sol = *plan.solution;
+  out += "{\"state\":";
+  AppendJsonString(out, m.state_name(s));
+  out += ",\"terminal\":";
+  out += m.terminal(s) ? "true" : "false";
+  out += ",\"action\":";
+  if (sol.best_row[s] >= 0) {
+    AppendJsonString(out, m.row_action_name(sol.best_row[s]));
+  } else {
+    out += "null";
+  }
+  out += ",\"optimal_actions\":[";
+  bool first = true;
+  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+    if (!sol.optimal_row[r]) continue;
+    if (!first) out += ',';
+    first = false;
+    AppendJsonString(out, m.row_action_name(r));
+  }
+  out += "],\"value\":";
+  AppendJsonNumber(out, sol.values[s]);
+  out += ",\"q\":{";
+  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+    if (r > m.row_begin(s)) out += ',';
+    AppendJsonString(out, m.row_action_name(r));
+    out += ':';
+    AppendJsonNumber(out, sol.q[r]);
+  }
+  out += "},\"action_gap\":";
+  if (std::isnan(sol.action_gap[s])) {
+    out += "null";
+  } else {
+    AppendJsonNumber(out, sol.action_gap[s]);
+  }
+  out += ",\"tied\":";
+  out += sol.OptimalCount(m, s) >= 2 ? "true" : "false";
+  out += ",\"value_error_bound\":";
+  AppendJsonNumber(out, sol.value_error_bound);
+  out += ",\"solution_id\":";
+  AppendJsonString(out, plan.solution_id);
+  out += '}';
+}
+
+Json EncodeExplain(const Plan& plan, StateId s) {
+  const Model& m = *plan.model;
+  const Solution& sol = *plan.solution;
+  Json actions = Json::array();
+  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+    // Q = r(s, a) + g * sum p V1(s'): the stored Q is the total, so the discounted next
+    // value is Q - r exactly as the solution computed it.
+    std::vector<std::pair<double, StateId>> next;
+    for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
+      next.emplace_back(m.entry_probability(e), m.entry_next(e));
+    }
+    std::sort(next.begin(), next.end(), [](auto& a, auto& b) { return a.first > b.first; });
+    Json outcomes = Json::array();
+    for (size_t i = 0; i < next.size() && i < 20; ++i) {
+      outcomes.push_back({{"next", m.state_name(next[i].second)},
+                          {"probability", next[i].first},
+                          {"value", sol.values[next[i].second]}});
+    }
+    actions.push_back({{"action", m.row_action_name(r)},
+                       {"optimal", sol.optimal_row[r] != 0},
+                       {"expected_reward", m.row_reward(r)},
+                       {"discounted_next_value", sol.q[r] - m.row_reward(r)},
+                       {"q", sol.q[r]},
+                       {"next_states", static_cast<int64_t>(next.size())},
+                       {"outcomes", std::move(outcomes)}});
+  }
+  return {{"state", m.state_name(s)},
+          {"terminal", m.terminal(s)},
+          {"discount", m.discount()},
+          {"objective", m.objective() == Objective::kMaximize ? "maximize" : "minimize"},
+          {"value", sol.values[s]},
+          {"action", sol.best_row[s] >= 0 ? Json(m.row_action_name(sol.best_row[s]))
+                                          : Json(nullptr)},
+          {"actions", std::move(actions)},
+          {"solution_id", plan.solution_id}};
+}
+
+}  // namespace mdp::server

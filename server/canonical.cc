@@ -1,0 +1,116 @@
+#include "server/canonical.h"
+
+#include <openssl/evp.h>
+
+#include <charconv>
+#include <cstdio>
+
+namespace mdp::server {
+
+void AppendJsonString(std::string& out, std::string_view text) {
+  static constexpr char kHex[] = "0123456789abcdef";
+  out += '"';
+  for (char c : text) {
+    const auto u = static_cast<unsigned char>(c);
+    switch (c) {
+      case '"': out += "\\\""; break;
+      case '\\': out += "\\\\"; break;
+      case '\n': out += "\\n"; break;
+      case '\r': out += "\\r"; break;
+      case '\t': out += "\\t"; break;
+      case '\b': out += "\\b"; break;
+      case '\f': out += "\\f"; break;
+      default:
+        if (u < 0x20) {
+          out += "\\u00";
+          out += kHex[u >> 4];
+          out += kHex[u & 15];
+        } else {
+          out += c;
+        }
+    }
+  }
+  out += '"';
+}
+
+void AppendJsonNumber(std::string& out, double value) {
+  if (value == 0.0) value = 0.0;  // -0 and 0 print alike.
+  char buffer[32];
+  const auto result = std::to_chars(buffer, buffer + sizeof buffer, value);
+  out.append(buffer, result.ptr);
+}
+
+std::string EncodeCanonicalModel(const ModelSpec& spec) {
+  std::string out;
+  out.reserve(static_cast<size_t>(spec.num_outcomes()) * 48 + 4096);
+  out += "{\"actions\":[";
+  for (size_t a = 0; a < spec.action_names.size(); ++a) {
+    if (a) out += ',';
+    AppendJsonString(out, spec.action_names[a]);
+  }
+  out += "],\"criterion\":{\"discount\":";
+  AppendJsonNumber(out, spec.criterion.discount);
+  out += ",\"kind\":\"discounted\"}";
+  if (!spec.description.empty()) {
+    out += ",\"description\":";
+    AppendJsonString(out, spec.description);
+  }
+  out += ",\"format\":\"mdpserve/model@1\",\"name\":";
+  AppendJsonString(out, spec.name);
+  out += ",\"objective\":";
+  out += spec.objective == Objective::kMaximize ? "\"maximize\"" : "\"minimize\"";
+  if (!spec.reward_unit.empty()) {
+    out += ",\"reward_unit\":";
+    AppendJsonString(out, spec.reward_unit);
+  }
+  out += ",\"states\":[";
+  for (StateId s = 0; s < spec.num_states(); ++s) {
+    if (s) out += ',';
+    out += "{\"actions\":[";
+    for (SlotId slot = spec.state_first_slot[s]; slot < spec.state_first_slot[s + 1]; ++slot) {
+      if (slot > spec.state_first_slot[s]) out += ',';
+      out += "{\"action\":";
+      AppendJsonString(out, spec.action_names[spec.slot_action[slot]]);
+      out += ",\"outcomes\":[";
+      for (OutcomeId o = spec.slot_first_outcome[slot]; o < spec.slot_first_outcome[slot + 1]; ++o) {
+        if (o > spec.slot_first_outcome[slot]) out += ',';
+        out += "{\"next\":";
+        AppendJsonString(out, spec.state_names[spec.outcome_next[o]]);
+        out += ",\"probability\":";
+        AppendJsonNumber(out, spec.outcome_probability[o]);
+        out += ",\"reward\":";
+        AppendJsonNumber(out, spec.outcome_reward[o]);
+        out += '}';
+      }
+      out += "],\"reward\":";
+      AppendJsonNumber(out, spec.slot_reward[slot]);
+      out += '}';
+    }
+    out += "],\"name\":";
+    AppendJsonString(out, spec.state_names[s]);
+    out += ",\"terminal\":";
+    out += spec.terminal[s] ? "true" : "false";
+    out += '}';
+  }
+  out += "]}";
+  return out;
+}
+
+std::string Sha256Hex(std::string_view bytes) {
+  unsigned char digest[EVP_MAX_MD_SIZE];
+  unsigned int length = 0;
+  EVP_Digest(bytes.data(), bytes.size(), digest, &length, EVP_sha256(), nullptr);
+  static constexpr char kHex[] = "0123456789abcdef";
+  std::string out;
+  for (unsigned int i = 0; i < length; ++i) {
+    out += kHex[digest[i] >> 4];
+    out += kHex[digest[i] & 15];
+  }
+  return out;
+}
+
+std::string ModelId(std::string_view canonical_document) {
+  return Sha256Hex(canonical_document).substr(0, 32);
+}
+
+}  // namespace mdp::server

@@ -1,0 +1,33 @@
+// Canonical form and content id of a model. The canonical document is the model re-encoded
+// in one fixed way — compact JSON, keys in sorted order, every optional field written out
+// (rewards 0, terminal false), numbers in shortest round-trip form — so two documents that
+// say the same thing (whitespace, key order, "0.50" vs "0.5", omitted defaults) get the same
+// text and the same id. Written without building a DOM, so it scales to millions of states.
+// Stateless; thread-safe.
+#ifndef MDP_SERVER_CANONICAL_H_
+#define MDP_SERVER_CANONICAL_H_
+
+#include <string>
+#include <string_view>
+
+#include "solver/model_spec.h"
+
+namespace mdp::server {
+
+// REQUIRES: `spec` passed Validate().
+std::string EncodeCanonicalModel(const ModelSpec& spec);
+
+// Lower-case hex SHA-256 of `bytes`.
+std::string Sha256Hex(std::string_view bytes);
+
+// A model's id: the first 32 hex digits (128 bits) of the SHA-256 of its canonical text.
+std::string ModelId(std::string_view canonical_document);
+
+// Appends `text` as a JSON string literal (quotes and escapes included).
+void AppendJsonString(std::string& out, std::string_view text);
+// Appends a finite double in shortest round-trip form.
+void AppendJsonNumber(std::string& out, double value);
+
+}  // namespace mdp::server
+
+#endif  // MDP_SERVER_CANONICAL_H_

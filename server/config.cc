@@ -1,0 +1,76 @@
+#include "server/config.h"
+
+#include <CLI/CLI.hpp>
+
+namespace mdp::server {
+
+void AddServeOptions(CLI::App* app, ServerConfig& c) {
+  app->add_option("--listen", c.listen, "address to listen on, HOST:PORT (port 0: any free)")
+      ->envname("MDPSERVE_LISTEN")
+      ->capture_default_str();
+  app->add_option("--data-dir", c.data_dir, "directory of the embedded store")
+      ->envname("MDPSERVE_DATA_DIR")
+      ->capture_default_str();
+  app->add_flag("--memory-store", c.memory_store, "keep everything in memory only")
+      ->envname("MDPSERVE_MEMORY_STORE");
+  app->add_option("--workers", c.workers, "solve worker threads")
+      ->envname("MDPSERVE_WORKERS")
+      ->capture_default_str()
+      ->check(CLI::Range(1, 256));
+  app->add_option("--solver-threads", c.solver_threads, "threads each solve uses for sweeps")
+      ->envname("MDPSERVE_SOLVER_THREADS")
+      ->capture_default_str()
+      ->check(CLI::Range(1, 256));
+  app->add_option("--http-threads", c.http_threads, "HTTP connection threads")
+      ->envname("MDPSERVE_HTTP_THREADS")
+      ->capture_default_str()
+      ->check(CLI::Range(1, 1024));
+  app->add_option("--body-limit", c.body_limit, "request body limit in bytes")
+      ->envname("MDPSERVE_BODY_LIMIT")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{1024}, int64_t{1} << 40));
+  app->add_option("--cache-bytes", c.cache_bytes, "byte budget of the model/solution cache")
+      ->envname("MDPSERVE_CACHE_BYTES")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{0}, int64_t{1} << 50));
+  app->add_option("--queue-length", c.queue_length, "solve jobs waiting at most (then 429)")
+      ->envname("MDPSERVE_QUEUE_LENGTH")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{1}, int64_t{1000000}));
+  app->add_option("--token-file", c.token_file,
+                  "file holding a bearer token required on every route but /healthz, /readyz")
+      ->envname("MDPSERVE_TOKEN_FILE");
+  app->add_option("--log-level", c.log_level, "trace, debug, info, warn, error or off")
+      ->envname("MDPSERVE_LOG_LEVEL")
+      ->capture_default_str()
+      ->check(CLI::IsMember({"trace", "debug", "info", "warn", "error", "off"}));
+  app->add_option("--shutdown-deadline", c.shutdown_deadline,
+                  "seconds running jobs may finish after SIGTERM before they are cancelled")
+      ->envname("MDPSERVE_SHUTDOWN_DEADLINE")
+      ->capture_default_str()
+      ->check(CLI::Range(0.0, 86400.0));
+  app->add_option("--port-file", c.port_file, "write the bound port to this file")
+      ->envname("MDPSERVE_PORT_FILE");
+  app->add_option("--preload", c.preload, "model files to upload and solve before serving");
+}
+
+Status ParseListen(const std::string& listen, std::string* host, int* port) {
+  const size_t colon = listen.rfind(':');
+  if (colon == std::string::npos || colon == 0) {
+    return InvalidArgumentError("--listen must be HOST:PORT, got '" + listen + "'");
+  }
+  *host = listen.substr(0, colon);
+  if (host->size() > 2 && host->front() == '[' && host->back() == ']') {
+    *host = host->substr(1, host->size() - 2);
+  }
+  try {
+    size_t used = 0;
+    *port = std::stoi(listen.substr(colon + 1), &used);
+    if (used != listen.size() - colon - 1 || *port < 0 || *port > 65535) throw 0;
+  } catch (...) {
+    return InvalidArgumentError("--listen port must be 0..65535, got '" + listen + "'");
+  }
+  return Status::Ok();
+}
+
+}  // namespace mdp::server

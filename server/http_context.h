@@ -1,0 +1,45 @@
+// Internal to the HTTP layer: what handlers get, and the helpers they share. Only
+// http_server.cc and routes.cc include this (and with it cpp-httplib).
+#ifndef MDP_SERVER_HTTP_CONTEXT_H_
+#define MDP_SERVER_HTTP_CONTEXT_H_
+
+#include <httplib.h>
+
+#include <functional>
+#include <string>
+#include <vector>
+
+#include "server/metrics.h"
+#include "server/planning_service.h"
+#include "server/problem.h"
+
+namespace mdp::server {
+
+struct HttpContext {
+  PlanningService& service;
+  MetricsRegistry& registry;
+};
+
+using Handler = std::function<void(HttpContext&, const httplib::Request&, httplib::Response&)>;
+
+struct Route {
+  const char* method;    // "GET", "POST", "DELETE".
+  const char* route;     // Template for metrics and logs, e.g. "/v1/models/{id}".
+  const char* pattern;   // Regex matched against the path.
+  Handler handler;
+};
+
+// The route table (routes.cc): every URL leads to its handler from here.
+const std::vector<Route>& ApiRoutes();
+
+void WriteJson(httplib::Response& res, int status, const std::string& body);
+void WriteProblem(httplib::Response& res, const Problem& problem);
+inline void WriteProblem(httplib::Response& res, const Status& status) {
+  WriteProblem(res, MakeProblem(status));
+}
+// True iff the request body is declared as JSON; otherwise writes 415 and returns false.
+bool RequireJsonBody(const httplib::Request& req, httplib::Response& res);
+
+}  // namespace mdp::server
+
+#endif  // MDP_SERVER_HTTP_CONTEXT_H_

@@ -1,0 +1,49 @@
+// HttpServer: the HTTP front of the planning service (API: api-schema/openapi.json). It owns
+// the connection threads (cpp-httplib's pool), checks the bearer token, body size and
+// content type, routes requests to thin handlers (routes.cc), records per-route metrics and
+// logs one line per request. Solves never run on its threads. Serve() blocks; Stop() may be
+// called from any thread.
+#ifndef MDP_SERVER_HTTP_SERVER_H_
+#define MDP_SERVER_HTTP_SERVER_H_
+
+#include <cstdint>
+#include <memory>
+#include <string>
+
+#include "server/metrics.h"
+#include "server/planning_service.h"
+#include "solver/status.h"
+
+namespace mdp::server {
+
+struct HttpOptions {
+  std::string host = "127.0.0.1";
+  int port = 8080;                         // 0: any free port (see HttpServer::port()).
+  int threads = 8;                         // Connection threads.
+  int64_t body_limit = int64_t{256} << 20;  // Bytes; larger bodies get 413.
+  std::string token;                       // Non-empty: required as "Bearer <token>".
+};
+
+class HttpServer {
+ public:
+  HttpServer(PlanningService& service, MetricsRegistry& registry, HttpOptions options);
+  ~HttpServer();
+
+  // Binds the listening socket. kUnavailable if the address cannot be bound.
+  Status Bind();
+  int port() const;
+  // Accepts connections until Stop(). REQUIRES: Bind() succeeded.
+  void Serve();
+  void Stop();
+
+ private:
+  struct Impl;
+  std::unique_ptr<Impl> impl_;
+};
+
+// The OpenAPI document served at /v1/openapi.json (generated from api-schema/openapi.json).
+extern const char* const kOpenApiDocument;
+
+}  // namespace mdp::server
+
+#endif  // MDP_SERVER_HTTP_SERVER_H_

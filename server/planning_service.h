@@ -1,0 +1,157 @@
+// PlanningService: the service layer behind the HTTP API, testable without HTTP. It accepts
+// model documents (validated, stored under a content id), runs solve and verify jobs on a
+// JobQueue, keeps solved tables in a ResultCache (reloading from the Store on a miss), and
+// hands out Plans (a model and one of its solutions) that answer policy queries.
+// Thread-safe: any number of threads may call any method concurrently. The Store must
+// outlive the service.
+#ifndef MDP_SERVER_PLANNING_SERVICE_H_
+#define MDP_SERVER_PLANNING_SERVICE_H_
+
+#include <atomic>
+#include <cstdint>
+#include <functional>
+#include <map>
+#include <memory>
+#include <mutex>
+#include <optional>
+#include <string>
+#include <string_view>
+#include <vector>
+
+#include "server/job_queue.h"
+#include "server/model_codec.h"
+#include "server/result_cache.h"
+#include "server/store.h"
+#include "solver/solver.h"
+
+namespace mdp::server {
+
+struct ServiceOptions {
+  int workers = 1;                         // Solve worker threads.
+  int64_t queue_capacity = 64;             // Jobs waiting at most; more get kResourceExhausted.
+  int64_t cache_bytes = int64_t{2} << 30;  // Byte budget of the model/solution cache.
+  int solver_threads = 1;                  // Threads each solve uses for its sweeps.
+  int64_t sync_verify_max_rows = 200'000;  // Larger models verify as a job.
+  DecodeLimits limits;                     // Caps on uploaded documents.
+  // Called on the worker thread when a job ends, with its final record and the seconds it
+  // ran; for metrics. Must be quick and thread-safe.
+  std::function<void(const JobRecord&, double)> on_job_finished;
+};
+
+struct UploadResult {
+  bool created = false;                // False if the same model was already stored.
+  ModelRecord record;                  // Without the document.
+  std::vector<DocumentIssue> errors;   // Non-empty: the document is not a valid model.
+  int64_t errors_not_listed = 0;
+  std::vector<DocumentIssue> warnings;
+};
+
+// A job as seen by callers: the record plus live progress while it runs.
+struct JobView {
+  JobRecord record;
+  std::optional<Progress> progress;  // Set while running (and after, if it ran).
+  std::string phase;                 // Copy of progress->phase (the view outlives it).
+};
+
+// The answer to "solve this": a new or already running job, or an existing solution.
+struct SolveStart {
+  std::optional<JobView> job;      // Set unless the solution already existed.
+  std::string cached_solution_id;  // Set iff the same model and options were solved before.
+};
+
+// What answers queries: a model and one solution of it. Both are shared and immutable.
+struct Plan {
+  std::string model_id;
+  std::string solution_id;
+  std::shared_ptr<const Model> model;
+  std::shared_ptr<const Solution> solution;
+};
+
+// A verification: finished (report JSON) or running as a job.
+struct VerifyStart {
+  std::string report_json;      // Set when verified synchronously.
+  bool passed = false;          // With report_json.
+  std::optional<JobView> job;   // Set when the model is large enough to verify as a job.
+  std::vector<DocumentIssue> errors;  // Non-empty: the candidate is not valid for the model.
+};
+
+class PlanningService {
+ public:
+  PlanningService(Store& store, ServiceOptions options);
+  ~PlanningService();  // Calls Shutdown(0).
+  PlanningService(const PlanningService&) = delete;
+  PlanningService& operator=(const PlanningService&) = delete;
+
+  // Recovers after a restart: jobs that were running are marked failed (their process died
+  // under them), queued ones are queued again; each model's newest solution becomes current.
+  Status Start();
+  // Stops accepting work, lets running jobs finish for up to `deadline_seconds`, then cancels
+  // them (they go back to queued, and run again at the next Start()). Idempotent.
+  void Shutdown(double deadline_seconds);
+  bool accepting() const { return accepting_.load(std::memory_order_acquire); }
+
+  // Models.
+  Result<UploadResult> UploadModel(std::string_view document);
+  Result<ModelRecord> GetModel(const std::string& id, bool with_document);
+  Result<std::vector<ModelRecord>> ListModels();
+  Status DeleteModel(const std::string& id);
+
+  // Solves. kResourceExhausted when the queue is full; kNotFound for an unknown model.
+  Result<SolveStart> StartSolve(const std::string& model_id, const SolveOptions& options);
+  Result<JobView> GetJob(const std::string& id);
+  Result<std::vector<JobView>> ListJobs(const std::string& model_id,
+                                        std::optional<JobStatus> status, int64_t limit);
+  // kFailedPrecondition if the job already finished.
+  Result<JobView> CancelJob(const std::string& id);
+
+  // Solutions and queries. An empty solution_id means the model's current (newest)
+  // solution; kFailedPrecondition if it has none yet.
+  Result<Plan> GetPlan(const std::string& model_id, const std::string& solution_id);
+  Result<std::vector<SolutionRecord>> ListSolutions(const std::string& model_id);
+  Result<SolutionRecord> GetSolutionRecord(const std::string& model_id,
+                                           const std::string& solution_id);
+
+  // Verifies a candidate (a values or policy document, optionally with "tolerance").
+  Result<VerifyStart> Verify(const std::string& model_id, std::string_view body);
+
+  // Gauges for /metrics.
+  int64_t queued_jobs() const { return queue_->queued(); }
+  int64_t running_jobs() const { return queue_->running(); }
+  const ResultCache& cache() const { return cache_; }
+
+ private:
+  struct ActiveJob;
+
+  Result<std::shared_ptr<const Model>> LoadModel(const std::string& model_id);
+  Result<std::shared_ptr<const Solution>> LoadSolution(const std::string& solution_id,
+                                                       const Model& model);
+  Status Enqueue(std::shared_ptr<ActiveJob> job);
+  void RunJob(const std::shared_ptr<ActiveJob>& job);
+  Status RunSolve(ActiveJob& job);
+  Status RunVerify(ActiveJob& job);
+  Result<VerifyStart> VerifyNow(const std::string& model_id, std::string_view body);
+  void Persist(ActiveJob& job);
+  JobView ViewOf(ActiveJob& job);
+  std::string CurrentSolution(const std::string& model_id);
+
+  Store& store_;
+  const ServiceOptions options_;
+  ResultCache cache_;
+  std::atomic<bool> accepting_{true};
+
+  std::mutex mu_;
+  std::map<std::string, std::shared_ptr<ActiveJob>> active_;  // By job id. GUARDED_BY(mu_)
+  std::map<std::string, std::string> active_by_solution_;     // Solution id -> job id.
+  std::map<std::string, std::string> current_solution_;       // Model id -> solution id.
+
+  std::unique_ptr<JobQueue> queue_;  // Last: its workers use the members above.
+};
+
+// Canonical JSON of solve options (what a solution id is a hash of).
+std::string CanonicalSolveOptions(const SolveOptions& options);
+// The current time as RFC 3339 UTC with milliseconds.
+std::string NowRfc3339();
+
+}  // namespace mdp::server
+
+#endif  // MDP_SERVER_PLANNING_SERVICE_H_

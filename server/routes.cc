@@ -1,0 +1,283 @@
+// The route table and its handlers: decode -> call the service -> encode. No maths, no
+// locking, no SQL here; status codes for errors come from problem.cc.
+#include <string>
+
+#include "server/api_codec.h"
+#include "server/http_context.h"
+#include "server/http_server.h"
+#include "server/json_codec.h"
+
+namespace mdp::server {
+namespace {
+
+using httplib::Request;
+using httplib::Response;
+
+std::string Param(const Request& req, const char* name) {
+  return req.has_param(name) ? req.get_param_value(name) : std::string();
+}
+
+Status MissingParam(const char* name) {
+  return InvalidArgumentError(std::string("query parameter '") + name + "' is required");
+}
+
+// Looks up `name` in the plan's model; writes 404 and returns -1 if absent.
+StateId FindStateOr404(const Plan& plan, const std::string& name, Response& res) {
+  std::optional<StateId> s = plan.model->FindState(name);
+  if (!s) WriteProblem(res, NotFoundError("model " + plan.model_id + " has no state '" + name + "'"));
+  return s.value_or(-1);
+}
+
+void UploadModel(HttpContext& ctx, const Request& req, Response& res) {
+  if (!RequireJsonBody(req, res)) return;
+  Result<UploadResult> upload = ctx.service.UploadModel(req.body);
+  if (!upload.ok()) return WriteProblem(res, upload.status());
+  if (!upload->errors.empty()) {
+    return WriteProblem(res, MakeProblem(InvalidArgumentError("the model document has " +
+                                                              std::to_string(upload->errors.size() + upload->errors_not_listed) +
+                                                              " errors"),
+                                         ProblemKind::kInvalidModel, upload->errors,
+                                         upload->errors_not_listed));
+  }
+  res.set_header("Location", "/v1/models/" + upload->record.id);
+  WriteJson(res, upload->created ? 201 : 200, EncodeUpload(*upload).dump());
+}
+
+void ListModels(HttpContext& ctx, const Request&, Response& res) {
+  Result<std::vector<ModelRecord>> models = ctx.service.ListModels();
+  if (!models.ok()) return WriteProblem(res, models.status());
+  Json list = Json::array();
+  for (const ModelRecord& m : *models) list.push_back(EncodeModelRecord(m));
+  WriteJson(res, 200, Json{{"models", std::move(list)}}.dump());
+}
+
+void GetModel(HttpContext& ctx, const Request& req, Response& res) {
+  Result<ModelRecord> model = ctx.service.GetModel(req.matches[1], false);
+  if (!model.ok()) return WriteProblem(res, model.status());
+  WriteJson(res, 200, EncodeModelRecord(*model).dump());
+}
+
+void GetModelDocument(HttpContext& ctx, const Request& req, Response& res) {
+  Result<ModelRecord> model = ctx.service.GetModel(req.matches[1], true);
+  if (!model.ok()) return WriteProblem(res, model.status());
+  WriteJson(res, 200, model->document);
+}
+
+void DeleteModel(HttpContext& ctx, const Request& req, Response& res) {
+  Status deleted = ctx.service.DeleteModel(req.matches[1]);
+  if (!deleted.ok()) return WriteProblem(res, deleted);
+  res.status = 204;
+}
+
+void StartSolve(HttpContext& ctx, const Request& req, Response& res) {
+  if (!RequireJsonBody(req, res)) return;
+  Result<SolveRequest> request = DecodeSolveRequest(req.body);
+  if (!request.ok()) return WriteProblem(res, request.status());
+  Result<SolveStart> start = ctx.service.StartSolve(request->model_id, request->options);
+  if (!start.ok()) return WriteProblem(res, start.status());
+  if (!start->job) {
+    const std::string where =
+        "/v1/models/" + request->model_id + "/solutions/" + start->cached_solution_id;
+    res.set_header("Location", where);
+    return WriteJson(res, 200, Json{{"cached", true},
+                                    {"model_id", request->model_id},
+                                    {"solution_id", start->cached_solution_id},
+                                    {"solution", where}}.dump());
+  }
+  res.set_header("Location", "/v1/jobs/" + start->job->record.id);
+  WriteJson(res, 202, EncodeJobView(*start->job).dump());
+}
+
+void ListJobs(HttpContext& ctx, const Request& req, Response& res) {
+  std::optional<JobStatus> status;
+  if (req.has_param("status")) {
+    status = ParseJobStatus(Param(req, "status"));
+    if (!status) return WriteProblem(res, InvalidArgumentError("unknown job status"));
+  }
+  int64_t limit = 100;
+  if (req.has_param("limit")) {
+    try {
+      limit = std::stoll(Param(req, "limit"));
+    } catch (...) {
+      limit = -1;
+    }
+    if (limit < 1 || limit > 10000) {
+      return WriteProblem(res, InvalidArgumentError("limit must be between 1 and 10000"));
+    }
+  }
+  Result<std::vector<JobView>> jobs = ctx.service.ListJobs(Param(req, "model_id"), status, limit);
+  if (!jobs.ok()) return WriteProblem(res, jobs.status());
+  Json list = Json::array();
+  for (const JobView& j : *jobs) list.push_back(EncodeJobView(j));
+  WriteJson(res, 200, Json{{"jobs", std::move(list)}}.dump());
+}
+
+void GetJob(HttpContext& ctx, const Request& req, Response& res) {
+  Result<JobView> job = ctx.service.GetJob(req.matches[1]);
+  if (!job.ok()) return WriteProblem(res, job.status());
+  WriteJson(res, 200, EncodeJobView(*job).dump());
+}
+
+void CancelJob(HttpContext& ctx, const Request& req, Response& res) {
+  Result<JobView> job = ctx.service.CancelJob(req.matches[1]);
+  if (!job.ok()) return WriteProblem(res, job.status());
+  WriteJson(res, 200, EncodeJobView(*job).dump());
+}
+
+void BestAction(HttpContext& ctx, const Request& req, Response& res) {
+  if (!req.has_param("state")) return WriteProblem(res, MissingParam("state"));
+  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], Param(req, "solution_id"));
+  if (!plan.ok()) return WriteProblem(res, plan.status());
+  const StateId s = FindStateOr404(*plan, Param(req, "state"), res);
+  if (s < 0) return;
+  std::string body;
+  body.reserve(512);
+  AppendBestAction(body, *plan, s);
+  WriteJson(res, 200, body);
+}
+
+void BestActionBatch(HttpContext& ctx, const Request& req, Response& res) {
+  if (!RequireJsonBody(req, res)) return;
+  JsonReadResult read = ReadJson(req.body, JsonReadOptions{});
+  if (!read.errors.empty()) {
+    return WriteProblem(res, MakeProblem(InvalidArgumentError(read.errors.front().message),
+                                         ProblemKind::kMalformedJson, read.errors));
+  }
+  const Json& states = read.root.is_object() && read.root.contains("states")
+                           ? read.root["states"] : Json();
+  if (!states.is_array() || states.empty() || states.size() > 100000) {
+    return WriteProblem(res, InvalidArgumentError(
+                                 "/states: must be an array of 1 to 100000 state names"));
+  }
+  std::string solution_id;
+  if (read.root.contains("solution_id") && read.root["solution_id"].is_string()) {
+    solution_id = read.root["solution_id"].get<std::string>();
+  }
+  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], solution_id);
+  if (!plan.ok()) return WriteProblem(res, plan.status());
+  std::vector<StateId> ids;
+  std::vector<DocumentIssue> unknown;
+  for (size_t i = 0; i < states.size(); ++i) {
+    std::optional<StateId> s =
+        states[i].is_string() ? plan->model->FindState(states[i].get<std::string>()) : std::nullopt;
+    if (!s) {
+      if (unknown.size() < 100) {
+        unknown.push_back({"/states/" + std::to_string(i), "not a state of this model"});
+      }
+      continue;
+    }
+    ids.push_back(*s);
+  }
+  if (!unknown.empty()) {
+    return WriteProblem(res, MakeProblem(InvalidArgumentError("unknown states in the batch"),
+                                         ProblemKind::kUnknownStates, unknown));
+  }
+  std::string body = "{\"solution_id\":\"" + plan->solution_id + "\",\"answers\":[";
+  for (size_t i = 0; i < ids.size(); ++i) {
+    if (i) body += ',';
+    AppendBestAction(body, *plan, ids[i]);
+  }
+  body += "]}";
+  WriteJson(res, 200, body);
+}
+
+void Explain(HttpContext& ctx, const Request& req, Response& res) {
+  if (!req.has_param("state")) return WriteProblem(res, MissingParam("state"));
+  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], Param(req, "solution_id"));
+  if (!plan.ok()) return WriteProblem(res, plan.status());
+  const StateId s = FindStateOr404(*plan, Param(req, "state"), res);
+  if (s < 0) return;
+  WriteJson(res, 200, EncodeExplain(*plan, s).dump());
+}
+
+void ListSolutions(HttpContext& ctx, const Request& req, Response& res) {
+  Result<std::vector<SolutionRecord>> list = ctx.service.ListSolutions(req.matches[1]);
+  if (!list.ok()) return WriteProblem(res, list.status());
+  Json out = Json::array();
+  for (const SolutionRecord& s : *list) out.push_back(EncodeSolutionRecord(s));
+  WriteJson(res, 200, Json{{"solutions", std::move(out)}}.dump());
+}
+
+void GetSolution(HttpContext& ctx, const Request& req, Response& res) {
+  Result<SolutionRecord> record = ctx.service.GetSolutionRecord(req.matches[1], req.matches[2]);
+  if (!record.ok()) return WriteProblem(res, record.status());
+  WriteJson(res, 200, EncodeSolutionRecord(*record).dump());
+}
+
+void GetSolutionTables(HttpContext& ctx, const Request& req, Response& res) {
+  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], req.matches[2]);
+  if (!plan.ok()) return WriteProblem(res, plan.status());
+  Json doc = EncodeSolution(*plan->model, *plan->solution, SolutionDetail::kFull);
+  doc["id"] = plan->solution_id;
+  WriteJson(res, 200, doc.dump());
+}
+
+void Verify(HttpContext& ctx, const Request& req, Response& res) {
+  if (!RequireJsonBody(req, res)) return;
+  Result<VerifyStart> done = ctx.service.Verify(req.matches[1], req.body);
+  if (!done.ok()) return WriteProblem(res, done.status());
+  if (!done->errors.empty()) {
+    return WriteProblem(res, MakeProblem(InvalidArgumentError("the candidate does not fit the model"),
+                                         ProblemKind::kInvalidCandidate, done->errors));
+  }
+  if (done->job) {
+    res.set_header("Location", "/v1/jobs/" + done->job->record.id);
+    return WriteJson(res, 202, EncodeJobView(*done->job).dump());
+  }
+  WriteJson(res, 200, done->report_json);
+}
+
+void Healthz(HttpContext&, const Request&, Response& res) {
+  WriteJson(res, 200, R"({"status":"ok"})");
+}
+
+void Readyz(HttpContext& ctx, const Request&, Response& res) {
+  if (!ctx.service.accepting()) {
+    return WriteProblem(res, Status(StatusCode::kUnavailable, "shutting down"));
+  }
+  WriteJson(res, 200, R"({"status":"ready"})");
+}
+
+void Metrics(HttpContext& ctx, const Request&, Response& res) {
+  res.status = 200;
+  res.set_content(ctx.registry.RenderText(), "text/plain; version=0.0.4; charset=utf-8");
+}
+
+void OpenApi(HttpContext&, const Request&, Response& res) { WriteJson(res, 200, kOpenApiDocument); }
+
+}  // namespace
+
+const std::vector<Route>& ApiRoutes() {
+  static const std::vector<Route> routes = {
+      {"POST", "/v1/models", "/v1/models", UploadModel},
+      {"GET", "/v1/models", "/v1/models", ListModels},
+      {"GET", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", GetModel},
+      {"DELETE", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", DeleteModel},
+      {"GET", "/v1/models/{id}/document", "/v1/models/([0-9a-zA-Z_-]{1,64})/document",
+       GetModelDocument},
+      {"GET", "/v1/models/{id}/policy", "/v1/models/([0-9a-zA-Z_-]{1,64})/policy", BestAction},
+      {"POST", "/v1/models/{id}/policy/batch",
+       "/v1/models/([0-9a-zA-Z_-]{1,64})/policy/batch", BestActionBatch},
+      {"GET", "/v1/models/{id}/policy/explain",
+       "/v1/models/([0-9a-zA-Z_-]{1,64})/policy/explain", Explain},
+      {"GET", "/v1/models/{id}/solutions", "/v1/models/([0-9a-zA-Z_-]{1,64})/solutions",
+       ListSolutions},
+      {"GET", "/v1/models/{id}/solutions/{sid}",
+       "/v1/models/([0-9a-zA-Z_-]{1,64})/solutions/([0-9a-zA-Z_-]{1,64})", GetSolution},
+      {"GET", "/v1/models/{id}/solutions/{sid}/tables",
+       "/v1/models/([0-9a-zA-Z_-]{1,64})/solutions/([0-9a-zA-Z_-]{1,64})/tables",
+       GetSolutionTables},
+      {"POST", "/v1/models/{id}/verify", "/v1/models/([0-9a-zA-Z_-]{1,64})/verify", Verify},
+      {"POST", "/v1/jobs", "/v1/jobs", StartSolve},
+      {"GET", "/v1/jobs", "/v1/jobs", ListJobs},
+      {"GET", "/v1/jobs/{id}", "/v1/jobs/([0-9a-zA-Z_-]{1,64})", GetJob},
+      {"POST", "/v1/jobs/{id}/cancel", "/v1/jobs/([0-9a-zA-Z_-]{1,64})/cancel", CancelJob},
+      {"GET", "/healthz", "/healthz", Healthz},
+      {"GET", "/readyz", "/readyz", Readyz},
+      {"GET", "/metrics", "/metrics", Metrics},
+      {"GET", "/v1/openapi.json", "/v1/openapi.json", OpenApi},
+  };
+  return routes;
+}
+
+}  // namespace mdp::server
