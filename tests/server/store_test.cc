@@ -121,6 +121,7 @@ auto Fields(const JobRecord& j) {
 template <typename Record>
 std::vector<std::string> Ids(const std::vector<Record>& records) {
   std::vector<std::string> ids;
+  ids.reserve(records.size());
   for (const Record& record : records) ids.push_back(record.id);
   return ids;
 }
@@ -198,7 +199,7 @@ TYPED_TEST(StoreContractTest, GetModelLeavesTheDocumentOutWhenAsked) {
 }
 
 TYPED_TEST(StoreContractTest, FiveMegabyteDocumentRoundTripsByteExact) {
-  const std::string document = EveryByte(5 * 1024 * 1024);
+  const std::string document = EveryByte(size_t{5} * 1024 * 1024);
   this->PutNewModel(MakeModel("big", document));
   Result<ModelRecord> stored = this->store_->GetModel("big", /*with_document=*/true);
   ASSERT_OK(stored);
@@ -374,6 +375,7 @@ TYPED_TEST(StoreContractTest, ConcurrentWritersAllLand) {
   constexpr int kThreads = 4;
   constexpr int kJobsEach = 10;
   std::vector<std::thread> threads;
+  threads.reserve(kThreads);
   for (int t = 0; t < kThreads; ++t) {
     threads.emplace_back([this, t] {
       for (int i = 0; i < kJobsEach; ++i) {
@@ -492,7 +494,7 @@ TEST_F(SqliteStoreTest, OpenReportsADirectoryThatCannotBeMade) {
 // (64 KiB) that each write spans many pages and a kill lands inside writes.
 JobRecord CrashJob(int64_t i, bool finished) {
   JobRecord job = MakeJob("job-" + std::to_string(i), "m1");
-  job.request_json.assign(64 * 1024, static_cast<char>('a' + i % 26));
+  job.request_json.assign(size_t{64} * 1024, static_cast<char>('a' + i % 26));
   return finished ? Finished(std::move(job)) : job;
 }
 

@@ -1,0 +1,272 @@
+// Tests server/planning_service.{h,cc} without HTTP, on a memory store: uploads, solve jobs,
+// caching of solutions, the full queue, cancellation, recovery after a restart, cache
+// eviction with reload from the store, deletion and verification.
+#include "server/planning_service.h"
+
+#include <gtest/gtest.h>
+
+#include <chrono>
+#include <thread>
+
+#include "server/api_codec.h"
+#include "server/canonical.h"
+#include "tests/testing/documents.h"
+
+namespace mdp::server {
+namespace {
+
+using test_documents::kGreenhouse;
+
+// A random model document big enough that value iteration at discount 0.9999 runs for a
+// while (seconds), to have a job in the running state.
+std::string SlowModel(int states, uint64_t seed) {
+  std::string doc = R"({"format":"mdpserve/model@1","name":"slow","objective":"maximize",)"
+                    R"("criterion":{"kind":"discounted","discount":0.9999},"actions":["a","b"],)"
+                    R"("states":[)";
+  uint64_t x = seed;
+  auto next = [&] {
+    x = x * 6364136223846793005ULL + 1442695040888963407ULL;
+    return static_cast<int>((x >> 33) % states);
+  };
+  for (int s = 0; s < states; ++s) {
+    doc += std::string(s ? "," : "") + R"({"name":"s)" + std::to_string(s) + R"(","actions":[)";
+    for (int a = 0; a < 2; ++a) {
+      doc += std::string(a ? "," : "") + R"({"action":")" + (a ? "b" : "a") +
+             R"(","outcomes":[{"next":"s)" + std::to_string(next()) +
+             R"(","probability":0.5,"reward":1},{"next":"s)" + std::to_string(next()) +
+             R"(","probability":0.5,"reward":)" + std::to_string(a) + "}]}";
+    }
+    doc += "]}";
+  }
+  return doc + "]}";
+}
+
+JobView WaitForEnd(PlanningService& service, const std::string& job_id, double seconds = 30) {
+  const auto end = std::chrono::steady_clock::now() + std::chrono::duration<double>(seconds);
+  for (;;) {
+    Result<JobView> job = service.GetJob(job_id);
+    EXPECT_TRUE(job.ok());
+    const JobStatus s = job->record.status;
+    if (s == JobStatus::kSucceeded || s == JobStatus::kFailed || s == JobStatus::kCancelled ||
+        std::chrono::steady_clock::now() > end) {
+      return *job;
+    }
+    std::this_thread::sleep_for(std::chrono::milliseconds(5));
+  }
+}
+
+void WaitForStatus(PlanningService& service, const std::string& job_id, JobStatus status) {
+  for (int i = 0; i < 2000; ++i) {
+    if (service.GetJob(job_id)->record.status == status) return;
+    std::this_thread::sleep_for(std::chrono::milliseconds(5));
+  }
+  FAIL() << "job " << job_id << " never reached " << JobStatusName(status);
+}
+
+class PlanningServiceTest : public ::testing::Test {
+ protected:
+  std::unique_ptr<Store> store_ = NewMemoryStore();
+};
+
+TEST_F(PlanningServiceTest, UploadSolveQueryAndCachedSolve) {
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  Result<UploadResult> up = service.UploadModel(kGreenhouse);
+  ASSERT_TRUE(up.ok());
+  ASSERT_TRUE(up->errors.empty());
+  EXPECT_TRUE(up->created);
+  EXPECT_EQ(up->record.states, 4);
+  Result<UploadResult> again = service.UploadModel(kGreenhouse);
+  EXPECT_FALSE(again->created);
+  EXPECT_EQ(again->record.id, up->record.id);
+
+  const std::string id = up->record.id;
+  EXPECT_EQ(service.GetPlan(id, "").status().code(), StatusCode::kFailedPrecondition);
+  Result<SolveStart> start = service.StartSolve(id, SolveOptions{});
+  ASSERT_TRUE(start.ok());
+  ASSERT_TRUE(start->job.has_value());
+  const JobView done = WaitForEnd(service, start->job->record.id);
+  ASSERT_EQ(done.record.status, JobStatus::kSucceeded) << done.record.error;
+  Result<Plan> plan = service.GetPlan(id, "");
+  ASSERT_TRUE(plan.ok());
+  EXPECT_EQ(plan->solution_id, done.record.solution_id);
+  // By hand (tests/testing/documents.h): V(dry) = 4, V(wet) = 10, V(seedling) = 4.
+  EXPECT_NEAR(plan->solution->values[*plan->model->FindState("dry")], 4.0, 1e-9);
+  EXPECT_NEAR(plan->solution->values[*plan->model->FindState("wet")], 10.0, 1e-9);
+
+  Result<SolveStart> cached = service.StartSolve(id, SolveOptions{});
+  ASSERT_TRUE(cached.ok());
+  EXPECT_FALSE(cached->job.has_value());
+  EXPECT_EQ(cached->cached_solution_id, done.record.solution_id);
+  // Different options, different solution.
+  SolveOptions vi;
+  vi.method = Method::kValueIteration;
+  Result<SolveStart> other = service.StartSolve(id, vi);
+  ASSERT_TRUE(other->job.has_value());
+  EXPECT_EQ(WaitForEnd(service, other->job->record.id).record.status, JobStatus::kSucceeded);
+  EXPECT_EQ(service.ListSolutions(id)->size(), 2u);
+}
+
+TEST_F(PlanningServiceTest, InvalidModelsReportEveryErrorAndStoreNothing) {
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  std::string bad(kGreenhouse);
+  bad.replace(bad.find("\"discount\": 0.5"), 15, "\"discount\": 1.5");
+  bad.replace(bad.find("\"reward\": -1"), 12, "\"reward\": \"x\"");
+  Result<UploadResult> up = service.UploadModel(bad);
+  ASSERT_TRUE(up.ok());
+  EXPECT_EQ(up->errors.size(), 2u);
+  EXPECT_TRUE(service.ListModels()->empty());
+}
+
+TEST_F(PlanningServiceTest, FullQueueRefusesAndCancelStopsARunningSolve) {
+  ServiceOptions options;
+  options.workers = 1;
+  options.queue_capacity = 1;
+  PlanningService service(*store_, options);
+  ASSERT_TRUE(service.Start().ok());
+  Result<UploadResult> up = service.UploadModel(SlowModel(20000, 1));
+  ASSERT_TRUE(up.ok() && up->errors.empty());
+  SolveOptions slow;
+  slow.method = Method::kValueIteration;
+  slow.tolerance = 1e-12;
+  Result<SolveStart> first = service.StartSolve(up->record.id, slow);
+  ASSERT_TRUE(first.ok());
+  WaitForStatus(service, first->job->record.id, JobStatus::kRunning);
+  slow.tolerance = 1e-11;
+  Result<SolveStart> second = service.StartSolve(up->record.id, slow);
+  ASSERT_TRUE(second.ok());  // Waits in the queue.
+  slow.tolerance = 1e-10;
+  Result<SolveStart> third = service.StartSolve(up->record.id, slow);
+  EXPECT_EQ(third.status().code(), StatusCode::kResourceExhausted);
+  // The same request as the running one joins it instead of queueing again.
+  slow.tolerance = 1e-12;
+  Result<SolveStart> same = service.StartSolve(up->record.id, slow);
+  ASSERT_TRUE(same.ok());
+  EXPECT_EQ(same->job->record.id, first->job->record.id);
+
+  ASSERT_TRUE(service.CancelJob(second->job->record.id).ok());
+  EXPECT_EQ(service.GetJob(second->job->record.id)->record.status, JobStatus::kCancelled);
+  ASSERT_TRUE(service.CancelJob(first->job->record.id).ok());
+  const JobView ended = WaitForEnd(service, first->job->record.id);
+  EXPECT_EQ(ended.record.status, JobStatus::kCancelled);
+  EXPECT_EQ(service.CancelJob(first->job->record.id).status().code(),
+            StatusCode::kFailedPrecondition);
+  EXPECT_EQ(service.GetPlan(up->record.id, "").status().code(), StatusCode::kFailedPrecondition);
+}
+
+TEST_F(PlanningServiceTest, RestartFailsInterruptedJobsAndRequeuesWaitingOnes) {
+  std::string model_id;
+  {
+    PlanningService service(*store_, ServiceOptions{});
+    ASSERT_TRUE(service.Start().ok());
+    model_id = service.UploadModel(kGreenhouse)->record.id;
+  }
+  JobRecord running{"jdead", "solve", model_id, CanonicalSolveOptions(SolveOptions{}),
+                    JobStatus::kRunning, NowRfc3339(), NowRfc3339(), "", "", "", ""};
+  SolveOptions vi;
+  vi.method = Method::kValueIteration;
+  JobRecord waiting{"jwait", "solve", model_id, CanonicalSolveOptions(vi),
+                    JobStatus::kQueued, NowRfc3339(), "", "", "", "", ""};
+  ASSERT_TRUE(store_->PutJob(running).ok());
+  ASSERT_TRUE(store_->PutJob(waiting).ok());
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  const JobView dead = *service.GetJob("jdead");
+  EXPECT_EQ(dead.record.status, JobStatus::kFailed);
+  EXPECT_NE(dead.record.error.find("stopped while this job was running"), std::string::npos);
+  const JobView rerun = WaitForEnd(service, "jwait");
+  EXPECT_EQ(rerun.record.status, JobStatus::kSucceeded);
+  EXPECT_TRUE(service.GetPlan(model_id, "").ok());
+}
+
+TEST_F(PlanningServiceTest, ShutdownDuringASolvePutsItBackInTheQueueForNextStart) {
+  std::string model_id, job_id;
+  SolveOptions slow;
+  slow.method = Method::kValueIteration;
+  slow.tolerance = 1e-12;
+  {
+    PlanningService service(*store_, ServiceOptions{});
+    ASSERT_TRUE(service.Start().ok());
+    model_id = service.UploadModel(SlowModel(20000, 2))->record.id;
+    job_id = service.StartSolve(model_id, slow)->job->record.id;
+    WaitForStatus(service, job_id, JobStatus::kRunning);
+    service.Shutdown(0.0);
+    EXPECT_FALSE(service.accepting());
+    EXPECT_EQ(service.StartSolve(model_id, SolveOptions{}).status().code(),
+              StatusCode::kUnavailable);
+  }
+  EXPECT_EQ(store_->GetJob(job_id)->status, JobStatus::kQueued);
+}
+
+TEST_F(PlanningServiceTest, EvictedSolutionsAreReloadedFromTheStore) {
+  ServiceOptions options;
+  options.cache_bytes = 0;  // Nothing stays cached.
+  PlanningService service(*store_, options);
+  ASSERT_TRUE(service.Start().ok());
+  const std::string id = service.UploadModel(kGreenhouse)->record.id;
+  const std::string job = service.StartSolve(id, SolveOptions{})->job->record.id;
+  ASSERT_EQ(WaitForEnd(service, job).record.status, JobStatus::kSucceeded);
+  EXPECT_EQ(service.cache().entries(), 0);
+  Result<Plan> plan = service.GetPlan(id, "");
+  ASSERT_TRUE(plan.ok());
+  EXPECT_NEAR(plan->solution->values[*plan->model->FindState("wet")], 10.0, 1e-9);
+  std::string a, b;
+  AppendBestAction(a, *plan, 0);
+  AppendBestAction(b, *service.GetPlan(id, ""), 0);
+  EXPECT_EQ(a, b);
+}
+
+TEST_F(PlanningServiceTest, DeleteRemovesModelSolutionsAndJobs) {
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  const std::string id = service.UploadModel(kGreenhouse)->record.id;
+  const std::string job = service.StartSolve(id, SolveOptions{})->job->record.id;
+  ASSERT_EQ(WaitForEnd(service, job).record.status, JobStatus::kSucceeded);
+  ASSERT_TRUE(service.DeleteModel(id).ok());
+  EXPECT_EQ(service.GetPlan(id, "").status().code(), StatusCode::kNotFound);
+  EXPECT_EQ(service.GetModel(id, false).status().code(), StatusCode::kNotFound);
+  EXPECT_EQ(service.GetJob(job).status().code(), StatusCode::kNotFound);
+  EXPECT_EQ(service.DeleteModel(id).code(), StatusCode::kNotFound);
+}
+
+TEST_F(PlanningServiceTest, VerifiesValuesAndPoliciesSynchronouslyForSmallModels) {
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  const std::string id = service.UploadModel(kGreenhouse)->record.id;
+  ASSERT_EQ(WaitForEnd(service, service.StartSolve(id, SolveOptions{})->job->record.id)
+                .record.status,
+            JobStatus::kSucceeded);
+  Result<VerifyStart> good = service.Verify(
+      id, R"({"values": {"dry": 4, "wet": 10, "seedling": 4}, "tolerance": 1e-6})");
+  ASSERT_TRUE(good.ok());
+  EXPECT_TRUE(good->passed);
+  Result<VerifyStart> bad = service.Verify(id, R"({"policy": {"dry": "wait", "wet": "harvest",
+                                                   "seedling": "grow"}})");
+  ASSERT_TRUE(bad.ok());
+  EXPECT_FALSE(bad->passed);
+  const Json report = Json::parse(bad->report_json);
+  EXPECT_EQ(report["suboptimal_states"][0]["state"], "dry");
+  Result<VerifyStart> unknown = service.Verify(id, R"({"values": {"attic": 1}})");
+  ASSERT_TRUE(unknown.ok());
+  EXPECT_FALSE(unknown->errors.empty());
+  EXPECT_FALSE(service.Verify(id, R"({"values": {}, "policy": {}})").ok());
+}
+
+TEST_F(PlanningServiceTest, LargeModelsVerifyAsAJob) {
+  ServiceOptions options;
+  options.sync_verify_max_rows = 2;
+  PlanningService service(*store_, options);
+  ASSERT_TRUE(service.Start().ok());
+  const std::string id = service.UploadModel(kGreenhouse)->record.id;
+  Result<VerifyStart> v =
+      service.Verify(id, R"({"values": {"dry": 4, "wet": 10, "seedling": 4}})");
+  ASSERT_TRUE(v.ok());
+  ASSERT_TRUE(v->job.has_value());
+  const JobView done = WaitForEnd(service, v->job->record.id);
+  ASSERT_EQ(done.record.status, JobStatus::kSucceeded) << done.record.error;
+  EXPECT_EQ(Json::parse(done.record.result_json)["verdict"], "pass");
+}
+
+}  // namespace
+}  // namespace mdp::server
