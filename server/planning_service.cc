@@ -107,7 +107,7 @@ Status PlanningService::Start() {
     Result<std::vector<SolutionRecord>> solutions = store_.ListSolutions(m.id);
     if (!solutions.ok()) return solutions.status();
     if (!solutions->empty()) {
-      std::lock_guard<std::mutex> lock(mu_);
+      std::lock_guard<std::mutex> lock(current_mu_);
       current_solution_[m.id] = solutions->front().id;
     }
   }
@@ -184,6 +184,9 @@ Status PlanningService::DeleteModel(const std::string& id) {
       std::lock_guard<std::mutex> job_lock(job->mu);
       if (job->record.model_id == id) job->cancel.Cancel();
     }
+  }
+  {
+    std::lock_guard<std::mutex> lock(current_mu_);
     current_solution_.erase(id);
   }
   MDP_RETURN_IF_ERROR(store_.DeleteModel(id));
@@ -246,6 +249,7 @@ void PlanningService::Persist(ActiveJob& job) {
   // A failed write leaves the previous record in place; the in-memory view stays right and
   // the next transition writes again. Nothing better can be done from a worker thread.
   (void)store_.PutJob(copy);
+  if (options_.on_job_event) options_.on_job_event(copy);
 }
 
 JobView PlanningService::ViewOf(ActiveJob& job) {
@@ -332,8 +336,10 @@ Status PlanningService::RunSolve(ActiveJob& job) {
   record.data = EncodeSolutionBlob(*solution);
   MDP_RETURN_IF_ERROR(store_.PutSolution(record));
   cache_.PutSolution(record.id, solution);
-  std::lock_guard<std::mutex> lock(mu_);
-  current_solution_[record.model_id] = record.id;
+  {
+    std::lock_guard<std::mutex> lock(current_mu_);
+    current_solution_[record.model_id] = record.id;
+  }
   std::lock_guard<std::mutex> job_lock(job.mu);
   job.record.solution_id = record.id;
   return Status::Ok();
@@ -403,7 +409,7 @@ Result<JobView> PlanningService::CancelJob(const std::string& id) {
 }
 
 std::string PlanningService::CurrentSolution(const std::string& model_id) {
-  std::lock_guard<std::mutex> lock(mu_);
+  std::lock_guard<std::mutex> lock(current_mu_);
   auto it = current_solution_.find(model_id);
   return it == current_solution_.end() ? std::string() : it->second;
 }

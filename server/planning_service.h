@@ -36,6 +36,8 @@ struct ServiceOptions {
   // Called on the worker thread when a job ends, with its final record and the seconds it
   // ran; for metrics. Must be quick and thread-safe.
   std::function<void(const JobRecord&, double)> on_job_finished;
+  // Called whenever a job record changes state (queued, running, finished); for logs.
+  std::function<void(const JobRecord&)> on_job_event;
 };
 
 struct UploadResult {
@@ -142,7 +144,10 @@ class PlanningService {
   std::mutex mu_;
   std::map<std::string, std::shared_ptr<ActiveJob>> active_;  // By job id. GUARDED_BY(mu_)
   std::map<std::string, std::string> active_by_solution_;     // Solution id -> job id.
-  std::map<std::string, std::string> current_solution_;       // Model id -> solution id.
+  // Model id -> its current solution id. Its own lock: queries read it on the hot path and
+  // must not wait behind job bookkeeping (which writes to the store under mu_).
+  std::mutex current_mu_;
+  std::map<std::string, std::string> current_solution_;  // GUARDED_BY(current_mu_)
 
   std::unique_ptr<JobQueue> queue_;  // Last: its workers use the members above.
 };

@@ -168,6 +168,8 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
         .GetCounter("mdpserve_jobs_finished_total", "Jobs finished, by kind and final status.",
                     {{"kind", job.kind}, {"status", std::string(JobStatusName(job.status))}})
         ->Add();
+  };
+  service_options.on_job_event = [](const JobRecord& job) {
     spdlog::info("job {} {} {} on model {}{}", job.id, job.kind, JobStatusName(job.status),
                  job.model_id, job.error.empty() ? "" : ": " + job.error);
   };

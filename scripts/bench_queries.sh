@@ -1,0 +1,382 @@
+#!/usr/bin/env bash
+# bench_queries.sh: how fast mdpserve answers best-action queries, compared with nginx
+# serving the same answer as a static file. This is a measurement, not a test: it prints a
+# table and the ratio mdpserve/nginx, and exits 0 even when a target is missed. It exits
+# non-zero only when a tool is missing or a server does not start.
+#
+# Both servers listen on 127.0.0.1 only; every process this script starts is stopped by its
+# PID when the script exits (normally, on error or on Ctrl-C).
+#
+#   bash scripts/bench_queries.sh
+#
+# Environment (all optional):
+#   BENCH_SECONDS=10          duration of each wrk run
+#   BENCH_CONNECTIONS=64      keep-alive connections wrk holds open
+#   BENCH_WRK_THREADS=2       wrk threads
+#   BENCH_HTTP_THREADS="64"   mdpserve --http-threads values to try, space separated
+#   BENCH_ROUNDS=1            nginx/mdpserve pairs per --http-threads value (alternating)
+#   BENCH_NGINX_WORKERS=2     nginx worker processes
+#   MDPSERVE=build/bin/mdpserve
+#   BENCH_MODEL=api-schema/examples/pump-maintenance.json
+#   BENCH_KEEP=1              keep the temporary directory (configs, logs, wrk output)
+#
+# Targets, per mdpserve run against the nginx run next to it: ratio of requests/s >= 0.6,
+# mdpserve p99 latency < 2 ms, zero non-2xx responses and zero socket errors.
+set -euo pipefail
+
+ROOT=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
+SECONDS_PER_RUN=${BENCH_SECONDS:-10}
+CONNECTIONS=${BENCH_CONNECTIONS:-64}
+WRK_THREADS=${BENCH_WRK_THREADS:-2}
+HTTP_THREADS_LIST=${BENCH_HTTP_THREADS:-64}
+ROUNDS=${BENCH_ROUNDS:-1}
+NGINX_WORKERS=${BENCH_NGINX_WORKERS:-2}
+MDPSERVE=${MDPSERVE:-$ROOT/build/bin/mdpserve}
+MODEL=${BENCH_MODEL:-$ROOT/api-schema/examples/pump-maintenance.json}
+
+TARGET_RATIO=0.6
+TARGET_P99_US=2000
+
+die() { echo "bench_queries: $*" >&2; exit 2; }
+
+for n in SECONDS_PER_RUN CONNECTIONS WRK_THREADS ROUNDS NGINX_WORKERS; do
+  [[ ${!n} =~ ^[1-9][0-9]*$ ]] || die "$n must be a positive integer, not '${!n}'"
+done
+for t in $HTTP_THREADS_LIST; do
+  [[ $t =~ ^[1-9][0-9]*$ ]] || die "BENCH_HTTP_THREADS must list positive integers, not '$t'"
+done
+(( CONNECTIONS >= WRK_THREADS )) || die "BENCH_CONNECTIONS must be at least BENCH_WRK_THREADS"
+
+# --- Tools -------------------------------------------------------------------------------
+NGINX_BIN=$(command -v nginx || true)
+[[ -z $NGINX_BIN && -x /usr/sbin/nginx ]] && NGINX_BIN=/usr/sbin/nginx
+missing=()
+command -v wrk >/dev/null || missing+=(wrk)
+[[ -n $NGINX_BIN ]] || missing+=(nginx)
+for tool in curl python3 timeout; do command -v "$tool" >/dev/null || missing+=("$tool"); done
+if (( ${#missing[@]} > 0 )); then
+  die "missing tools: ${missing[*]} (run: bash scripts/install-deps.sh)"
+fi
+[[ -x $MDPSERVE ]] || die "no mdpserve binary at $MDPSERVE (cd build && cmake .. && make mdpserve)"
+[[ -r $MODEL ]] || die "cannot read the model $MODEL"
+
+# --- Cleanup: every started process is stopped by its PID --------------------------------
+WORK=$(mktemp -d "${TMPDIR:-/tmp}/bench_queries.XXXXXX")
+PIDS=()
+
+stop_pid() {  # Stops one process we started: TERM, up to 5 s, then KILL.
+  local pid=$1
+  kill -0 "$pid" 2>/dev/null || { wait "$pid" 2>/dev/null || true; return 0; }
+  kill -TERM "$pid" 2>/dev/null || true
+  for _ in $(seq 50); do
+    kill -0 "$pid" 2>/dev/null || break
+    sleep 0.1
+  done
+  kill -0 "$pid" 2>/dev/null && kill -KILL "$pid" 2>/dev/null
+  wait "$pid" 2>/dev/null || true
+}
+
+forget_pid() {
+  local keep=() p
+  for p in "${PIDS[@]}"; do [[ $p == "$1" ]] || keep+=("$p"); done
+  PIDS=("${keep[@]}")
+}
+
+cleanup() {
+  local rc=$? p
+  trap - EXIT INT TERM
+  for p in "${PIDS[@]}"; do stop_pid "$p"; done
+  if [[ ${BENCH_KEEP:-0} == 1 ]]; then
+    echo "bench_queries: kept $WORK" >&2
+  else
+    rm -rf "$WORK"
+  fi
+  exit "$rc"
+}
+trap cleanup EXIT
+trap 'exit 130' INT
+trap 'exit 143' TERM
+
+free_port() {
+  python3 -c 'import socket; s=socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1]); s.close()'
+}
+
+# Waits until `curl URL` answers 200 while process PID lives; 10 s at most.
+wait_http_ok() {
+  local pid=$1 url=$2
+  for _ in $(seq 100); do
+    kill -0 "$pid" 2>/dev/null || return 1
+    [[ $(curl -s -o /dev/null -w '%{http_code}' --max-time 1 "$url" || true) == 200 ]] && return 0
+    sleep 0.1
+  done
+  return 1
+}
+
+# --- mdpserve ----------------------------------------------------------------------------
+MDP_PID="" MDP_PORT="" MODEL_ID=""
+start_mdpserve() {  # $1 = --http-threads
+  local threads=$1 dir="$WORK/mdpserve-$1"
+  mkdir -p "$dir"
+  "$MDPSERVE" serve --listen 127.0.0.1:0 --port-file "$dir/port" --memory-store \
+    --preload "$MODEL" --log-level warn --http-threads "$threads" \
+    >"$dir/stdout" 2>"$dir/stderr" &
+  MDP_PID=$!
+  PIDS+=("$MDP_PID")
+  for _ in $(seq 300); do  # 30 s for the preload solve to finish.
+    kill -0 "$MDP_PID" 2>/dev/null || break
+    [[ -s $dir/port ]] && grep -q ' as model ' "$dir/stdout" && break
+    sleep 0.1
+  done
+  MDP_PORT=$(cat "$dir/port" 2>/dev/null || true)
+  MODEL_ID=$(sed -n 's/.* as model \([0-9a-zA-Z_-]*\).*/\1/p' "$dir/stdout" | head -1)
+  if [[ -z $MDP_PORT || -z $MODEL_ID ]] ||
+     ! wait_http_ok "$MDP_PID" "http://127.0.0.1:$MDP_PORT/readyz"; then
+    cat "$dir/stdout" "$dir/stderr" >&2 || true
+    die "mdpserve (--http-threads $threads) did not start"
+  fi
+}
+
+stop_mdpserve() {
+  stop_pid "$MDP_PID"
+  forget_pid "$MDP_PID"
+  MDP_PID=""
+}
+
+# State names of the model, in document order: the query rotation.
+mapfile -t STATES < <(python3 -c '
+import json, sys
+doc = json.load(open(sys.argv[1]))
+for s in doc.get("states", []):
+    print(s["name"])' "$MODEL")
+(( ${#STATES[@]} > 0 )) || die "the model $MODEL lists no states"
+
+# --- Machine and tools -------------------------------------------------------------------
+echo "== machine"
+echo "nproc:      $(nproc)"
+echo "cpu:        $(sed -n 's/^model name[[:space:]]*: //p' /proc/cpuinfo | head -1)"
+echo "kernel:     $(uname -sr)"
+echo "loadavg:    $(cut -d' ' -f1-3 /proc/loadavg) (before the runs)"
+echo "== tools"
+echo "wrk:        $(wrk -v 2>&1 | head -1 | sed 's/ Copyright.*//')"
+echo "nginx:      $("$NGINX_BIN" -v 2>&1 | sed 's/^nginx version: //')"
+echo "curl:       $(curl --version | head -1 | cut -d' ' -f1-2)"
+httplib_version=$(sed -n 's/^#define CPPHTTPLIB_VERSION "\(.*\)"/\1/p' /usr/include/httplib.h 2>/dev/null | head -1)
+echo "cpp-httplib: ${httplib_version:-unknown} (/usr/include/httplib.h)"
+echo "mdpserve:   $MDPSERVE ($(grep -s '^CMAKE_BUILD_TYPE' "$(dirname "$MDPSERVE")/../CMakeCache.txt" | cut -d= -f2 || true))"
+echo "model:      $MODEL (${#STATES[@]} states)"
+echo "load:       wrk -t$WRK_THREADS -c$CONNECTIONS -d${SECONDS_PER_RUN}s --latency, keep-alive"
+
+# --- The answer nginx serves: one real best-action answer from mdpserve -------------------
+first_threads=${HTTP_THREADS_LIST%% *}
+start_mdpserve "$first_threads"
+mkdir -p "$WORK/nginx/www" "$WORK/nginx/tmp"
+# Fetch every state's answer once (checks they all answer 200), then let nginx serve the
+# answer of median size, so both servers send bodies of the same typical length.
+sizes=()
+for s in "${STATES[@]}"; do
+  curl -sf --max-time 5 -o "$WORK/answer-$s.json" \
+    "http://127.0.0.1:$MDP_PORT/v1/models/$MODEL_ID/policy?state=$s" ||
+    die "mdpserve did not answer the best action of state '$s'"
+  sizes+=("$(wc -c <"$WORK/answer-$s.json") $s")
+done
+mapfile -t sorted < <(printf '%s\n' "${sizes[@]}" | sort -n)
+ANSWER_STATE=${sorted[$(( ${#sorted[@]} / 2 ))]#* }
+cp "$WORK/answer-$ANSWER_STATE.json" "$WORK/nginx/www/answer.json"
+ANSWER_BYTES=$(wc -c <"$WORK/nginx/www/answer.json")
+echo "answer:     $ANSWER_BYTES bytes (state $ANSWER_STATE; mdpserve bodies range" \
+     "${sorted[0]%% *}..${sorted[-1]%% *} bytes over the ${#STATES[@]} rotated states)"
+
+# --- nginx: private prefix, 2 workers, keep-alive, no access log --------------------------
+NGINX_PID="" NGINX_PORT=""
+nginx_user=""
+if [[ $(id -u) == 0 ]]; then  # Workers drop to an unprivileged user; they only read www/.
+  if getent group nogroup >/dev/null; then nginx_user="user nobody nogroup;"
+  else nginx_user="user nobody;"; fi
+  chmod 755 "$WORK" "$WORK/nginx" "$WORK/nginx/www"
+  chmod 644 "$WORK/nginx/www/answer.json"
+fi
+for attempt in 1 2 3 4 5; do
+  NGINX_PORT=$(free_port)
+  cat >"$WORK/nginx/nginx.conf" <<EOF
+$nginx_user
+worker_processes $NGINX_WORKERS;
+daemon off;
+pid $WORK/nginx/nginx.pid;
+error_log $WORK/nginx/error.log warn;
+events { worker_connections 4096; }
+http {
+  access_log off;
+  keepalive_timeout 30;
+  keepalive_requests 1000000;
+  sendfile on;
+  tcp_nodelay on;
+  server_tokens off;
+  types { application/json json; }
+  default_type application/json;
+  client_body_temp_path $WORK/nginx/tmp/body;
+  proxy_temp_path $WORK/nginx/tmp/proxy;
+  fastcgi_temp_path $WORK/nginx/tmp/fastcgi;
+  uwsgi_temp_path $WORK/nginx/tmp/uwsgi;
+  scgi_temp_path $WORK/nginx/tmp/scgi;
+  server {
+    listen 127.0.0.1:$NGINX_PORT;
+    root $WORK/nginx/www;
+    location = /answer.json { }
+  }
+}
+EOF
+  "$NGINX_BIN" -p "$WORK/nginx" -c "$WORK/nginx/nginx.conf" -e "$WORK/nginx/error.log" \
+    >"$WORK/nginx/stdout" 2>"$WORK/nginx/stderr" &
+  NGINX_PID=$!
+  PIDS+=("$NGINX_PID")
+  if wait_http_ok "$NGINX_PID" "http://127.0.0.1:$NGINX_PORT/answer.json"; then break; fi
+  stop_pid "$NGINX_PID"; forget_pid "$NGINX_PID"; NGINX_PID=""
+  (( attempt < 5 )) || { cat "$WORK/nginx/stderr" "$WORK/nginx/error.log" >&2 2>/dev/null || true
+                         die "nginx did not start"; }
+done
+curl -sf -o "$WORK/nginx/check.json" -D "$WORK/nginx/check.headers" \
+  "http://127.0.0.1:$NGINX_PORT/answer.json" || die "nginx does not serve the answer"
+cmp -s "$WORK/nginx/check.json" "$WORK/nginx/www/answer.json" ||
+  die "nginx serves different bytes than mdpserve's answer"
+grep -qi '^content-type: application/json' "$WORK/nginx/check.headers" ||
+  die "nginx does not serve the answer as application/json"
+echo "nginx:      127.0.0.1:$NGINX_PORT/answer.json (pid $NGINX_PID, $NGINX_WORKERS workers)"
+
+# --- wrk script: rotates over the paths given after `--`, reports in done() -------------
+cat >"$WORK/rotate.lua" <<'EOF'
+-- Each wrk thread rotates over the request paths given as script arguments.
+local requests, n, i = {}, 0, 0
+function init(args)
+  for _, path in ipairs(args) do
+    n = n + 1
+    requests[n] = wrk.format("GET", path)
+  end
+  if n == 0 then
+    n = 1
+    requests[1] = wrk.format("GET", wrk.path)
+  end
+  i = math.random(n) - 1  -- Threads start at different places in the rotation.
+end
+function request()
+  i = i % n + 1
+  return requests[i]
+end
+function done(summary, latency, requests)
+  local e = summary.errors
+  io.write(string.format(
+    "BENCH requests=%d duration_us=%d p50_us=%d p90_us=%d p99_us=%d max_us=%d " ..
+    "non2xx=%d connect=%d read=%d write=%d timeout=%d\n",
+    summary.requests, summary.duration, latency:percentile(50), latency:percentile(90),
+    latency:percentile(99), latency.max, e.status, e.connect, e.read, e.write, e.timeout))
+end
+EOF
+
+MDP_PATHS=()
+for s in "${STATES[@]}"; do MDP_PATHS+=("/v1/models/$MODEL_ID/policy?state=$s"); done
+
+# Kernel-wide count of connections dropped because a listen queue was full.
+listen_overflows() {
+  awk '/^TcpExt:/ { if (!h) { for (i = 1; i <= NF; i++) if ($i == "ListenOverflows") c = i; h = 1 }
+                    else { print $c; exit } }' /proc/net/netstat
+}
+
+# CPU time (clock ticks) used so far by PID and its child processes that are still alive
+# (nginx: master + workers; mdpserve: all its threads).
+cpu_ticks() {
+  local pid=$1 total=0 p
+  for p in $pid $(cat /proc/"$pid"/task/*/children 2>/dev/null); do
+    [[ -r /proc/$p/stat ]] || continue
+    total=$(( total + $(awk '{ sub(/^.*\) /, ""); print $12 + $13 }' /proc/"$p"/stat) ))
+  done
+  echo "$total"
+}
+
+# Runs wrk; prints "rps p50_us p99_us non2xx socket_errors requests listen_overflows
+# server_cpu_us_per_request" on stdout.
+run_wrk() {  # $1 = label, $2 = server PID, $3 = base URL, rest = paths
+  local label=$1 pid=$2 url=$3 out="$WORK/wrk-$1.txt" ovf0 cpu0
+  shift 3
+  ovf0=$(listen_overflows)
+  cpu0=$(cpu_ticks "$pid")
+  if ! timeout $((SECONDS_PER_RUN + 30)) wrk -t"$WRK_THREADS" -c"$CONNECTIONS" \
+      -d"${SECONDS_PER_RUN}s" --latency -s "$WORK/rotate.lua" "$url" -- "$@" >"$out" 2>&1; then
+    cat "$out" >&2
+    die "wrk failed against $url"
+  fi
+  local ovf=$(( $(listen_overflows) - ovf0 )) cpu=$(( $(cpu_ticks "$pid") - cpu0 ))
+  python3 - "$out" "$ovf" "$cpu" "$(getconf CLK_TCK)" <<'EOF'
+import re, sys
+text = open(sys.argv[1]).read()
+ovf, ticks, hz = int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4])
+m = re.search(r"^BENCH (.*)$", text, re.M)
+if not m:
+    sys.exit("no BENCH line in wrk output")
+v = {k: int(x) for k, x in (kv.split("=") for kv in m.group(1).split())}
+rps = v["requests"] / (v["duration_us"] / 1e6)
+sock = v["connect"] + v["read"] + v["write"] + v["timeout"]
+cpu_us = ticks / hz * 1e6 / max(v["requests"], 1)
+print(f'{rps:.0f} {v["p50_us"]} {v["p99_us"]} {v["non2xx"]} {sock} {v["requests"]} {ovf} {cpu_us:.1f}')
+EOF
+}
+
+# --- Runs: nginx then mdpserve, alternating, for each --http-threads value ---------------
+ROWS=()  # "server threads round rps p50 p99 non2xx sock requests ratio"
+for threads in $HTTP_THREADS_LIST; do
+  if [[ -z $MDP_PID ]]; then start_mdpserve "$threads"; fi
+  for round in $(seq "$ROUNDS"); do
+    echo "-- round $round, mdpserve --http-threads $threads: nginx ..." >&2
+    res=$(run_wrk "nginx-t$threads-r$round" "$NGINX_PID" "http://127.0.0.1:$NGINX_PORT" \
+      "/answer.json")
+    read -r n_rps n_p50 n_p99 n_non2xx n_sock n_req n_ovf n_cpu <<<"$res"
+    kill -0 "$NGINX_PID" 2>/dev/null || die "nginx died during the run"
+    echo "-- round $round, mdpserve --http-threads $threads: mdpserve ..." >&2
+    res=$(run_wrk "mdpserve-t$threads-r$round" "$MDP_PID" "http://127.0.0.1:$MDP_PORT" \
+      "${MDP_PATHS[@]}")
+    read -r m_rps m_p50 m_p99 m_non2xx m_sock m_req m_ovf m_cpu <<<"$res"
+    kill -0 "$MDP_PID" 2>/dev/null || die "mdpserve died during the run"
+    ratio=$(python3 -c "print(f'{$m_rps / max($n_rps, 1):.3f}')")
+    ROWS+=("nginx - $round $n_rps $n_p50 $n_p99 $n_non2xx $n_sock $n_req $n_ovf $n_cpu -")
+    ROWS+=("mdpserve $threads $round $m_rps $m_p50 $m_p99 $m_non2xx $m_sock $m_req $m_ovf $m_cpu $ratio")
+  done
+  stop_mdpserve
+done
+
+# --- Report ------------------------------------------------------------------------------
+python3 - "$TARGET_RATIO" "$TARGET_P99_US" "${ROWS[@]}" <<'EOF'
+import statistics, sys
+target_ratio, target_p99 = float(sys.argv[1]), int(sys.argv[2])
+rows = [r.split() for r in sys.argv[3:]]
+print()
+print("== results (ratio = mdpserve req/s / req/s of the nginx run just before it)")
+print("   lsn-ovf = connections the kernel dropped because a listen queue was full (all of")
+print("   the host), cpu/req = server CPU microseconds per answered request")
+head = f'{"server":<9} {"http-thr":>8} {"round":>5} {"req/s":>9} {"p50 ms":>7} {"p99 ms":>8} ' \
+       f'{"non-2xx":>7} {"sockerr":>7} {"requests":>9} {"lsn-ovf":>7} {"cpu/req":>7} ' \
+       f'{"ratio":>6}  targets'
+print(head)
+print("-" * len(head))
+by_threads = {}
+for server, thr, rnd, rps, p50, p99, non2xx, sock, req, ovf, cpu, ratio in rows:
+    verdict = ""
+    if server == "mdpserve":
+        miss = []
+        if float(ratio) < target_ratio: miss.append(f"ratio<{target_ratio}")
+        if int(p99) >= target_p99: miss.append(f"p99>={target_p99/1000:g}ms")
+        if int(non2xx) + int(sock) > 0: miss.append("errors")
+        verdict = "ok" if not miss else "MISS " + ",".join(miss)
+        by_threads.setdefault(thr, []).append((float(ratio), int(p99), int(non2xx) + int(sock)))
+    print(f'{server:<9} {thr:>8} {rnd:>5} {int(rps):>9} {int(p50)/1000:>7.3f} {int(p99)/1000:>8.3f} '
+          f'{non2xx:>7} {sock:>7} {req:>9} {ovf:>7} {float(cpu):>7.1f} {ratio:>6}  {verdict}')
+print()
+print(f"== targets: ratio >= {target_ratio}, mdpserve p99 < {target_p99/1000:g} ms, zero errors")
+for thr, runs in by_threads.items():
+    ratio = statistics.median(r for r, _, _ in runs)
+    p99 = max(p for _, p, _ in runs)
+    errors = sum(e for _, _, e in runs)
+    print(f"--http-threads {thr:>4}: median ratio {ratio:.3f} "
+          f"[{'holds' if ratio >= target_ratio else 'MISSED'}], "
+          f"worst p99 {p99/1000:.3f} ms [{'holds' if p99 < target_p99 else 'MISSED'}], "
+          f"errors {errors} [{'holds' if errors == 0 else 'MISSED'}]")
+EOF
+echo "loadavg:    $(cut -d' ' -f1-3 /proc/loadavg) (after the runs)"
+exit 0
