@@ -291,23 +291,52 @@ cpu_ticks() {
   echo "$total"
 }
 
-# Runs wrk; prints "rps p50_us p99_us non2xx socket_errors requests listen_overflows
-# server_cpu_us_per_request" on stdout.
-run_wrk() {  # $1 = label, $2 = server PID, $3 = base URL, rest = paths
-  local label=$1 pid=$2 url=$3 out="$WORK/wrk-$1.txt" ovf0 cpu0
+# "peer bytes_sent" for each established connection whose local port is $1 (server side).
+conn_bytes_sent() {
+  command -v ss >/dev/null || return 0
+  ss -tniH state established "( sport = :$1 )" 2>/dev/null | awk '
+    /^[[:space:]]/ { if (peer != "") { v = 0
+                       if (match($0, /bytes_sent:[0-9]+/)) v = substr($0, RSTART + 11, RLENGTH - 11)
+                       print peer, v; peer = "" }
+                     next }
+    { peer = $NF }'
+}
+
+# Runs wrk against one server and sets RESULT to "rps p50_us p99_us non2xx socket_errors
+# requests listen_overflows server_cpu_us_per_request stalled_connections".
+# wrk only records requests that were answered, so a connection the server never serves
+# is invisible in its numbers: the server-side sockets are sampled at 1/3 and 2/3 of the
+# run, and a connection that sent no byte between the samples counts as stalled.
+RESULT=""
+run_wrk() {  # $1 = label, $2 = server PID, $3 = server port, rest = paths
+  local label=$1 pid=$2 port=$3 out="$WORK/wrk-$1.txt" ovf0 cpu0 wrk_pid rc=0 third
   shift 3
   ovf0=$(listen_overflows)
   cpu0=$(cpu_ticks "$pid")
-  if ! timeout $((SECONDS_PER_RUN + 30)) wrk -t"$WRK_THREADS" -c"$CONNECTIONS" \
-      -d"${SECONDS_PER_RUN}s" --latency -s "$WORK/rotate.lua" "$url" -- "$@" >"$out" 2>&1; then
+  timeout $((SECONDS_PER_RUN + 30)) wrk -t"$WRK_THREADS" -c"$CONNECTIONS" \
+    -d"${SECONDS_PER_RUN}s" --latency -s "$WORK/rotate.lua" "http://127.0.0.1:$port" \
+    -- "$@" >"$out" 2>&1 &
+  wrk_pid=$!
+  PIDS+=("$wrk_pid")
+  third=$(python3 -c "print($SECONDS_PER_RUN / 3)")
+  sleep "$third"; conn_bytes_sent "$port" >"$WORK/conns-$label-1.txt"
+  sleep "$third"; conn_bytes_sent "$port" >"$WORK/conns-$label-2.txt"
+  wait "$wrk_pid" || rc=$?
+  forget_pid "$wrk_pid"
+  if (( rc != 0 )); then
     cat "$out" >&2
-    die "wrk failed against $url"
+    die "wrk failed against 127.0.0.1:$port (exit $rc)"
   fi
   local ovf=$(( $(listen_overflows) - ovf0 )) cpu=$(( $(cpu_ticks "$pid") - cpu0 ))
-  python3 - "$out" "$ovf" "$cpu" "$(getconf CLK_TCK)" <<'EOF'
+  RESULT=$(python3 - "$out" "$ovf" "$cpu" "$(getconf CLK_TCK)" \
+    "$WORK/conns-$label-1.txt" "$WORK/conns-$label-2.txt" <<'EOF'
 import re, sys
 text = open(sys.argv[1]).read()
 ovf, ticks, hz = int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4])
+def sample(path):
+    return dict(line.split() for line in open(path) if line.strip())
+first, second = sample(sys.argv[5]), sample(sys.argv[6])
+stalled = sum(1 for peer, sent in first.items() if second.get(peer) == sent)
 m = re.search(r"^BENCH (.*)$", text, re.M)
 if not m:
     sys.exit("no BENCH line in wrk output")
@@ -315,28 +344,28 @@ v = {k: int(x) for k, x in (kv.split("=") for kv in m.group(1).split())}
 rps = v["requests"] / (v["duration_us"] / 1e6)
 sock = v["connect"] + v["read"] + v["write"] + v["timeout"]
 cpu_us = ticks / hz * 1e6 / max(v["requests"], 1)
-print(f'{rps:.0f} {v["p50_us"]} {v["p99_us"]} {v["non2xx"]} {sock} {v["requests"]} {ovf} {cpu_us:.1f}')
+print(f'{rps:.0f} {v["p50_us"]} {v["p99_us"]} {v["non2xx"]} {sock} {v["requests"]} {ovf} '
+      f'{cpu_us:.1f} {stalled}')
 EOF
+  ) || die "cannot parse the wrk output $out"
 }
 
 # --- Runs: nginx then mdpserve, alternating, for each --http-threads value ---------------
-ROWS=()  # "server threads round rps p50 p99 non2xx sock requests ratio"
+ROWS=()  # "server threads round rps p50 p99 non2xx sock stalled requests ovf cpu ratio"
 for threads in $HTTP_THREADS_LIST; do
   if [[ -z $MDP_PID ]]; then start_mdpserve "$threads"; fi
   for round in $(seq "$ROUNDS"); do
     echo "-- round $round, mdpserve --http-threads $threads: nginx ..." >&2
-    res=$(run_wrk "nginx-t$threads-r$round" "$NGINX_PID" "http://127.0.0.1:$NGINX_PORT" \
-      "/answer.json")
-    read -r n_rps n_p50 n_p99 n_non2xx n_sock n_req n_ovf n_cpu <<<"$res"
+    run_wrk "nginx-t$threads-r$round" "$NGINX_PID" "$NGINX_PORT" "/answer.json"
+    read -r n_rps n_p50 n_p99 n_non2xx n_sock n_req n_ovf n_cpu n_stall <<<"$RESULT"
     kill -0 "$NGINX_PID" 2>/dev/null || die "nginx died during the run"
     echo "-- round $round, mdpserve --http-threads $threads: mdpserve ..." >&2
-    res=$(run_wrk "mdpserve-t$threads-r$round" "$MDP_PID" "http://127.0.0.1:$MDP_PORT" \
-      "${MDP_PATHS[@]}")
-    read -r m_rps m_p50 m_p99 m_non2xx m_sock m_req m_ovf m_cpu <<<"$res"
+    run_wrk "mdpserve-t$threads-r$round" "$MDP_PID" "$MDP_PORT" "${MDP_PATHS[@]}"
+    read -r m_rps m_p50 m_p99 m_non2xx m_sock m_req m_ovf m_cpu m_stall <<<"$RESULT"
     kill -0 "$MDP_PID" 2>/dev/null || die "mdpserve died during the run"
     ratio=$(python3 -c "print(f'{$m_rps / max($n_rps, 1):.3f}')")
-    ROWS+=("nginx - $round $n_rps $n_p50 $n_p99 $n_non2xx $n_sock $n_req $n_ovf $n_cpu -")
-    ROWS+=("mdpserve $threads $round $m_rps $m_p50 $m_p99 $m_non2xx $m_sock $m_req $m_ovf $m_cpu $ratio")
+    ROWS+=("nginx - $round $n_rps $n_p50 $n_p99 $n_non2xx $n_sock $n_stall $n_req $n_ovf $n_cpu -")
+    ROWS+=("mdpserve $threads $round $m_rps $m_p50 $m_p99 $m_non2xx $m_sock $m_stall $m_req $m_ovf $m_cpu $ratio")
   done
   stop_mdpserve
 done
@@ -347,28 +376,35 @@ import statistics, sys
 target_ratio, target_p99 = float(sys.argv[1]), int(sys.argv[2])
 rows = [r.split() for r in sys.argv[3:]]
 print()
-print("== results (ratio = mdpserve req/s / req/s of the nginx run just before it)")
-print("   lsn-ovf = connections the kernel dropped because a listen queue was full (all of")
-print("   the host), cpu/req = server CPU microseconds per answered request")
-head = f'{"server":<9} {"http-thr":>8} {"round":>5} {"req/s":>9} {"p50 ms":>7} {"p99 ms":>8} ' \
-       f'{"non-2xx":>7} {"sockerr":>7} {"requests":>9} {"lsn-ovf":>7} {"cpu/req":>7} ' \
-       f'{"ratio":>6}  targets'
+print("== results")
+print("   ratio    mdpserve req/s over the req/s of the nginx run just before it")
+print("   sockerr  wrk socket errors (connect, read, write, timeout)")
+print("   stalled  open connections that got no byte from the server for 1/3 of the run;")
+print("            wrk's latencies cannot see them, so they count as errors here")
+print("   lsn-ovf  connections the kernel dropped on a full listen queue (host-wide counter)")
+print("   cpu/req  server CPU microseconds per answered request")
+head = (f'{"server":<9} {"http-thr":>8} {"round":>5} {"req/s":>8} {"p50 ms":>7} {"p99 ms":>8} '
+        f'{"non-2xx":>7} {"sockerr":>7} {"stalled":>7} {"requests":>9} {"lsn-ovf":>7} '
+        f'{"cpu/req":>7} {"ratio":>6}  targets')
 print(head)
 print("-" * len(head))
 by_threads = {}
-for server, thr, rnd, rps, p50, p99, non2xx, sock, req, ovf, cpu, ratio in rows:
+for server, thr, rnd, rps, p50, p99, non2xx, sock, stall, req, ovf, cpu, ratio in rows:
     verdict = ""
+    errors = int(non2xx) + int(sock) + int(stall)
     if server == "mdpserve":
         miss = []
         if float(ratio) < target_ratio: miss.append(f"ratio<{target_ratio}")
         if int(p99) >= target_p99: miss.append(f"p99>={target_p99/1000:g}ms")
-        if int(non2xx) + int(sock) > 0: miss.append("errors")
+        if errors > 0: miss.append("errors")
         verdict = "ok" if not miss else "MISS " + ",".join(miss)
-        by_threads.setdefault(thr, []).append((float(ratio), int(p99), int(non2xx) + int(sock)))
-    print(f'{server:<9} {thr:>8} {rnd:>5} {int(rps):>9} {int(p50)/1000:>7.3f} {int(p99)/1000:>8.3f} '
-          f'{non2xx:>7} {sock:>7} {req:>9} {ovf:>7} {float(cpu):>7.1f} {ratio:>6}  {verdict}')
+        by_threads.setdefault(thr, []).append((float(ratio), int(p99), errors))
+    print(f'{server:<9} {thr:>8} {rnd:>5} {int(rps):>8} {int(p50)/1000:>7.3f} '
+          f'{int(p99)/1000:>8.3f} {non2xx:>7} {sock:>7} {stall:>7} {req:>9} {ovf:>7} '
+          f'{float(cpu):>7.1f} {ratio:>6}  {verdict}')
 print()
-print(f"== targets: ratio >= {target_ratio}, mdpserve p99 < {target_p99/1000:g} ms, zero errors")
+print(f"== targets: ratio >= {target_ratio}, mdpserve p99 < {target_p99/1000:g} ms, "
+      "zero errors (non-2xx + socket errors + stalled connections)")
 for thr, runs in by_threads.items():
     ratio = statistics.median(r for r, _, _ in runs)
     p99 = max(p for _, p, _ in runs)

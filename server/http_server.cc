@@ -107,7 +107,15 @@ struct HttpServer::Impl {
         WriteProblem(res, MakeProblem(NotFoundError("no route for " + req.method + " " + req.path),
                                       ProblemKind::kNotFoundRoute));
       } else {
-        Problem p = MakeProblem(InternalError("request failed"));
+        // Statuses cpp-httplib sets itself (400 for an unreadable request, 414 for a long
+        // URI, ...): the problem's "status" member must be the response's status.
+        const bool client_error = res.status >= 400 && res.status < 500;
+        const std::string detail =
+            "the request could not be handled (HTTP " + std::to_string(res.status) + ")";
+        Problem p = MakeProblem(client_error ? InvalidArgumentError(detail) : InternalError(detail));
+        Json body = Json::parse(p.body);
+        body["status"] = res.status;
+        p.body = body.dump();
         p.status = res.status;
         WriteProblem(res, p);
       }

@@ -51,11 +51,13 @@ class DomBuilder : public nlohmann::json_sax<Json> {
     std::string what = ex.what();
     const size_t close = what.find("] ");
     if (close != std::string::npos) what = what.substr(close + 2);
+    malformed_ = true;
     return Fail(Pointer(), "malformed JSON: " + what);
   }
 
   Json TakeRoot() { return std::move(root_); }
   std::vector<DocumentIssue> TakeErrors() { return std::move(errors_); }
+  bool malformed() const { return malformed_; }
 
  private:
   struct Frame {
@@ -121,6 +123,7 @@ class DomBuilder : public nlohmann::json_sax<Json> {
 
   bool Open(Json&& container) {
     if (static_cast<int>(frames_.size()) >= options_.max_depth) {
+      malformed_ = true;
       return Fail(Pointer(), "nesting is deeper than " + std::to_string(options_.max_depth) +
                                  " levels");
     }
@@ -152,6 +155,7 @@ class DomBuilder : public nlohmann::json_sax<Json> {
   Json root_;
   std::vector<Frame> frames_;
   std::vector<DocumentIssue> errors_;
+  bool malformed_ = false;
 };
 
 }  // namespace
@@ -167,7 +171,11 @@ JsonReadResult ReadJson(std::string_view text, const JsonReadOptions& options) {
     return result;
   }
   result.errors = builder.TakeErrors();
-  if (!ok && result.errors.empty()) result.errors.push_back({"", "malformed JSON"});
+  result.malformed = builder.malformed();
+  if (!ok && result.errors.empty()) {
+    result.errors.push_back({"", "malformed JSON"});
+    result.malformed = true;
+  }
   if (result.errors.empty()) result.root = builder.TakeRoot();
   return result;
 }

@@ -37,6 +37,7 @@ struct JsonReadOptions {
 struct JsonReadResult {
   Json root;
   std::vector<DocumentIssue> errors;  // Empty iff the text was read completely.
+  bool malformed = false;  // True iff the text is not JSON (syntax) or nests too deep.
 };
 
 JsonReadResult ReadJson(std::string_view text, const JsonReadOptions& options);

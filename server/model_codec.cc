@@ -465,6 +465,7 @@ SpecDecodeResult DecodeSpecWith(std::string_view text, const DecodeLimits& limit
     }
     out.errors = std::move(decoder.errors());
     out.errors_not_listed = decoder.errors_not_listed();
+    out.malformed = parsed.malformed;
     return out;
   }
   decoder.ReadRoot(parsed.root);
@@ -534,6 +535,7 @@ ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits)
   SpecDecodeResult decoded = DecodeSpecWith(text, limits, decoder);
   out.errors = std::move(decoded.errors);
   out.errors_not_listed = decoded.errors_not_listed;
+  out.malformed = decoded.malformed;
   const bool readable = out.errors.empty() || !decoded.spec.state_names.empty() ||
                         !decoded.spec.action_names.empty();
   if (readable) {

@@ -39,6 +39,7 @@ struct ModelDecodeResult {
   std::vector<DocumentIssue> warnings;
   int64_t errors_not_listed = 0;
   int64_t warnings_not_listed = 0;
+  bool malformed = false;  // The text is not JSON (or nests too deep): nothing was checked.
   bool ok() const { return model.has_value(); }
 };
 
@@ -51,6 +52,7 @@ struct SpecDecodeResult {
   ModelSpec spec;
   std::vector<DocumentIssue> errors;
   int64_t errors_not_listed = 0;
+  bool malformed = false;
 };
 SpecDecodeResult DecodeModelSpec(std::string_view text, const DecodeLimits& limits = {});
 

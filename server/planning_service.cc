@@ -140,6 +140,7 @@ Result<UploadResult> PlanningService::UploadModel(std::string_view document) {
   if (!decoded.ok()) {
     result.errors = std::move(decoded.errors);
     result.errors_not_listed = decoded.errors_not_listed;
+    result.malformed = decoded.malformed;
     if (result.errors.empty()) result.errors.push_back({"", "the model is not valid"});
     return result;
   }

@@ -45,6 +45,7 @@ struct UploadResult {
   ModelRecord record;                  // Without the document.
   std::vector<DocumentIssue> errors;   // Non-empty: the document is not a valid model.
   int64_t errors_not_listed = 0;
+  bool malformed = false;              // With errors: the body is not JSON at all.
   std::vector<DocumentIssue> warnings;
 };
 

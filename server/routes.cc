@@ -33,11 +33,15 @@ void UploadModel(HttpContext& ctx, const Request& req, Response& res) {
   Result<UploadResult> upload = ctx.service.UploadModel(req.body);
   if (!upload.ok()) return WriteProblem(res, upload.status());
   if (!upload->errors.empty()) {
-    return WriteProblem(res, MakeProblem(InvalidArgumentError("the model document has " +
-                                                              std::to_string(upload->errors.size() + upload->errors_not_listed) +
-                                                              " errors"),
-                                         ProblemKind::kInvalidModel, upload->errors,
-                                         upload->errors_not_listed));
+    const int64_t count = static_cast<int64_t>(upload->errors.size()) + upload->errors_not_listed;
+    return WriteProblem(
+        res, MakeProblem(InvalidArgumentError(upload->malformed
+                                                  ? upload->errors.front().message
+                                                  : "the model document has " +
+                                                        std::to_string(count) + " errors"),
+                         upload->malformed ? ProblemKind::kMalformedJson
+                                           : ProblemKind::kInvalidModel,
+                         upload->errors, upload->errors_not_listed));
   }
   res.set_header("Location", "/v1/models/" + upload->record.id);
   WriteJson(res, upload->created ? 201 : 200, EncodeUpload(*upload).dump());
