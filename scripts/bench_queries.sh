@@ -13,7 +13,7 @@
 #   BENCH_SECONDS=10          duration of each wrk run
 #   BENCH_CONNECTIONS=64      keep-alive connections wrk holds open
 #   BENCH_WRK_THREADS=2       wrk threads
-#   BENCH_HTTP_THREADS="64"   mdpserve --http-threads values to try, space separated
+#   BENCH_HTTP_THREADS="128"  mdpserve --http-threads values to try, space separated
 #   BENCH_ROUNDS=1            nginx/mdpserve pairs per --http-threads value (alternating)
 #   BENCH_NGINX_WORKERS=2     nginx worker processes
 #   MDPSERVE=build/bin/mdpserve
@@ -21,14 +21,17 @@
 #   BENCH_KEEP=1              keep the temporary directory (configs, logs, wrk output)
 #
 # Targets, per mdpserve run against the nginx run next to it: ratio of requests/s >= 0.6,
-# mdpserve p99 latency < 2 ms, zero non-2xx responses and zero socket errors.
+# mdpserve p99 latency < 2 ms, and zero errors: non-2xx responses, wrk socket errors, and
+# stalled connections (open but never answered: wrk's numbers cannot show those).
+# Both servers share the machine's CPUs with wrk and with anything else running, so run it
+# on a quiet machine and use BENCH_ROUNDS=3 or more; the table prints loadavg before/after.
 set -euo pipefail
 
 ROOT=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
 SECONDS_PER_RUN=${BENCH_SECONDS:-10}
 CONNECTIONS=${BENCH_CONNECTIONS:-64}
 WRK_THREADS=${BENCH_WRK_THREADS:-2}
-HTTP_THREADS_LIST=${BENCH_HTTP_THREADS:-64}
+HTTP_THREADS_LIST=${BENCH_HTTP_THREADS:-128}
 ROUNDS=${BENCH_ROUNDS:-1}
 NGINX_WORKERS=${BENCH_NGINX_WORKERS:-2}
 MDPSERVE=${MDPSERVE:-$ROOT/build/bin/mdpserve}
@@ -53,7 +56,7 @@ NGINX_BIN=$(command -v nginx || true)
 missing=()
 command -v wrk >/dev/null || missing+=(wrk)
 [[ -n $NGINX_BIN ]] || missing+=(nginx)
-for tool in curl python3 timeout; do command -v "$tool" >/dev/null || missing+=("$tool"); done
+for tool in curl python3 timeout cmp; do command -v "$tool" >/dev/null || missing+=("$tool"); done
 if (( ${#missing[@]} > 0 )); then
   die "missing tools: ${missing[*]} (run: bash scripts/install-deps.sh)"
 fi
@@ -82,6 +85,7 @@ forget_pid() {
   PIDS=("${keep[@]}")
 }
 
+# shellcheck disable=SC2317  # Reached through the traps below.
 cleanup() {
   local rc=$? p
   trap - EXIT INT TERM
@@ -162,7 +166,8 @@ echo "nginx:      $("$NGINX_BIN" -v 2>&1 | sed 's/^nginx version: //')"
 echo "curl:       $(curl --version | head -1 | cut -d' ' -f1-2)"
 httplib_version=$(sed -n 's/^#define CPPHTTPLIB_VERSION "\(.*\)"/\1/p' /usr/include/httplib.h 2>/dev/null | head -1)
 echo "cpp-httplib: ${httplib_version:-unknown} (/usr/include/httplib.h)"
-echo "mdpserve:   $MDPSERVE ($(grep -s '^CMAKE_BUILD_TYPE' "$(dirname "$MDPSERVE")/../CMakeCache.txt" | cut -d= -f2 || true))"
+build_type=$(grep -s '^CMAKE_BUILD_TYPE' "$(dirname "$MDPSERVE")/../CMakeCache.txt" | cut -d= -f2 || true)
+echo "mdpserve:   $MDPSERVE${build_type:+ ($build_type build)}"
 echo "model:      $MODEL (${#STATES[@]} states)"
 echo "load:       wrk -t$WRK_THREADS -c$CONNECTIONS -d${SECONDS_PER_RUN}s --latency, keep-alive"
 
@@ -383,6 +388,8 @@ print("   stalled  open connections that got no byte from the server for 1/3 of 
 print("            wrk's latencies cannot see them, so they count as errors here")
 print("   lsn-ovf  connections the kernel dropped on a full listen queue (host-wide counter)")
 print("   cpu/req  server CPU microseconds per answered request")
+print("   p50/p99  wrk's, which adds samples for the requests a stall held back (its")
+print("            coordinated-omission correction): one 1 s stall can move p99 a lot")
 head = (f'{"server":<9} {"http-thr":>8} {"round":>5} {"req/s":>8} {"p50 ms":>7} {"p99 ms":>8} '
         f'{"non-2xx":>7} {"sockerr":>7} {"stalled":>7} {"requests":>9} {"lsn-ovf":>7} '
         f'{"cpu/req":>7} {"ratio":>6}  targets')

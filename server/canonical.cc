@@ -3,6 +3,7 @@
 #include <openssl/evp.h>
 
 #include <charconv>
+#include <cmath>
 #include <cstdio>
 
 namespace mdp::server {
@@ -34,6 +35,10 @@ void AppendJsonString(std::string& out, std::string_view text) {
 }
 
 void AppendJsonNumber(std::string& out, double value) {
+  if (!std::isfinite(value)) {  // JSON has no infinities or NaN.
+    out += "null";
+    return;
+  }
   if (value == 0.0) value = 0.0;  // -0 and 0 print alike.
   char buffer[32];
   const auto result = std::to_chars(buffer, buffer + sizeof buffer, value);

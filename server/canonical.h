@@ -25,7 +25,7 @@ std::string ModelId(std::string_view canonical_document);
 
 // Appends `text` as a JSON string literal (quotes and escapes included).
 void AppendJsonString(std::string& out, std::string_view text);
-// Appends a finite double in shortest round-trip form.
+// Appends a double in shortest round-trip form; null if it is not finite.
 void AppendJsonNumber(std::string& out, double value);
 
 }  // namespace mdp::server

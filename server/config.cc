@@ -21,7 +21,9 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->envname("MDPSERVE_SOLVER_THREADS")
       ->capture_default_str()
       ->check(CLI::Range(1, 256));
-  app->add_option("--http-threads", c.http_threads, "HTTP connection threads")
+  app->add_option("--http-threads", c.http_threads,
+                  "HTTP threads; each keep-alive connection holds one while open, so use at "
+                  "least the number of concurrent clients")
       ->envname("MDPSERVE_HTTP_THREADS")
       ->capture_default_str()
       ->check(CLI::Range(1, 1024));
@@ -49,6 +51,11 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->envname("MDPSERVE_SHUTDOWN_DEADLINE")
       ->capture_default_str()
       ->check(CLI::Range(0.0, 86400.0));
+  app->add_option("--drain-seconds", c.drain_seconds,
+                  "after SIGTERM, seconds /readyz answers 503 before the listener closes")
+      ->envname("MDPSERVE_DRAIN_SECONDS")
+      ->capture_default_str()
+      ->check(CLI::Range(0.0, 600.0));
   app->add_option("--port-file", c.port_file, "write the bound port to this file")
       ->envname("MDPSERVE_PORT_FILE");
   app->add_option("--preload", c.preload, "model files to upload and solve before serving");

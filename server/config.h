@@ -22,13 +22,14 @@ struct ServerConfig {
   bool memory_store = false;               // Keep nothing on disk (tests, demos).
   int workers = 1;                         // Solve worker threads.
   int solver_threads = 1;                  // Threads per solve for sweeps.
-  int http_threads = 8;                    // HTTP connection threads.
+  int http_threads = 128;                  // HTTP threads: one per open connection.
   int64_t body_limit = int64_t{256} << 20;  // Request body cap in bytes.
   int64_t cache_bytes = int64_t{2} << 30;   // Model/solution cache budget in bytes.
   int64_t queue_length = 64;               // Solve jobs waiting at most.
   std::string token_file;                  // If set, bearer token required (not health).
   std::string log_level = "info";          // trace, debug, info, warn, error, off.
   double shutdown_deadline = 10.0;         // Seconds running jobs get on SIGTERM.
+  double drain_seconds = 0.5;              // Not-ready time before the listener closes.
   std::string port_file;                   // If set, the bound port is written here.
   std::vector<std::string> preload;        // Model files to upload and solve at start.
 };

@@ -1,6 +1,7 @@
 #include "server/http_server.h"
 
 #include <openssl/crypto.h>
+#include <sys/socket.h>
 #include <spdlog/spdlog.h>
 
 #include <chrono>
@@ -67,16 +68,27 @@ struct HttpServer::Impl {
   }
 
   void Install() {
+    // Debian's cpp-httplib is a shared library built with a listen backlog of 5 and
+    // SO_REUSEPORT. Take the socket options over (SO_REUSEADDR only, so a second server on
+    // the same port fails to bind instead of silently sharing it) and remember the socket so
+    // Bind() can enlarge the backlog: with 5, bursts of new connections are dropped by the
+    // kernel and retried a second or more later.
+    server.set_socket_options([this](socket_t sock) {
+      int yes = 1;
+      ::setsockopt(sock, SOL_SOCKET, SO_REUSEADDR, &yes, sizeof yes);
+      listen_fd = sock;
+    });
     server.set_tcp_nodelay(true);  // Small answers must not wait on Nagle + delayed ACK.
-    server.set_keep_alive_max_count(100000);
+    server.set_keep_alive_max_count(1000);  // Busy connections give their thread back now and then.
     server.set_keep_alive_timeout(30);
     server.set_read_timeout(30);
     server.set_payload_max_length(static_cast<size_t>(options.body_limit));
     const int threads = options.threads;
     server.new_task_queue = [threads] { return new httplib::ThreadPool(threads); };
+    unmatched = metrics.For(HttpMetrics::kUnmatchedRoute, HttpMetrics::kUnmatchedMethod);
     server.set_pre_routing_handler([this](const httplib::Request& req, httplib::Response& res) {
       tl_start = std::chrono::steady_clock::now();
-      tl_handle = metrics.For(HttpMetrics::kUnmatchedRoute, HttpMetrics::kUnmatchedMethod);
+      tl_handle = unmatched;
       tl_route = "unmatched";
       if (!options.token.empty() && !IsPublic(req.path) && !Authorized(req)) {
         res.set_header("WWW-Authenticate", "Bearer");
@@ -145,8 +157,10 @@ struct HttpServer::Impl {
   HttpOptions options;
   HttpMetrics metrics;
   std::string token_digest;
+  HttpMetrics::RequestHandle* unmatched = nullptr;
   httplib::Server server;
   int bound_port = -1;
+  socket_t listen_fd = -1;  // Set by the socket options callback during Bind().
 };
 
 HttpServer::HttpServer(PlanningService& service, MetricsRegistry& registry, HttpOptions options)
@@ -163,7 +177,8 @@ Status HttpServer::Bind() {
   } else {
     impl_->bound_port = impl_->server.bind_to_port(o.host, o.port) ? o.port : -1;
   }
-  if (impl_->bound_port < 0) {
+  if (impl_->bound_port < 0 || impl_->listen_fd < 0 ||
+      ::listen(impl_->listen_fd, SOMAXCONN) != 0) {
     return Status(StatusCode::kUnavailable,
                   "cannot listen on " + o.host + ":" + std::to_string(o.port));
   }

@@ -19,7 +19,7 @@ namespace mdp::server {
 struct HttpOptions {
   std::string host = "127.0.0.1";
   int port = 8080;                         // 0: any free port (see HttpServer::port()).
-  int threads = 8;                         // Connection threads.
+  int threads = 128;                       // Connection threads (one per open connection).
   int64_t body_limit = int64_t{256} << 20;  // Bytes; larger bodies get 413.
   std::string token;                       // Non-empty: required as "Bearer <token>".
 };

@@ -115,7 +115,7 @@ Status PlanningService::Start() {
 }
 
 void PlanningService::Shutdown(double deadline_seconds) {
-  if (!accepting_.exchange(false) && queue_ == nullptr) return;
+  accepting_.store(false, std::memory_order_release);
   const auto deadline = std::chrono::steady_clock::now() +
                         std::chrono::duration<double>(std::max(0.0, deadline_seconds));
   while (queue_->running() > 0 && std::chrono::steady_clock::now() < deadline) {

@@ -91,6 +91,9 @@ class PlanningService {
   // Stops accepting work, lets running jobs finish for up to `deadline_seconds`, then cancels
   // them (they go back to queued, and run again at the next Start()). Idempotent.
   void Shutdown(double deadline_seconds);
+  // Refuses new work (503) and reports not ready, without stopping running jobs: the first
+  // step of a graceful stop, so load balancers can drain.
+  void StopAccepting() { accepting_.store(false, std::memory_order_release); }
   bool accepting() const { return accepting_.load(std::memory_order_acquire); }
 
   // Models.

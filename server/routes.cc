@@ -252,14 +252,15 @@ void OpenApi(HttpContext&, const Request&, Response& res) { WriteJson(res, 200, 
 }  // namespace
 
 const std::vector<Route>& ApiRoutes() {
+  // The hot query first: cpp-httplib tries the patterns of a method in this order.
   static const std::vector<Route> routes = {
+      {"GET", "/v1/models/{id}/policy", "/v1/models/([0-9a-zA-Z_-]{1,64})/policy", BestAction},
       {"POST", "/v1/models", "/v1/models", UploadModel},
       {"GET", "/v1/models", "/v1/models", ListModels},
       {"GET", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", GetModel},
       {"DELETE", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", DeleteModel},
       {"GET", "/v1/models/{id}/document", "/v1/models/([0-9a-zA-Z_-]{1,64})/document",
        GetModelDocument},
-      {"GET", "/v1/models/{id}/policy", "/v1/models/([0-9a-zA-Z_-]{1,64})/policy", BestAction},
       {"POST", "/v1/models/{id}/policy/batch",
        "/v1/models/([0-9a-zA-Z_-]{1,64})/policy/batch", BestActionBatch},
       {"GET", "/v1/models/{id}/policy/explain",

@@ -203,10 +203,13 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
                config.memory_store ? "memory" : config.data_dir);
   PrintExamples(base, loaded, out);
 
-  std::thread waiter([&stop_signals, &server] {
+  const double drain = config.drain_seconds;
+  std::thread waiter([&stop_signals, &server, &service, drain] {
     int signal_number = 0;
     sigwait(&stop_signals, &signal_number);
-    spdlog::info("signal {}: stopping", signal_number);
+    spdlog::info("signal {}: not ready; closing the listener in {} s", signal_number, drain);
+    service.StopAccepting();
+    std::this_thread::sleep_for(std::chrono::duration<double>(drain));
     server.Stop();
   });
   server.Serve();

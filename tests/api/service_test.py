@@ -1,0 +1,1484 @@
+#!/usr/bin/python3
+"""Integration tests of the real mdpserve HTTP service.
+
+    /usr/bin/python3 tests/api/service_test.py --mdpserve PATH_TO_BINARY --root REPO
+
+Starts `mdpserve serve` processes on 127.0.0.1 with ephemeral ports (--listen 127.0.0.1:0
+--port-file FILE) and checks, against api-schema/openapi.json:
+  (0) the OpenAPI document: it covers every route of server/routes.cc, describes everything,
+      its schemas are valid 2020-12 schemas, and the served /v1/openapi.json is the file;
+  (a) the workflow: upload (201/200, Location, content ids stable under whitespace and key
+      order), list, get, document, solve job (202, poll until succeeded), best actions for
+      every state compared with an independent value iteration written here in plain Python,
+      batch, explain (q = expected_reward + discounted_next_value), solution list, report and
+      tables, verify (the solution's own values and policy pass, a perturbed policy fails
+      and names the state), the same solve again answers 200 cached;
+  (b) restart: SIGTERM exits 0 within a bound; a new process on the same --data-dir gives
+      byte-identical answers;
+  (c) kill -9 during a solve: after a restart the job is failed with a reason naming the
+      stop, and the store is intact (models listed, earlier answers identical, writable);
+  (d) concurrent best-action queries (bounded count) while a slow solve runs: all 200 and
+      identical to the sequential answers;
+  (e) a table of bad requests, each with its status and problem type (including 413 with a
+      small --body-limit and 429 with --workers 1 --queue-length 1); afterwards the server
+      still answers;
+  (f) bearer token on (401 with WWW-Authenticate without or with a wrong token, 200 with the
+      right one, /healthz and /readyz open) and off (no header needed);
+  (g) /metrics: request counters and duration histograms per route equal to the requests
+      this test made, queue and cache gauges, the job duration histogram after solves.
+Every JSON body received is validated against the OpenAPI response schema of its operation
+and status (Draft 2020-12; the api-schema/*.schema.json files are resolved by their $id).
+
+Every process started is stopped by its PID, also on failure. Prints one line per check and
+ends with `N passed, M failed`; exits 1 when anything failed. Uses only the standard library
+and jsonschema (Debian's python3-jsonschema). Models are invented: the repository's demo
+models and seeded random models generated here.
+"""
+
+import argparse
+import glob
+import http.client
+import json
+import os
+import random
+import re
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import urllib.parse
+
+from jsonschema import Draft202012Validator, RefResolver
+
+OPENAPI_BASE = "https://mdpserve.invalid/api/openapi.json"
+PROBLEM = "urn:mdpserve:problem:"
+START_TIMEOUT = 20.0     # seconds for a server to write its port file
+STOP_TIMEOUT = 15.0      # seconds for SIGTERM to end a server
+JOB_TIMEOUT = 60.0       # seconds for a quick solve job to finish
+HTTP_TIMEOUT = 60.0      # seconds per HTTP request
+VALUE_TOLERANCE = 1e-6   # agreement with the independent value iteration
+
+
+# --------------------------------------------------------------------------------------------
+# Reporting
+
+class Report:
+    def __init__(self):
+        self.passed = 0
+        self.failed = 0
+        self.lock = threading.Lock()
+
+    def check(self, name, ok, detail=""):
+        with self.lock:
+            if ok:
+                self.passed += 1
+                print("PASS %s" % name)
+            else:
+                self.failed += 1
+                print("FAIL %s%s" % (name, (": %s" % detail) if detail else ""))
+            sys.stdout.flush()
+        return ok
+
+
+R = Report()
+
+
+def short(data, limit=300):
+    text = data.decode("utf-8", "replace") if isinstance(data, bytes) else str(data)
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
+# --------------------------------------------------------------------------------------------
+# The OpenAPI document as a response validator
+
+class Api:
+    def __init__(self, root):
+        self.path = os.path.join(root, "api-schema", "openapi.json")
+        with open(self.path, "rb") as f:
+            self.raw = f.read()
+        self.doc = json.loads(self.raw)
+        self.store = {}
+        for path in sorted(glob.glob(os.path.join(root, "api-schema", "*.schema.json"))):
+            with open(path) as f:
+                schema = json.load(f)
+            self.store[schema["$id"]] = schema
+        self.store[OPENAPI_BASE] = self.doc
+        self.local = threading.local()  # validators per thread: a RefResolver is not shareable
+
+    def resolver(self):
+        return RefResolver(OPENAPI_BASE, self.doc, store=dict(self.store))
+
+    def deref(self, obj):
+        """Follows a local $ref of an OpenAPI object (responses, headers)."""
+        while isinstance(obj, dict) and "$ref" in obj:
+            node = self.doc
+            for token in obj["$ref"][2:].split("/"):
+                node = node[token.replace("~1", "/").replace("~0", "~")]
+            obj = node
+        return obj
+
+    def schema_errors(self, schema, instance):
+        cache = self.local.__dict__.setdefault("validators", {})
+        key = json.dumps(schema, sort_keys=True)
+        validator = cache.get(key)
+        if validator is None:
+            validator = cache[key] = Draft202012Validator(schema, resolver=self.resolver())
+        return ["%s at %s" % (e.message[:200], "/".join(str(p) for p in e.absolute_path))
+                for e in validator.iter_errors(instance)]
+
+    def component(self, name):
+        return {"$ref": "#/components/schemas/" + name}
+
+    def operation(self, method, template):
+        return self.doc["paths"].get(template, {}).get(method.lower())
+
+    def check_response(self, method, template, resp):
+        """Problems of `resp` against the operation's declared response; [] if it conforms."""
+        if template is None:  # No operation: only a no-such-route problem is possible.
+            return self.check_problem_only(resp, "NotFoundProblem")
+        op = self.operation(method, template)
+        if op is None:
+            return ["no operation %s %s in openapi.json" % (method, template)]
+        declared = op["responses"].get(str(resp.status))
+        if declared is None:
+            return ["status %d is not declared for %s %s" % (resp.status, method, template)]
+        declared = self.deref(declared)
+        problems = []
+        for name, header in declared.get("headers", {}).items():
+            header = self.deref(header)
+            if header.get("required") and name.lower() not in resp.headers:
+                problems.append("header %s missing" % name)
+        content = declared.get("content")
+        if not content:
+            if resp.body:
+                problems.append("body not expected: %s" % short(resp.body))
+            return problems
+        media = resp.headers.get("content-type", "").split(";")[0].strip()
+        if media not in content:
+            return problems + ["content type %r, declared %s" % (media, list(content))]
+        if media == "text/plain":
+            return problems
+        try:
+            body = json.loads(resp.body)
+        except ValueError as e:
+            return problems + ["body is not JSON: %s" % e]
+        return problems + self.schema_errors(content[media]["schema"], body)
+
+    def check_problem_only(self, resp, schema_name):
+        media = resp.headers.get("content-type", "").split(";")[0].strip()
+        if media != "application/problem+json":
+            return ["content type %r" % media]
+        try:
+            body = json.loads(resp.body)
+        except ValueError as e:
+            return ["body is not JSON: %s" % e]
+        return self.schema_errors(self.component(schema_name), body)
+
+
+# --------------------------------------------------------------------------------------------
+# Server processes and HTTP
+
+class Resp:
+    def __init__(self, status, headers, body):
+        self.status = status
+        self.headers = headers
+        self.body = body
+
+    def json(self):
+        return json.loads(self.body)
+
+
+class Server:
+    def __init__(self, binary, workdir, name, args):
+        self.binary = binary
+        self.workdir = workdir
+        self.name = name
+        self.args = args
+        self.proc = None
+        self.port = None
+        self.counts = {}   # (method, route template, status) -> requests answered
+        self.lock = threading.Lock()
+        self.log = None
+
+    def start(self):
+        port_file = os.path.join(self.workdir, self.name + ".port")
+        if os.path.exists(port_file):
+            os.unlink(port_file)
+        self.log = open(os.path.join(self.workdir, self.name + ".log"), "ab")
+        self.proc = subprocess.Popen(
+            [self.binary, "serve", "--listen", "127.0.0.1:0", "--port-file", port_file,
+             "--log-level", "warn"] + self.args,
+            stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
+        deadline = time.monotonic() + START_TIMEOUT
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                raise RuntimeError("%s exited with %s at start" % (self.name, self.proc.returncode))
+            try:
+                with open(port_file) as f:
+                    text = f.read().strip()
+                if text:
+                    self.port = int(text)
+                    self.counts = {}
+                    return self
+            except FileNotFoundError:
+                pass
+            time.sleep(0.02)
+        raise RuntimeError("%s wrote no port file within %.0f s" % (self.name, START_TIMEOUT))
+
+    def alive(self):
+        return self.proc is not None and self.proc.poll() is None
+
+    def terminate(self, timeout=STOP_TIMEOUT):
+        """SIGTERM by PID; returns (exit code or None on timeout, seconds taken)."""
+        start = time.monotonic()
+        os.kill(self.proc.pid, signal.SIGTERM)
+        try:
+            code = self.proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            code = None
+        return code, time.monotonic() - start
+
+    def kill9(self):
+        os.kill(self.proc.pid, signal.SIGKILL)
+        return self.proc.wait(timeout=STOP_TIMEOUT)
+
+    def ensure_stopped(self):
+        if self.proc is not None and self.proc.poll() is None:
+            os.kill(self.proc.pid, signal.SIGTERM)
+            try:
+                self.proc.wait(timeout=STOP_TIMEOUT)
+            except subprocess.TimeoutExpired:
+                os.kill(self.proc.pid, signal.SIGKILL)
+                self.proc.wait(timeout=STOP_TIMEOUT)
+        if self.log is not None:
+            self.log.close()
+            self.log = None
+
+    def request(self, method, path, body=None, headers=None):
+        conn = http.client.HTTPConnection("127.0.0.1", self.port, timeout=HTTP_TIMEOUT)
+        try:
+            conn.request(method, path, body=body, headers=headers or {})
+            r = conn.getresponse()
+            data = r.read()
+            return Resp(r.status, {k.lower(): v for k, v in r.getheaders()}, data)
+        finally:
+            conn.close()
+
+    def count(self, method, template, status):
+        with self.lock:
+            key = (method, template, status)
+            self.counts[key] = self.counts.get(key, 0) + 1
+
+
+class Client:
+    """Requests by operation (method + path template), each validated against openapi.json."""
+
+    def __init__(self, api, server, token=None):
+        self.api = api
+        self.server = server
+        self.token = token
+
+    def call(self, method, template, params=None, query=None, body=None, raw=None,
+             ctype="application/json", headers=None, expect=None, name=None):
+        path = template.format(**{k: urllib.parse.quote(v, safe="") for k, v in
+                                  (params or {}).items()}) if template else raw_path(params)
+        if query:
+            path += "?" + urllib.parse.urlencode(query)
+        h = dict(headers or {})
+        if self.token is not None:
+            h["Authorization"] = "Bearer " + self.token
+        data = None
+        if body is not None:
+            data = json.dumps(body).encode() if not isinstance(body, bytes) else body
+        if raw is not None:
+            data = raw
+        if data is not None and ctype is not None:
+            h["Content-Type"] = ctype
+        resp = self.server.request(method, path, data, h)
+        if template is not None:
+            self.server.count(method, template, resp.status)
+        resp.problems = self.api.check_response(method, template, resp)
+        if expect is not None:
+            label = name or "%s %s" % (method, template)
+            R.check("%s -> %d, body matches openapi" % (label, expect),
+                    resp.status == expect and not resp.problems,
+                    "got %d %s %s" % (resp.status, resp.problems[:3], short(resp.body)))
+        return resp
+
+
+def raw_path(params):
+    return params["path"]
+
+
+def wait_job(client, job_id, statuses, timeout=JOB_TIMEOUT, validate=True):
+    """Polls GET /v1/jobs/{id} until its status is in `statuses`; returns the last view."""
+    deadline = time.monotonic() + timeout
+    bad = []
+    view = None
+    while time.monotonic() < deadline:
+        resp = client.call("GET", "/v1/jobs/{id}", {"id": job_id})
+        if resp.status != 200 or resp.problems:
+            bad.append((resp.status, resp.problems[:2]))
+        else:
+            view = resp.json()
+            if view["status"] in statuses:
+                break
+        time.sleep(0.02)
+    if validate:
+        R.check("job %s polled: every view 200 and valid" % job_id, not bad, str(bad[:3]))
+    return view
+
+
+# --------------------------------------------------------------------------------------------
+# Models and the independent reference
+
+def load_example(root, name):
+    with open(os.path.join(root, "api-schema", "examples", name)) as f:
+        return json.load(f)
+
+
+def random_model(seed, n=40):
+    """A seeded random maximisation model with a terminal state, a one-action state,
+    duplicate next states with different rewards and a row summing to 1 - 4e-7."""
+    rng = random.Random(seed)
+    names = ["cell-%02d" % i for i in range(n - 1)] + ["goal"]
+    actions = ["left", "right", "wait"]
+    states = []
+    for i in range(n - 1):
+        avail = ["wait"] if i == 3 else actions
+        acts = []
+        for a in avail:
+            k = rng.randint(1, 4)
+            weights = [rng.random() + 0.05 for _ in range(k)]
+            total = sum(weights)
+            probs = [round(w / total, 6) for w in weights]
+            probs[-1] = round(1.0 - sum(probs[:-1]), 6)
+            outs = [{"next": names[rng.randrange(n)], "probability": p,
+                     "reward": round(rng.uniform(-1, 1), 3)} for p in probs]
+            if a == "left" and i % 5 == 0:  # the same next state twice, different rewards
+                outs[0]["probability"] = round(outs[0]["probability"] / 2, 6)
+                outs.append(dict(outs[0], reward=round(outs[0]["reward"] + 1.5, 3)))
+                outs[-1]["probability"] = round(1.0 - sum(o["probability"] for o in outs[:-1]), 6)
+            acts.append({"action": a, "reward": round(rng.uniform(0, 2), 3), "outcomes": outs})
+        states.append({"name": names[i], "actions": acts})
+    # A row that sums to 1 - 4e-7: accepted (within 1e-6) and scaled.
+    states[1]["actions"][0]["outcomes"] = [
+        {"next": names[2], "probability": 0.4999998}, {"next": "goal", "probability": 0.5}]
+    states.append({"name": "goal", "terminal": True})
+    return {"format": "mdpserve/model@1", "name": "random-walk-%d" % seed,
+            "objective": "maximize", "criterion": {"kind": "discounted", "discount": 0.9},
+            "actions": actions, "states": states}
+
+
+def slow_model(n, seed):
+    """A ring whose value iteration contracts very slowly (discount 0.999999): solves of it
+    run until their time limit, so they are bounded in time and long enough to overlap."""
+    rng = random.Random(seed)
+    states = []
+    for i in range(n):
+        acts = []
+        for a, step in (("hold", 1), ("shift", 7)):
+            acts.append({"action": a, "reward": round(rng.uniform(0, 1), 3), "outcomes": [
+                {"next": "s%d" % ((i + step) % n), "probability": 0.5},
+                {"next": "s%d" % ((i + 2 * step + 1) % n), "probability": 0.3},
+                {"next": "s%d" % i, "probability": 0.2}]})
+        states.append({"name": "s%d" % i, "actions": acts})
+    return {"format": "mdpserve/model@1", "name": "slow-ring-%d-%d" % (n, seed),
+            "objective": "maximize", "criterion": {"kind": "discounted", "discount": 0.999999},
+            "actions": ["hold", "shift"], "states": states}
+
+
+def slow_options(seconds):
+    return {"method": "value_iteration", "tolerance": 1e-14, "max_iterations": 1000000000,
+            "time_limit_seconds": seconds}
+
+
+class Reference:
+    """Value iteration in plain Python over a model document, to 1e-11."""
+
+    def __init__(self, doc):
+        self.g = doc["criterion"]["discount"]
+        self.maximize = doc["objective"] == "maximize"
+        self.names = [s["name"] for s in doc["states"]]
+        index = {n: i for i, n in enumerate(self.names)}
+        self.rows = []  # per state: [(action, expected reward, [(next index, p)])]
+        for s in doc["states"]:
+            acts = []
+            for a in s.get("actions") or []:
+                total = sum(o["probability"] for o in a["outcomes"])
+                r = a.get("reward", 0.0) + sum(o["probability"] / total * o.get("reward", 0.0)
+                                               for o in a["outcomes"])
+                acts.append((a["action"], r, [(index[o["next"]], o["probability"] / total)
+                                              for o in a["outcomes"]]))
+            self.rows.append(acts)
+        best = max if self.maximize else min
+        v = [0.0] * len(self.names)
+        for _ in range(100000):
+            nv = [best(r + self.g * sum(p * v[j] for j, p in outs) for _, r, outs in acts)
+                  if acts else 0.0 for acts in self.rows]
+            change = max(abs(a - b) for a, b in zip(nv, v))
+            v = nv
+            if change * self.g / (1 - self.g) < 1e-11:
+                break
+        self.v = v
+        self.q = [{a: r + self.g * sum(p * v[j] for j, p in outs) for a, r, outs in acts}
+                  for acts in self.rows]
+
+    def state(self, name):
+        i = self.names.index(name)
+        q = self.q[i]
+        if not q:
+            return {"value": 0.0, "q": {}, "optimal": set(), "gap": None}
+        best = (max if self.maximize else min)(q.values())
+        optimal = {a for a, x in q.items() if abs(x - best) <= 1e-8}
+        ordered = sorted(q.values(), reverse=self.maximize)
+        gap = abs(ordered[0] - ordered[1]) if len(ordered) >= 2 else None
+        return {"value": self.v[i], "q": q, "optimal": optimal, "gap": gap}
+
+
+def close(a, b, tol=VALUE_TOLERANCE):
+    return a is not None and b is not None and abs(a - b) <= tol
+
+
+# --------------------------------------------------------------------------------------------
+# (0) The OpenAPI document itself
+
+def check_openapi_document(api, root):
+    doc = api.doc
+    R.check("openapi: version 3.1.0 with the 2020-12 dialect",
+            doc.get("openapi") == "3.1.0" and
+            doc.get("jsonSchemaDialect") == "https://json-schema.org/draft/2020-12/schema")
+    R.check("openapi: no )mdpopenapi\" sequence (embedding delimiter)",
+            b')mdpopenapi"' not in api.raw)
+    with open(os.path.join(root, "server", "routes.cc")) as f:
+        routes = set(re.findall(r'\{"(GET|POST|DELETE)", "(/[^"]*)"', f.read()))
+    documented = {(m.upper(), p) for p, item in doc["paths"].items() for m in item
+                  if m in ("get", "post", "delete", "put", "patch")}
+    R.check("openapi: exactly the %d routes of routes.cc" % len(routes),
+            routes and routes == documented,
+            "missing %s, extra %s" % (sorted(routes - documented), sorted(documented - routes)))
+    bad = []
+    for path, item in doc["paths"].items():
+        for method, op in item.items():
+            if method == "parameters":
+                continue
+            for key in ("operationId", "summary", "description", "tags"):
+                if not op.get(key):
+                    bad.append("%s %s lacks %s" % (method, path, key))
+            public = path in ("/healthz", "/readyz")
+            if public != (op.get("security") == []):
+                bad.append("%s %s security" % (method, path))
+            if not public and "401" not in op["responses"]:
+                bad.append("%s %s lacks 401" % (method, path))
+            for status, resp in op["responses"].items():
+                if not api.deref(resp).get("description"):
+                    bad.append("%s %s %s lacks a description" % (method, path, status))
+            for p in op.get("parameters", []) + item.get("parameters", []):
+                if not api.deref(p).get("description"):
+                    bad.append("%s %s parameter lacks a description" % (method, path))
+    R.check("openapi: operations have ids, summaries, descriptions, 401 unless public",
+            not bad, "; ".join(bad[:5]))
+    undocumented = []
+
+    def walk(schema, where):
+        if not isinstance(schema, dict):
+            return
+        for name, prop in schema.get("properties", {}).items():
+            if isinstance(prop, dict) and "description" not in prop and "$ref" not in prop:
+                undocumented.append(where + "/" + name)
+            walk(prop, where + "/" + name)
+        for key in ("allOf", "oneOf", "anyOf"):
+            for i, sub in enumerate(schema.get(key, [])):
+                walk(sub, "%s/%s/%d" % (where, key, i))
+        walk(schema.get("items"), where + "/items")
+
+    for name, schema in doc["components"]["schemas"].items():
+        if "description" not in schema:
+            undocumented.append(name)
+        walk(schema, name)
+    R.check("openapi: every component schema and property has a description",
+            not undocumented, ", ".join(undocumented[:8]))
+    invalid = []
+    for name, schema in doc["components"]["schemas"].items():
+        try:
+            Draft202012Validator.check_schema(schema)
+        except Exception as e:  # noqa: BLE001 - report any schema error
+            invalid.append("%s: %s" % (name, str(e)[:100]))
+    R.check("openapi: component schemas are valid 2020-12 schemas", not invalid, str(invalid[:3]))
+    # The validator is not vacuous: wrong bodies are rejected (references resolve).
+    wrong = [("BestAction", {"state": "s", "terminal": False, "action": "a",
+                             "optimal_actions": ["a"], "value": 1.0, "action_gap": None,
+                             "tied": False, "value_error_bound": 0.0, "solution_id": "0" * 32}),
+             ("BestAction", {"state": "", "terminal": False, "action": "a", "q": {"a": 1.0},
+                             "optimal_actions": ["a"], "value": 1.0, "action_gap": None,
+                             "tied": False, "value_error_bound": 0.0, "solution_id": "0" * 32}),
+             ("Problem", {"type": PROBLEM + "conflict", "title": "Conflict", "status": "409",
+                          "detail": "x"}),
+             ("UnknownStatesProblem", {"type": PROBLEM + "unknown-states", "title": "t",
+                                       "status": 422, "detail": "x"}),
+             ("SolutionTables", {"format": "mdpserve/solution@1", "id": "0" * 32}),
+             ("VerificationReport", {"format": "mdpserve/verification@1", "kind": "values",
+                                     "verdict": "maybe", "tolerance": 0, "worst_states": []})]
+    accepted = [name for name, body in wrong if not api.schema_errors(api.component(name), body)]
+    R.check("openapi: %d wrong bodies are rejected by their schemas" % len(wrong), not accepted,
+            "accepted: %s" % accepted)
+    scheme = doc["components"]["securitySchemes"].get("bearerAuth", {})
+    R.check("openapi: global HTTP bearer security",
+            scheme.get("type") == "http" and scheme.get("scheme") == "bearer" and
+            doc.get("security") == [{"bearerAuth": []}])
+    # The solve option bounds agree with solver/options.h.
+    with open(os.path.join(root, "solver", "options.h")) as f:
+        header = f.read()
+    bounds = re.findall(r'\{"(\w+)",\s*"[^"]*",\s*([-\w.+]+),\s*([-\w.+]+),\s*([-\w.+]+)\}',
+                        header.replace("\n", " "))
+    options = doc["components"]["schemas"]["SolveOptions"]["properties"]
+    mismatched = [b[0] for b in bounds
+                  if float(options[b[0]]["minimum"]) != float(b[2]) or
+                  float(options[b[0]]["maximum"]) != float(b[3]) or
+                  float(options[b[0]]["default"]) != float(b[1])]
+    R.check("openapi: SolveOptions bounds match kSolveOptionBounds (%d options)" % len(bounds),
+            len(bounds) == 6 and not mismatched, "mismatched %s" % mismatched)
+
+
+# --------------------------------------------------------------------------------------------
+# (a) The workflow
+
+def upload(client, doc, expect, name):
+    resp = client.call("POST", "/v1/models", body=doc, expect=expect, name=name)
+    if resp.status in (200, 201):
+        body = resp.json()
+        R.check(name + ": Location is the model's path",
+                resp.headers.get("location") == "/v1/models/" + body["id"],
+                resp.headers.get("location"))
+        R.check(name + ": created is %s" % (expect == 201), body["created"] == (expect == 201))
+        return body["id"]
+    return None
+
+
+def solve(client, model_id, options=None, name="solve"):
+    """Starts a solve and waits for it; returns (job view, solution id)."""
+    body = {"model_id": model_id}
+    if options is not None:
+        body["options"] = options
+    resp = client.call("POST", "/v1/jobs", body=body, expect=202, name=name + ": start job")
+    if resp.status != 202:
+        return None, None
+    job = resp.json()
+    R.check(name + ": Location is the job's path",
+            resp.headers.get("location") == "/v1/jobs/" + job["id"], resp.headers.get("location"))
+    view = wait_job(client, job["id"], ("succeeded", "failed", "cancelled"))
+    R.check(name + ": job succeeded", view is not None and view["status"] == "succeeded",
+            str(view))
+    return view, (view or {}).get("solution_id")
+
+
+def reshuffled(doc):
+    """The same document with every object's keys in reverse order."""
+    if isinstance(doc, dict):
+        return {k: reshuffled(doc[k]) for k in reversed(list(doc))}
+    if isinstance(doc, list):
+        return [reshuffled(x) for x in doc]
+    return doc
+
+
+def check_best_actions(client, model_id, doc, ref, label):
+    """Every state's best-action answer against the reference; returns {state: body bytes}."""
+    answers = {}
+    bad_status, bad_value = [], []
+    for name in ref.names:
+        resp = client.call("GET", "/v1/models/{id}/policy", {"id": model_id}, {"state": name})
+        if resp.status != 200 or resp.problems:
+            bad_status.append((name, resp.status, resp.problems[:1]))
+            continue
+        answers[name] = resp.body
+        got = resp.json()
+        want = ref.state(name)
+        problems = []
+        if set(got["optimal_actions"]) != want["optimal"]:
+            problems.append("optimal %s vs %s" % (got["optimal_actions"], sorted(want["optimal"])))
+        if not close(got["value"], want["value"]):
+            problems.append("value %r vs %r" % (got["value"], want["value"]))
+        if set(got["q"]) != set(want["q"]) or \
+                any(not close(got["q"][a], want["q"][a]) for a in want["q"]):
+            problems.append("q %s vs %s" % (got["q"], want["q"]))
+        if (want["gap"] is None) != (got["action_gap"] is None) or \
+                (want["gap"] is not None and not close(got["action_gap"], want["gap"])):
+            problems.append("gap %r vs %r" % (got["action_gap"], want["gap"]))
+        if want["optimal"] and got["action"] not in want["optimal"]:
+            problems.append("action %r not optimal" % got["action"])
+        if not want["optimal"] and got["action"] is not None:
+            problems.append("terminal state has action %r" % got["action"])
+        if got["tied"] != (len(want["optimal"]) >= 2):
+            problems.append("tied %r" % got["tied"])
+        if problems:
+            bad_value.append((name, problems))
+    R.check("%s: best action answered 200 for all %d states" % (label, len(ref.names)),
+            not bad_status, str(bad_status[:3]))
+    ties = sum(1 for n in ref.names if len(ref.state(n)["optimal"]) >= 2)
+    R.check("%s: optimal sets, values, Q and gaps equal value iteration to 1e-6 "
+            "(%d states, %d tied)" % (label, len(ref.names), ties),
+            not bad_value, str(bad_value[:3]))
+    return answers
+
+
+def check_explain(client, model_id, ref, states, tables, label):
+    bad = []
+    values = tables["values"]
+    for name in states:
+        resp = client.call("GET", "/v1/models/{id}/policy/explain", {"id": model_id},
+                           {"state": name})
+        if resp.status != 200 or resp.problems:
+            bad.append((name, resp.status, resp.problems[:2]))
+            continue
+        got = resp.json()
+        i = ref.names.index(name)
+        if [a["action"] for a in got["actions"]] != [a for a, _, _ in ref.rows[i]]:
+            bad.append((name, "actions in document order"))
+        for entry, (action, reward, outs) in zip(got["actions"], ref.rows[i]):
+            q = entry["q"]
+            if abs(q - (entry["expected_reward"] + entry["discounted_next_value"])) > \
+                    1e-9 * max(1.0, abs(q)):
+                bad.append((name, action, "q != expected_reward + discounted_next_value"))
+            if not close(entry["expected_reward"], reward, 1e-9):
+                bad.append((name, action, "expected_reward", entry["expected_reward"], reward))
+            if not close(entry["discounted_next_value"],
+                         ref.g * sum(p * ref.v[j] for j, p in outs)):
+                bad.append((name, action, "discounted_next_value"))
+            merged = {}
+            for j, p in outs:
+                merged[ref.names[j]] = merged.get(ref.names[j], 0.0) + p
+            if entry["next_states"] != len(merged):
+                bad.append((name, action, "next_states", entry["next_states"], len(merged)))
+            probs = [o["probability"] for o in entry["outcomes"]]
+            if probs != sorted(probs, reverse=True):
+                bad.append((name, action, "outcomes not most likely first"))
+            for o in entry["outcomes"]:
+                if not close(o["probability"], merged.get(o["next"], -1), 1e-9) or \
+                        o["value"] != values[o["next"]]:
+                    bad.append((name, action, "outcome", o))
+        if got["value"] != values[name] or got["discount"] != ref.g:
+            bad.append((name, "value or discount"))
+    R.check("%s: explain for %d states: q = expected_reward + discounted_next_value, both "
+            "equal to the reference" % (label, len(states)), not bad, str(bad[:3]))
+
+
+def scenario_a(api, client, root, m):
+    """Upload, query, solve, verify. Fills `m` with what later scenarios compare."""
+    pump = load_example(root, "pump-maintenance.json")
+    robot = load_example(root, "warehouse-robot.json")
+    rand = random_model(20240917)
+    pump_id = upload(client, pump, 201, "a: upload pump model")
+    robot_id = upload(client, robot, 201, "a: upload robot model")
+    rand_id = upload(client, rand, 201, "a: upload random model")
+    again = upload(client, pump, 200, "a: upload pump model again")
+    R.check("a: re-upload gives the same id", again == pump_id, "%s vs %s" % (again, pump_id))
+    spaced = json.dumps(reshuffled(pump), indent=7, sort_keys=False).encode()
+    resp = client.call("POST", "/v1/models", raw=spaced, expect=200,
+                       name="a: upload with other whitespace and key order")
+    R.check("a: other whitespace and key order give the same id",
+            resp.status == 200 and resp.json()["id"] == pump_id, short(resp.body))
+    m.update(pump_id=pump_id, robot_id=robot_id, rand_id=rand_id)
+
+    resp = client.call("GET", "/v1/models", expect=200, name="a: list models")
+    ids = [x["id"] for x in resp.json()["models"]] if resp.status == 200 else []
+    R.check("a: list has the three models in upload order", ids == [pump_id, robot_id, rand_id],
+            str(ids))
+    resp = client.call("GET", "/v1/models/{id}", {"id": pump_id}, expect=200, name="a: get model")
+    rec = resp.json()
+    R.check("a: model record counts", rec["states"] == 10 and rec["actions"] == 3 and
+            rec["name"] == pump["name"] and rec["state_actions"] == 22, str(rec))
+    resp = client.call("GET", "/v1/models/{id}/document", {"id": pump_id}, expect=200,
+                       name="a: get model document")
+    canonical = resp.json()
+    R.check("a: document keeps names, objective and discount",
+            [s["name"] for s in canonical["states"]] == [s["name"] for s in pump["states"]] and
+            canonical["objective"] == "minimize" and canonical["criterion"]["discount"] == 0.97)
+    resp = client.call("POST", "/v1/models", raw=resp.body, expect=200,
+                       name="a: upload the canonical document")
+    R.check("a: canonical document has the same id",
+            resp.status == 200 and resp.json()["id"] == pump_id)
+
+    refs = {pump_id: Reference(pump), robot_id: Reference(robot), rand_id: Reference(rand)}
+    docs = {pump_id: pump, robot_id: robot, rand_id: rand}
+    labels = {pump_id: "a: pump", robot_id: "a: robot", rand_id: "a: random"}
+    solutions = {}
+    for mid in (pump_id, robot_id, rand_id):
+        view, sid = solve(client, mid, None, labels[mid])
+        solutions[mid] = sid
+        if view:
+            m.setdefault("jobs", []).append(view["id"])
+    m["solutions"] = solutions
+    m["answers"] = {}
+    for mid in (pump_id, robot_id, rand_id):
+        m["answers"][mid] = check_best_actions(client, mid, docs[mid], refs[mid], labels[mid])
+
+    # Batch: the same answers, in request order, duplicates included.
+    states = ["worn_peak", "failed_off", "new_peak", "worn_peak", "degraded_off"]
+    resp = client.call("POST", "/v1/models/{id}/policy/batch", {"id": pump_id},
+                       body={"states": states}, expect=200, name="a: batch of 5 states")
+    if resp.status == 200:
+        got = resp.json()
+        single = [json.loads(m["answers"][pump_id][s]) for s in states]
+        R.check("a: batch answers equal the single answers, in order",
+                got["answers"] == single and got["solution_id"] == solutions[pump_id])
+    m["batch_body"] = resp.body
+
+    # Solution list, report, tables.
+    for mid in (pump_id, robot_id, rand_id):
+        sid = solutions[mid]
+        resp = client.call("GET", "/v1/models/{id}/solutions", {"id": mid}, expect=200,
+                           name=labels[mid] + ": list solutions")
+        R.check(labels[mid] + ": one solution listed",
+                [s["id"] for s in resp.json()["solutions"]] == [sid])
+        resp = client.call("GET", "/v1/models/{id}/solutions/{sid}", {"id": mid, "sid": sid},
+                           expect=200, name=labels[mid] + ": solution report")
+        report = resp.json()
+        R.check(labels[mid] + ": report converged, policy_iteration, bound <= 1e-8",
+                report["outcome"] == "converged" and report["method"] == "policy_iteration" and
+                report["value_error_bound"] <= 1e-8 and report["model_id"] == mid)
+    tables = {}
+    for mid in (pump_id, robot_id, rand_id):
+        resp = client.call("GET", "/v1/models/{id}/solutions/{sid}/tables",
+                           {"id": mid, "sid": solutions[mid]}, expect=200,
+                           name=labels[mid] + ": solution tables")
+        tables[mid] = resp.json()
+        ref = refs[mid]
+        worst = max(abs(tables[mid]["values"][n] - ref.v[i]) for i, n in enumerate(ref.names))
+        R.check(labels[mid] + ": table values equal value iteration to 1e-6 (max diff %.2e)"
+                % worst, worst <= VALUE_TOLERANCE)
+        per_state = {s["state"]: s for s in tables[mid]["states"]}
+        same = all(json.loads(m["answers"][mid][n])["q"] == per_state[n]["q"] and
+                   json.loads(m["answers"][mid][n])["optimal_actions"] ==
+                   per_state[n]["optimal_actions"] for n in ref.names)
+        R.check(labels[mid] + ": tables agree with the best-action answers", same)
+    m["tables"] = tables
+
+    check_explain(client, pump_id, refs[pump_id],
+                  ["worn_peak", "failed_peak", "new_off", "degraded_peak"], tables[pump_id],
+                  "a: pump")
+    check_explain(client, rand_id, refs[rand_id], ["cell-00", "cell-01", "cell-03", "cell-05",
+                                                   "goal"], tables[rand_id], "a: random")
+
+    # Verify: the solution's own values and policy pass; a perturbed policy fails.
+    for mid in (pump_id, rand_id):
+        t = tables[mid]
+        resp = client.call("POST", "/v1/models/{id}/verify", {"id": mid},
+                           body={"format": "mdpserve/values@1", "values": t["values"]},
+                           expect=200, name=labels[mid] + ": verify own values")
+        R.check(labels[mid] + ": own values pass", resp.status == 200 and
+                resp.json()["verdict"] == "pass" and resp.json()["kind"] == "values")
+        resp = client.call("POST", "/v1/models/{id}/verify", {"id": mid},
+                           body={"format": "mdpserve/policy@1", "policy": t["policy"]},
+                           expect=200, name=labels[mid] + ": verify own policy")
+        R.check(labels[mid] + ": own policy passes", resp.status == 200 and
+                resp.json()["verdict"] == "pass" and resp.json()["suboptimal_count"] == 0)
+        # The worst alternative action (largest reference loss) in the state where it is worst.
+        ref = refs[mid]
+        choice = None
+        for i, name in enumerate(ref.names):
+            st = ref.state(name)
+            for a, q in st["q"].items():
+                loss = abs(q - st["value"])
+                if a not in st["optimal"] and (choice is None or loss > choice[2]):
+                    choice = (name, a, loss)
+        policy = dict(t["policy"])
+        policy[choice[0]] = choice[1]
+        resp = client.call("POST", "/v1/models/{id}/verify", {"id": mid},
+                           body={"format": "mdpserve/policy@1", "policy": policy, "worst": 3},
+                           expect=200, name=labels[mid] + ": verify a perturbed policy")
+        rep = resp.json() if resp.status == 200 else {}
+        listed = [s["state"] for s in rep.get("suboptimal_states", [])]
+        R.check(labels[mid] + ": perturbed policy fails and lists state %s" % choice[0],
+                rep.get("verdict") == "fail" and listed == [choice[0]] and
+                rep["suboptimal_states"][0]["chosen"] == [choice[1]] and
+                rep["max_loss"] > 1e-6 and len(rep["worst_states"]) <= 3, short(resp.body))
+        m.setdefault("verify_bodies", {})[mid] = resp.body
+
+    # The same solve again: 200 cached, Location the solution.
+    resp = client.call("POST", "/v1/jobs", body={"model_id": pump_id}, expect=200,
+                       name="a: the same solve again")
+    body = resp.json() if resp.status == 200 else {}
+    want = "/v1/models/%s/solutions/%s" % (pump_id, solutions[pump_id])
+    R.check("a: cached answer names the solution", body.get("cached") is True and
+            body.get("solution_id") == solutions[pump_id] and body.get("solution") == want and
+            resp.headers.get("location") == want, short(resp.body))
+    # Equivalent options (defaults written out, another thread count) are the same solve.
+    resp = client.call("POST", "/v1/jobs", body={"model_id": pump_id, "options": {
+        "method": "policy_iteration", "tolerance": 1e-8, "threads": 2}}, expect=200,
+        name="a: the same solve with explicit defaults")
+    R.check("a: explicit defaults are the same solution",
+            resp.status == 200 and resp.json()["solution_id"] == solutions[pump_id])
+    # Another method is another solution; queries then use the newest.
+    view, sid = solve(client, pump_id, {"method": "value_iteration", "tolerance": 1e-10},
+                      "a: pump value iteration")
+    R.check("a: another method gives another solution", sid and sid != solutions[pump_id])
+    resp = client.call("GET", "/v1/models/{id}/solutions", {"id": pump_id}, expect=200,
+                       name="a: list two solutions")
+    R.check("a: newest solution listed first",
+            [s["id"] for s in resp.json()["solutions"]] == [sid, solutions[pump_id]])
+    resp = client.call("GET", "/v1/models/{id}/policy", {"id": pump_id},
+                       {"state": "worn_peak", "solution_id": solutions[pump_id]}, expect=200,
+                       name="a: query an older solution by id")
+    R.check("a: the older solution answers as before",
+            resp.body == m["answers"][pump_id]["worn_peak"])
+    resp = client.call("GET", "/v1/models/{id}/policy", {"id": pump_id}, {"state": "worn_peak"},
+                       expect=200, name="a: query the current solution")
+    got = resp.json()
+    R.check("a: the current solution is the newest and agrees to 1e-6",
+            got["solution_id"] == sid and close(got["value"], refs[pump_id].state("worn_peak")
+                                                 ["value"]))
+    m["solutions_vi"] = sid
+    resp = client.call("GET", "/v1/jobs", query={"model_id": pump_id, "status": "succeeded"},
+                       expect=200, name="a: list the pump's succeeded jobs")
+    R.check("a: two succeeded pump jobs, newest first",
+            [j["id"] for j in resp.json()["jobs"]] == [view["id"], m["jobs"][0]])
+    m["jobs"].append(view["id"])
+    m["solves"] = 4
+
+
+# --------------------------------------------------------------------------------------------
+# (b) and (c) Restarts
+
+def snapshot(client, m):
+    """Raw bodies of a fixed set of queries, for byte-for-byte comparison across restarts."""
+    out = {}
+    pump, rand = m["pump_id"], m["rand_id"]
+    queries = [("GET", "/v1/models", {}, None, None),
+               ("GET", "/v1/models/{id}", {"id": pump}, None, None),
+               ("GET", "/v1/models/{id}/document", {"id": rand}, None, None),
+               ("GET", "/v1/models/{id}/solutions", {"id": pump}, None, None),
+               ("GET", "/v1/models/{id}/solutions/{sid}",
+                {"id": rand, "sid": m["solutions"][rand]}, None, None),
+               ("GET", "/v1/models/{id}/solutions/{sid}/tables",
+                {"id": pump, "sid": m["solutions"][pump]}, None, None),
+               ("GET", "/v1/models/{id}/solutions/{sid}/tables",
+                {"id": rand, "sid": m["solutions"][rand]}, None, None),
+               ("POST", "/v1/models/{id}/policy/batch", {"id": rand},
+                None, {"states": ["cell-00", "cell-07", "goal", "cell-03"]}),
+               ("GET", "/v1/jobs/{id}", {"id": m["jobs"][0]}, None, None)]
+    for state in ("worn_peak", "failed_off", "new_peak"):
+        queries.append(("GET", "/v1/models/{id}/policy", {"id": pump}, {"state": state}, None))
+        queries.append(("GET", "/v1/models/{id}/policy/explain", {"id": pump},
+                        {"state": state}, None))
+    for state in ("cell-01", "cell-03", "goal"):
+        queries.append(("GET", "/v1/models/{id}/policy", {"id": rand},
+                        {"state": state, "solution_id": m["solutions"][rand]}, None))
+    for method, template, params, query, body in queries:
+        resp = client.call(method, template, params, query, body)
+        key = "%s %s %s %s" % (method, template.format(**params), query or "", body or "")
+        out[key] = (resp.status, resp.body)
+    return out
+
+
+def compare_snapshots(before, after, label):
+    differ = [k for k in before if before[k] != after.get(k)]
+    R.check("%s: %d answers byte-identical (all 200)" % (label, len(before)),
+            not differ and all(s == 200 for s, _ in before.values()), str(differ[:3]))
+
+
+def scenario_b(api, server, m):
+    """The main server runs with --shutdown-deadline 0.2: a solve still running at SIGTERM is
+    stopped and queued again, and runs to its end after the restart."""
+    client = Client(api, server)
+    before = snapshot(client, m)
+    resp = client.call("POST", "/v1/jobs", body={"model_id": m["slow_id"],
+                                                 "options": slow_options(1.5)},
+                       expect=202, name="b: start a solve that outlives the shutdown deadline")
+    job_id = resp.json()["id"]
+    view = wait_job(client, job_id, ("running",), timeout=20)
+    R.check("b: it is running at SIGTERM", view is not None and view["status"] == "running")
+    code, seconds = server.terminate()
+    R.check("b: SIGTERM: exit code 0 within %.0f s (took %.2f s)" % (STOP_TIMEOUT, seconds),
+            code == 0, "exit code %s" % code)
+    server.start()
+    client = Client(api, server)
+    client.call("GET", "/readyz", expect=200, name="b: restarted server is ready")
+    after = snapshot(client, m)
+    compare_snapshots(before, after, "b: after restart")
+    view = wait_job(client, job_id, ("succeeded", "failed", "cancelled"), timeout=JOB_TIMEOUT)
+    R.check("b: the stopped solve ran again after the restart and succeeded",
+            view is not None and view["status"] == "succeeded" and view["solution_id"], str(view))
+    resp = client.call("GET", "/v1/models/{id}/solutions/{sid}",
+                       {"id": m["slow_id"], "sid": (view or {}).get("solution_id") or "none"},
+                       expect=200, name="b: report of the re-run solve")
+    R.check("b: the re-run solve ended at its time limit",
+            resp.status == 200 and resp.json()["outcome"] == "time_limit")
+    resp = client.call("POST", "/v1/jobs", body={"model_id": m["pump_id"]}, expect=200,
+                       name="b: solve again after restart")
+    R.check("b: still cached after restart",
+            resp.status == 200 and resp.json()["solution_id"] == m["solutions"][m["pump_id"]])
+    return after
+
+
+def scenario_c(api, server, m, before):
+    client = Client(api, server)
+    big_id = upload(client, slow_model(50000, 11), 201, "c: upload a 50,000-state slow model")
+    before = dict(before)
+    resp = client.call("POST", "/v1/jobs", body={"model_id": big_id,
+                                                 "options": slow_options(60)},
+                       expect=202, name="c: start a long solve")
+    job_id = resp.json()["id"] if resp.status == 202 else None
+    view = wait_job(client, job_id, ("running",), timeout=20)
+    deadline = time.monotonic() + 20
+    while view and (view.get("progress") or {}).get("iteration", 0) < 10 and \
+            time.monotonic() < deadline:
+        view = client.call("GET", "/v1/jobs/{id}", {"id": job_id}).json()
+        time.sleep(0.05)
+    R.check("c: the solve is running with progress before the kill",
+            view is not None and view["status"] == "running" and
+            view["progress"]["iteration"] >= 10, str(view))
+    code = server.kill9()
+    R.check("c: SIGKILL ended the server", code == -signal.SIGKILL, "exit %s" % code)
+    server.start()
+    client = Client(api, server)
+    resp = client.call("GET", "/v1/jobs/{id}", {"id": job_id}, expect=200,
+                       name="c: get the killed job after restart")
+    view = resp.json() if resp.status == 200 else {}
+    R.check("c: killed job is failed, with a reason naming the stop",
+            view.get("status") == "failed" and "stopped" in (view.get("error") or "") and
+            view.get("finished_at") is not None and view.get("solution_id") is None, str(view))
+    resp = client.call("GET", "/v1/jobs", query={"status": "failed"}, expect=200,
+                       name="c: list failed jobs")
+    R.check("c: the failed job is listed", [j["id"] for j in resp.json()["jobs"]] == [job_id])
+    resp = client.call("GET", "/v1/models", expect=200, name="c: list models after restart")
+    ids = [x["id"] for x in resp.json()["models"]]
+    R.check("c: every model is still listed",
+            ids == [m["pump_id"], m["robot_id"], m["rand_id"], m["slow_id"], big_id], str(ids))
+    after = snapshot(client, m)
+    del before["GET /v1/models  "], after["GET /v1/models  "]
+    compare_snapshots(before, after, "c: after kill -9 and restart")
+    # The store takes writes: a short solve of the same model.
+    view, sid = solve(client, m["slow_id"], {"method": "value_iteration", "max_iterations": 30},
+                      "c: short solve after restart")
+    resp = client.call("GET", "/v1/models/{id}/solutions/{sid}", {"id": m["slow_id"], "sid": sid},
+                       expect=200, name="c: report of the short solve")
+    R.check("c: short solve stopped at its iteration limit",
+            resp.status == 200 and resp.json()["outcome"] == "iteration_limit")
+
+
+# --------------------------------------------------------------------------------------------
+# (d) Concurrent queries during a solve
+
+def scenario_d(api, server, m):
+    client = Client(api, server)
+    slow = slow_model(3000, 7)
+    m["slow_id"] = upload(client, slow, 201, "d: upload slow model (3000 states)")
+    resp = client.call("POST", "/v1/jobs", body={"model_id": m["slow_id"],
+                                                 "options": slow_options(30)},
+                       expect=202, name="d: start a slow solve")
+    job_id = resp.json()["id"]
+    view = wait_job(client, job_id, ("running",), timeout=20)
+    deadline = time.monotonic() + 20
+    while view and view["status"] == "running" and view["progress"] is None and \
+            time.monotonic() < deadline:  # the first progress report follows the first sweep
+        time.sleep(0.02)
+        view = client.call("GET", "/v1/jobs/{id}", {"id": job_id}).json()
+    R.check("d: slow solve is running and reports progress",
+            view is not None and view["status"] == "running" and view["progress"] is not None,
+            str(view))
+    pump, rand = m["pump_id"], m["rand_id"]
+    work = []
+    for state in ("worn_peak", "failed_off", "new_peak", "good_off"):
+        work.append((pump, state, m["answers"][pump][state], m["solutions"][pump]))
+    for state in ("cell-00", "cell-03", "cell-11", "goal"):
+        work.append((rand, state, m["answers"][rand][state], None))
+    batch = {"states": ["cell-%02d" % i for i in range(39)] + ["goal"]}
+    batch_want = client.call("POST", "/v1/models/{id}/policy/batch", {"id": rand}, body=batch,
+                             expect=200, name="d: sequential batch answer").body
+    threads_n, per_thread = 4, 150
+    results = []
+    lock = threading.Lock()
+
+    def worker(k):
+        local = []
+        for i in range(per_thread):
+            mid, state, want, sid = work[(k * 7 + i) % len(work)]
+            query = {"state": state}
+            if sid:
+                query["solution_id"] = sid
+            try:
+                if i % 10 == 9:
+                    resp = client.call("POST", "/v1/models/{id}/policy/batch", {"id": rand},
+                                       body=batch)
+                    want = batch_want
+                else:
+                    resp = client.call("GET", "/v1/models/{id}/policy", {"id": mid}, query)
+                local.append((resp.status == 200 and not resp.problems and resp.body == want,
+                              resp.status))
+            except Exception as e:  # noqa: BLE001 - counted as a failed answer
+                local.append((False, repr(e)))
+        with lock:
+            results.extend(local)
+
+    threads = [threading.Thread(target=worker, args=(k,)) for k in range(threads_n)]
+    start = time.monotonic()
+    for t in threads:
+        t.start()
+    polls = []
+    while any(t.is_alive() for t in threads):
+        resp = client.call("GET", "/v1/jobs/{id}", {"id": job_id})
+        polls.append(resp.status == 200 and not resp.problems and
+                     resp.json()["status"] == "running" and resp.json()["progress"] is not None)
+        time.sleep(0.05)
+    for t in threads:
+        t.join(timeout=HTTP_TIMEOUT)
+    seconds = time.monotonic() - start
+    bad = [r for r in results if not r[0]]
+    R.check("d: %d concurrent queries (%d threads, 1 in 10 a batch of 40) in %.2f s: all 200 "
+            "and identical to the sequential answers" % (len(results), threads_n, seconds),
+            len(results) == threads_n * per_thread and not bad, str(bad[:3]))
+    R.check("d: the solve was running with progress throughout (%d polls)" % len(polls),
+            polls and all(polls))
+    resp = client.call("POST", "/v1/jobs", body={"model_id": m["slow_id"],
+                                                 "options": slow_options(30)},
+                       expect=202, name="d: the same solve while it runs")
+    R.check("d: the running job is returned, not a new one",
+            resp.status == 202 and resp.json()["id"] == job_id)
+    resp = client.call("POST", "/v1/jobs/{id}/cancel", {"id": job_id}, expect=200,
+                       name="d: cancel the running solve")
+    view = wait_job(client, job_id, ("cancelled", "failed", "succeeded"), timeout=20)
+    R.check("d: cancelled job ends as cancelled without a solution",
+            view is not None and view["status"] == "cancelled" and view["solution_id"] is None
+            and view["error"], str(view))
+    resp = client.call("GET", "/v1/models/{id}/policy", {"id": m["slow_id"]}, {"state": "s0"},
+                       expect=409, name="d: query the slow model (no solution: cancelled)")
+    R.check("d: 409 is a conflict problem",
+            resp.status == 409 and resp.json()["type"] == PROBLEM + "conflict")
+    m["cancelled_jobs"] = 1
+
+
+# --------------------------------------------------------------------------------------------
+# (e) Bad requests
+
+def raw_exchange(port, data):
+    """Sends raw bytes on a new connection; returns the first response (read until the
+    connection closes, the declared body is complete, or 10 s pass)."""
+    received = b""
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(data)
+        try:
+            while True:
+                part = s.recv(65536)
+                if not part:
+                    break
+                received += part
+                head, sep, body = received.partition(b"\r\n\r\n")
+                length = re.search(rb"content-length: *(\d+)", head, re.I)
+                if sep and length and len(body) >= int(length.group(1)):
+                    break
+        except socket.timeout:
+            pass
+    head, _, body = received.partition(b"\r\n\r\n")
+    lines = head.decode("latin-1").split("\r\n")
+    first = lines[0].split()
+    status = int(first[1]) if len(first) > 1 and first[1].isdigit() else 0
+    headers = {}
+    for line in lines[1:]:
+        k, _, v = line.partition(":")
+        headers[k.strip().lower()] = v.strip()
+    return Resp(status, headers, body)
+
+
+def scenario_e(api, server, root):
+    client = Client(api, server)
+    pump = load_example(root, "pump-maintenance.json")
+    robot = load_example(root, "warehouse-robot.json")
+    pid = upload(client, pump, 201, "e: upload pump model")
+    rid = upload(client, robot, 201, "e: upload robot model (left unsolved)")
+    view, sid = solve(client, pid, None, "e: pump")
+    resp = client.call("GET", "/v1/models/{id}/policy", {"id": pid}, {"state": "worn_peak"},
+                       expect=200, name="e: a good query first")
+    good_answer = resp.body
+    deep_array = b"[" * 100 + b"]" * 100
+    deep_object = b'{"a":' * 100 + b"1" + b"}" * 100
+    bad_model = {"format": "mdpserve/model@1", "name": "broken", "objective": "maximize",
+                 "criterion": {"kind": "discounted", "discount": 1.5}, "actions": ["go"],
+                 "states": [{"name": "x", "actions": [{"action": "go", "outcomes": [
+                     {"next": "nowhere", "probability": 0.7}, {"next": "x",
+                                                               "probabilty": 0.3}]}]}]}
+    big = {"format": "mdpserve/model@1", "name": "big", "description": "x" * 70000}
+    M, J = {"id": pid}, "/v1/jobs"
+    table = [
+        # name, method, template, params, query, body(bytes|obj), ctype, status, type, pointers
+        ("malformed JSON body (batch)", "POST", "/v1/models/{id}/policy/batch", M, None,
+         b'{"states": [', "application/json", 400, "malformed-json", None),
+        ("malformed JSON body (solve)", "POST", J, None, None, b"{model_id}",
+         "application/json", 400, "invalid-request", None),
+        ("malformed JSON body (upload)", "POST", "/v1/models", None, None, b'{"format": ',
+         "application/json", 400, "malformed-json", ["/format"]),
+        ("upload as text/plain", "POST", "/v1/models", None, None, pump, "text/plain", 415,
+         "unsupported-media-type", None),
+        ("solve without a content type", "POST", J, None, None, {"model_id": pid}, None, 415,
+         "unsupported-media-type", None),
+        ("body over --body-limit", "POST", "/v1/models", None, None, big, "application/json",
+         413, "payload-too-large", None),
+        ("invalid model", "POST", "/v1/models", None, None, bad_model, "application/json", 422,
+         "invalid-model", ["/criterion/discount", "/states/0/actions/0/outcomes/0/next",
+                           "/states/0/actions/0/outcomes/1/probabilty"]),
+        ("model missing required members", "POST", "/v1/models", None, None,
+         {"format": "mdpserve/model@1"}, "application/json", 422, "invalid-model",
+         ["/name", "/objective", "/criterion", "/actions", "/states"]),
+        ("unknown model id", "GET", "/v1/models/{id}", {"id": "0" * 32}, None, None, None, 404,
+         "not-found", None),
+        ("document of an unknown model", "GET", "/v1/models/{id}/document", {"id": "nope"},
+         None, None, None, 404, "not-found", None),
+        ("delete an unknown model", "DELETE", "/v1/models/{id}", {"id": "nope"}, None, None,
+         None, 404, "not-found", None),
+        ("query without state", "GET", "/v1/models/{id}/policy", M, None, None, None, 400,
+         "invalid-request", None),
+        ("explain without state", "GET", "/v1/models/{id}/policy/explain", M, None, None, None,
+         400, "invalid-request", None),
+        ("unknown state", "GET", "/v1/models/{id}/policy", M, {"state": "melted"}, None, None,
+         404, "not-found", None),
+        ("unknown state (explain)", "GET", "/v1/models/{id}/policy/explain", M,
+         {"state": "Worn_peak"}, None, None, 404, "not-found", None),
+        ("query an unknown model", "GET", "/v1/models/{id}/policy", {"id": "f" * 32},
+         {"state": "worn_peak"}, None, None, 404, "not-found", None),
+        ("query an unknown solution", "GET", "/v1/models/{id}/policy", M,
+         {"state": "worn_peak", "solution_id": "0" * 32}, None, None, 404, "not-found", None),
+        ("batch with unknown states", "POST", "/v1/models/{id}/policy/batch", M, None,
+         {"states": ["worn_peak", "melted", "new_off", 7]}, "application/json", 422,
+         "unknown-states", ["/states/1", "/states/3"]),
+        ("batch with no states", "POST", "/v1/models/{id}/policy/batch", M, None,
+         {"states": []}, "application/json", 400, "invalid-request", None),
+        ("solve option out of range (tolerance 0)", "POST", J, None, None,
+         {"model_id": pid, "options": {"tolerance": 0}}, "application/json", 400,
+         "invalid-request", None),
+        ("solve option out of range (threads 1000)", "POST", J, None, None,
+         {"model_id": pid, "options": {"threads": 1000}}, "application/json", 400,
+         "invalid-request", None),
+        ("solve option of the wrong type", "POST", J, None, None,
+         {"model_id": pid, "options": {"max_iterations": "many"}}, "application/json", 400,
+         "invalid-request", None),
+        ("unknown solve method", "POST", J, None, None,
+         {"model_id": pid, "options": {"method": "guess"}}, "application/json", 400,
+         "invalid-request", None),
+        ("unknown option", "POST", J, None, None,
+         {"model_id": pid, "options": {"tolerence": 1e-6}}, "application/json", 400,
+         "invalid-request", None),
+        ("solve without model_id", "POST", J, None, None, {"options": {}}, "application/json",
+         400, "invalid-request", None),
+        ("solve an unknown model", "POST", J, None, None, {"model_id": "nope"},
+         "application/json", 404, "not-found", None),
+        ("unknown job id", "GET", "/v1/jobs/{id}", {"id": "j" + "0" * 32}, None, None, None,
+         404, "not-found", None),
+        ("cancel an unknown job", "POST", "/v1/jobs/{id}/cancel", {"id": "jnope"}, None, b"",
+         None, 404, "not-found", None),
+        ("cancel a finished job", "POST", "/v1/jobs/{id}/cancel", {"id": view["id"]}, None, b"",
+         None, 409, "conflict", None),
+        ("list jobs with an unknown status", "GET", J, None, {"status": "done"}, None, None,
+         400, "invalid-request", None),
+        ("list jobs with limit 0", "GET", J, None, {"limit": "0"}, None, None, 400,
+         "invalid-request", None),
+        ("query a model with no solution yet", "GET", "/v1/models/{id}/policy", {"id": rid},
+         {"state": "r0c0"}, None, None, 409, "conflict", None),
+        ("batch on a model with no solution yet", "POST", "/v1/models/{id}/policy/batch",
+         {"id": rid}, None, {"states": ["r0c0"]}, "application/json", 409, "conflict", None),
+        ("verify a policy with no solution yet", "POST", "/v1/models/{id}/verify", {"id": rid},
+         None, {"format": "mdpserve/policy@1", "policy": {
+             st["name"]: st["actions"][0]["action"] for st in robot["states"]
+             if not st.get("terminal")}}, "application/json", 409, "conflict", None),
+        ("unknown solution report", "GET", "/v1/models/{id}/solutions/{sid}",
+         {"id": pid, "sid": "0" * 32}, None, None, None, 404, "not-found", None),
+        ("solution of another model", "GET", "/v1/models/{id}/solutions/{sid}/tables",
+         {"id": rid, "sid": sid}, None, None, None, 404, "not-found", None),
+        ("nesting 100 deep (solve)", "POST", J, None, None, deep_object, "application/json",
+         400, "invalid-request", None),
+        ("nesting 100 deep (batch)", "POST", "/v1/models/{id}/policy/batch", M, None,
+         b'{"states": ' + deep_array + b"}", "application/json", 400, "malformed-json", None),
+        ("nesting 100 deep (upload)", "POST", "/v1/models", None, None, deep_array,
+         "application/json", 400, "malformed-json", ["/0" * 64]),
+        ("verify with both values and policy", "POST", "/v1/models/{id}/verify", M, None,
+         {"values": {}, "policy": {}}, "application/json", 400, "invalid-request", None),
+        ("verify with a negative tolerance", "POST", "/v1/models/{id}/verify", M, None,
+         {"values": {}, "tolerance": -1}, "application/json", 400, "invalid-request", None),
+        ("verify candidate with an unknown state", "POST", "/v1/models/{id}/verify", M, None,
+         {"format": "mdpserve/values@1",
+          "values": dict({s["name"]: 1.0 for s in pump["states"]}, melted=2.0)},
+         "application/json", 422, "invalid-candidate", ["/values/melted"]),
+        ("verify policy with an unavailable action", "POST", "/v1/models/{id}/verify", M, None,
+         {"format": "mdpserve/policy@1",
+          "policy": dict({s["name"]: "run" for s in pump["states"]}, new_peak="fly")},
+         "application/json", 422, "invalid-candidate", ["/policy/new_peak"]),
+        ("verify an unknown model", "POST", "/v1/models/{id}/verify", {"id": "nope"}, None,
+         {"values": {}}, "application/json", 404, "not-found", None),
+    ]
+    for (name, method, template, params, query, body, ctype, status, ptype, pointers) in table:
+        raw = body if isinstance(body, bytes) else None
+        obj = None if isinstance(body, bytes) else body
+        resp = client.call(method, template, params, query, body=obj, raw=raw, ctype=ctype,
+                           expect=status, name="e: " + name)
+        try:
+            problem = resp.json()
+        except ValueError:
+            problem = {}
+        ok = problem.get("type") == PROBLEM + ptype and problem.get("status") == resp.status
+        detail = short(resp.body)
+        if pointers is not None:
+            listed = [e["pointer"] for e in problem.get("errors", [])]
+            ok = ok and all(p in listed for p in pointers)
+            detail += " pointers %s" % listed
+        R.check("e: %s: problem type %s" % (name, ptype), ok, detail)
+
+    # Outside the operations: unknown routes and methods, unreadable HTTP.
+    for name, method, path in (("unknown route", "GET", "/v1/nothing"),
+                               ("wrong method", "PUT", "/v1/models"),
+                               ("id with a dot", "GET", "/v1/models/a.b"),
+                               ("id of 65 characters", "GET", "/v1/models/" + "a" * 65)):
+        resp = client.call(method, None, {"path": path}, raw=b"" if method == "PUT" else None,
+                           ctype=None)
+        R.check("e: %s -> 404 no-such-route problem" % name,
+                resp.status == 404 and not resp.problems and
+                resp.json()["type"] == PROBLEM + "no-such-route", short(resp.body))
+    resp = raw_exchange(server.port, b"NONSENSE\r\n\r\n")
+    problems = api.check_problem_only(resp, "BadRequestProblem")
+    R.check("e: unreadable request line -> 400 problem stating 400",
+            resp.status == 400 and not problems, "%s %s %s" % (resp.status, problems,
+                                                               short(resp.body)))
+    resp = raw_exchange(server.port, b"GET /" + b"a" * 9000 + b" HTTP/1.1\r\nHost: x\r\n\r\n")
+    problems = api.check_problem_only(resp, "Problem")
+    R.check("e: over-long URI -> 414 problem stating 414",
+            resp.status == 414 and not problems and json.loads(resp.body)["status"] == 414,
+            "%s %s %s" % (resp.status, problems, short(resp.body)))
+
+    # 429: one worker, one queue slot, slow solves.
+    slow = slow_model(120, 3)
+    slow_id = upload(client, slow, 201, "e: upload small slow model")
+    resp = client.call("POST", J, body={"model_id": slow_id, "options": slow_options(20)},
+                       expect=202, name="e: first slow solve")
+    first = resp.json()["id"]
+    wait_job(client, first, ("running",), timeout=20)
+    resp = client.call("POST", J, body={"model_id": slow_id, "options": slow_options(21)},
+                       expect=202, name="e: second slow solve (queued)")
+    second = resp.json()["id"]
+    R.check("e: second solve is queued", resp.json()["status"] == "queued")
+    statuses = []
+    for k in range(3):
+        resp = client.call("POST", J, body={"model_id": slow_id, "options": slow_options(22 + k)},
+                           expect=429 if k == 0 else None, name="e: solve with a full queue")
+        statuses.append(resp.status)
+        if k == 0:
+            problem = resp.json()
+            R.check("e: queue full -> 429 too-many-requests with Retry-After",
+                    problem.get("type") == PROBLEM + "too-many-requests" and
+                    int(resp.headers.get("retry-after", "0")) > 0, str(resp.headers))
+    R.check("e: every solve beyond the queue is refused with 429", statuses == [429] * 3,
+            str(statuses))
+    gauges = metric_samples(client.call("GET", "/metrics").body.decode())
+    R.check("e: metrics show 1 queued and 1 running job",
+            gauges.get(("mdpserve_jobs_queued", ())) == 1 and
+            gauges.get(("mdpserve_jobs_running", ())) == 1,
+            str({k: v for k, v in gauges.items() if k[0].startswith("mdpserve_jobs_")}))
+    resp = client.call("POST", "/v1/jobs/{id}/cancel", {"id": second}, raw=b"", ctype=None,
+                       expect=200, name="e: cancel the queued solve")
+    R.check("e: a queued job is cancelled at once", resp.json()["status"] == "cancelled")
+    client.call("POST", "/v1/jobs/{id}/cancel", {"id": first}, raw=b"", ctype=None,
+                expect=200, name="e: cancel the running solve")
+    view = wait_job(client, first, ("cancelled", "failed", "succeeded"), timeout=20)
+    R.check("e: the running job ends cancelled", view and view["status"] == "cancelled")
+    resp = client.call("POST", "/v1/jobs/{id}/cancel", {"id": second}, raw=b"", ctype=None,
+                       expect=409, name="e: cancel the cancelled job again")
+
+    # The server is still fine.
+    client.call("GET", "/healthz", expect=200, name="e: healthz after the bad requests")
+    resp = client.call("GET", "/v1/models/{id}/policy", {"id": pid}, {"state": "worn_peak"},
+                       expect=200, name="e: earlier model after the bad requests")
+    R.check("e: earlier answer unchanged", resp.body == good_answer)
+    resp = client.call("GET", "/v1/models", expect=200, name="e: list after the bad requests")
+    R.check("e: exactly the three good models stored",
+            [x["id"] for x in resp.json()["models"]] == [pid, rid, slow_id])
+    resp = client.call("DELETE", "/v1/models/{id}", {"id": rid}, expect=204,
+                       name="e: delete a model")
+    client.call("GET", "/v1/models/{id}", {"id": rid}, expect=404, name="e: deleted model is gone")
+
+
+# --------------------------------------------------------------------------------------------
+# (f) Token
+
+def scenario_f(api, server, token):
+    anon = Client(api, server)
+    wrong = Client(api, server, token="not-" + token)
+    right = Client(api, server, token=token)
+    for label, client in (("no token", anon), ("wrong token", wrong)):
+        for method, template, body in (("GET", "/v1/models", None), ("GET", "/metrics", None),
+                                       ("GET", "/v1/openapi.json", None),
+                                       ("POST", "/v1/jobs", {"model_id": "x"}),
+                                       ("POST", "/v1/models", {"format": "mdpserve/model@1"})):
+            resp = client.call(method, template, body=body, expect=401,
+                               name="f: %s: %s %s" % (label, method, template))
+            R.check("f: %s: %s %s: WWW-Authenticate Bearer, unauthorized problem" %
+                    (label, method, template),
+                    resp.headers.get("www-authenticate", "").startswith("Bearer") and
+                    resp.json()["type"] == PROBLEM + "unauthorized")
+    resp = anon.call("GET", "/v1/models", headers={"Authorization": token}, expect=401,
+                     name="f: token without the Bearer scheme")
+    resp = right.call("GET", "/v1/models", expect=200, name="f: right token: list models")
+    right.call("GET", "/v1/openapi.json", expect=200, name="f: right token: openapi")
+    right.call("GET", "/metrics", expect=200, name="f: right token: metrics")
+    anon.call("GET", "/healthz", expect=200, name="f: healthz without token")
+    anon.call("GET", "/readyz", expect=200, name="f: readyz without token")
+    wrong.call("GET", "/healthz", expect=200, name="f: healthz with a wrong token")
+
+
+# --------------------------------------------------------------------------------------------
+# (g) Metrics
+
+LINE = re.compile(r'^([a-zA-Z_:][a-zA-Z0-9_:]*)(?:\{(.*)\})? ([-+0-9.eEinfaINF]+)$')
+
+
+def metric_samples(text):
+    out = {}
+    for line in text.splitlines():
+        if not line or line.startswith("#"):
+            continue
+        match = LINE.match(line)
+        if not match:
+            out[("unparsable", (line,))] = 0
+            continue
+        labels = tuple(sorted(re.findall(r'(\w+)="((?:[^"\\]|\\.)*)"', match.group(2) or "")))
+        out[(match.group(1), labels)] = float(match.group(3))
+    return out
+
+
+def scenario_g(api, server, m):
+    client = Client(api, server)
+    text, samples, differ = "", {}, ["not fetched"]
+    for _ in range(5):  # a request's metrics are recorded just after its answer is sent
+        resp = client.call("GET", "/metrics", expect=None)
+        text = resp.body.decode()
+        samples = metric_samples(text)
+        with server.lock:
+            counts = dict(server.counts)
+        differ = []
+        for (method, route, status), n in counts.items():
+            if route == "/metrics":
+                continue
+            key = ("mdpserve_http_requests_total",
+                   (("method", method), ("route", route), ("status", str(status))))
+            if samples.get(key) != n:
+                differ.append((method, route, status, n, samples.get(key)))
+        extra = [k for k in samples if k[0] == "mdpserve_http_requests_total" and
+                 dict(k[1])["route"] != "/metrics" and
+                 (dict(k[1])["method"], dict(k[1])["route"], int(dict(k[1])["status"]))
+                 not in counts]
+        differ += extra
+        if not differ:
+            break
+        time.sleep(0.1)
+    R.check("g: metrics response is text/plain and parses",
+            resp.status == 200 and resp.headers.get("content-type", "").startswith("text/plain")
+            and not any(k[0] == "unparsable" for k in samples), short(text))
+    routes = {k[1] for k in counts if k[1] != "/metrics"}
+    R.check("g: mdpserve_http_requests_total equals this test's requests for %d routes "
+            "(%d requests)" % (len(routes), sum(counts.values())), not differ, str(differ[:4]))
+    bad = []
+    for method, route in {(k[0], k[1]) for k in counts if k[1] != "/metrics"}:
+        labels = (("method", method), ("route", route))
+        n = sum(v for (mm, rr, _), v in counts.items() if (mm, rr) == (method, route))
+        count = samples.get(("mdpserve_http_request_duration_seconds_count", labels))
+        inf = samples.get(("mdpserve_http_request_duration_seconds_bucket",
+                           tuple(sorted(labels + (("le", "+Inf"),)))))
+        total = samples.get(("mdpserve_http_request_duration_seconds_sum", labels))
+        if count != n or inf != n or total is None or total < 0:
+            bad.append((method, route, n, count, inf, total))
+    R.check("g: mdpserve_http_request_duration_seconds count, +Inf bucket and sum per route",
+            not bad, str(bad[:3]))
+    for gauge in ("mdpserve_jobs_queued", "mdpserve_jobs_running"):
+        R.check("g: gauge %s is 0 when idle" % gauge, samples.get((gauge, ())) == 0,
+                str(samples.get((gauge, ()))))
+    R.check("g: cache gauges: bytes and entries > 0, budget 2 GiB",
+            samples.get(("mdpserve_cache_bytes", ())) > 0 and
+            samples.get(("mdpserve_cache_entries", ())) > 0 and
+            samples.get(("mdpserve_cache_budget_bytes", ())) == 2 ** 31)
+    hits = samples.get(("mdpserve_cache_requests_total", (("result", "hit"),)), 0)
+    R.check("g: cache hits counted", hits > 0, str(hits))
+    solve_labels = (("kind", "solve"),)
+    count = samples.get(("mdpserve_job_duration_seconds_count", solve_labels))
+    buckets = sorted(((float(dict(k[1])["le"]), v) for k, v in samples.items()
+                      if k[0] == "mdpserve_job_duration_seconds_bucket" and
+                      dict(k[1]).get("kind") == "solve"))
+    finished = m["solves"] + m["cancelled_jobs"]
+    R.check("g: job duration histogram: %d solve jobs, cumulative buckets" % finished,
+            count == finished and buckets and buckets[-1][1] == count and
+            all(a[1] <= b[1] for a, b in zip(buckets, buckets[1:])), "%s %s" % (count, buckets))
+    R.check("g: jobs finished by status",
+            samples.get(("mdpserve_jobs_finished_total",
+                         (("kind", "solve"), ("status", "succeeded")))) == m["solves"] and
+            samples.get(("mdpserve_jobs_finished_total",
+                         (("kind", "solve"), ("status", "cancelled")))) == m["cancelled_jobs"])
+
+
+# --------------------------------------------------------------------------------------------
+
+def main():
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--mdpserve", required=True, help="path to the mdpserve binary")
+    parser.add_argument("--root", required=True, help="repository root")
+    args = parser.parse_args()
+    binary = os.path.abspath(args.mdpserve)
+    root = os.path.abspath(args.root)
+    api = Api(root)
+    started = time.monotonic()
+    servers = []
+    with tempfile.TemporaryDirectory(prefix="mdpserve-api-test-") as work:
+        def server(name, extra):
+            s = Server(binary, work, name, extra)
+            servers.append(s)
+            return s.start()
+
+        try:
+            check_openapi_document(api, root)
+            data_dir = os.path.join(work, "data")
+            main_server = server("main", ["--data-dir", data_dir, "--shutdown-deadline", "0.2"])
+            client = Client(api, main_server)
+            resp = client.call("GET", "/v1/openapi.json", expect=200, name="0: served openapi")
+            R.check("0: served /v1/openapi.json is api-schema/openapi.json byte for byte",
+                    resp.body == api.raw)
+            client.call("GET", "/healthz", expect=200, name="0: healthz")
+            client.call("GET", "/readyz", expect=200, name="0: readyz")
+            resp = client.call("GET", "/v1/models", headers={"Authorization": "Bearer any"},
+                               expect=200, name="f: token off: any Authorization is ignored")
+            m = {}
+            scenario_a(api, client, root, m)
+            scenario_d(api, main_server, m)
+            scenario_g(api, main_server, m)
+            after_b = scenario_b(api, main_server, m)
+            scenario_c(api, main_server, m, after_b)
+            code, seconds = main_server.terminate()
+            R.check("c: final SIGTERM exits 0 (%.2f s)" % seconds, code == 0, str(code))
+
+            errors_server = server("errors", ["--memory-store", "--workers", "1",
+                                              "--queue-length", "1", "--body-limit", "65536"])
+            scenario_e(api, errors_server, root)
+
+            token = "tok-%016x" % random.Random(5).getrandbits(64)
+            token_file = os.path.join(work, "token")
+            with open(token_file, "w") as f:
+                f.write(token + "\n")
+            token_server = server("token", ["--memory-store", "--token-file", token_file])
+            scenario_f(api, token_server, token)
+        except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
+            import traceback
+            traceback.print_exc()
+            R.check("no unexpected exception", False, repr(e))
+        finally:
+            for s in servers:
+                s.ensure_stopped()
+            if R.failed:
+                for s in servers:
+                    path = os.path.join(work, s.name + ".log")
+                    if os.path.exists(path):
+                        with open(path, "rb") as f:
+                            tail = f.read()[-1500:]
+                        print("--- last lines of the %s server's log:\n%s" %
+                              (s.name, tail.decode("utf-8", "replace")))
+    print("(%.1f s)" % (time.monotonic() - started))
+    print("%d passed, %d failed" % (R.passed, R.failed))
+    return 1 if R.failed else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
