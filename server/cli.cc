@@ -219,6 +219,32 @@ int RunEvaluate(const EvaluateArgs& args, std::ostream& out, std::ostream& err) 
   return kExitOk;
 }
 
+struct CompareArgs {
+  std::string model_a, model_b, method = "policy_iteration";
+  double tolerance = 1e-8;
+  int top = 10;
+};
+
+// Solves both models the same way and reports what changed from the first to the second.
+int RunCompare(const CompareArgs& args, std::ostream& out, std::ostream& err) {
+  SolveOptions options;
+  options.method = *ParseMethod(args.method);
+  options.tolerance = args.tolerance;
+  std::optional<Model> a = LoadModel(args.model_a, err, true);
+  std::optional<Model> b = LoadModel(args.model_b, err, true);
+  if (!a || !b) return kExitBadInput;
+  Result<Solution> sa = Solve(*a, options);
+  Result<Solution> sb = Solve(*b, options);
+  if (!sa.ok() || !sb.ok()) {
+    err << "mdpserve: " << (!sa.ok() ? sa.status() : sb.status()).message() << "\n";
+    return kExitBadInput;
+  }
+  CompareOptions compare;
+  compare.top_k = args.top;
+  (void)Emit(EncodeComparison(CompareSolutions(*a, *sa, *b, *sb, compare)), "", out);
+  return kExitOk;
+}
+
 void AddSolveOptions(CLI::App* cmd, SolveArgs& a) {
   cmd->add_option("MODEL", a.model, "model document (JSON), or - for standard input")->required();
   cmd->add_option("--method", a.method,
@@ -294,6 +320,24 @@ int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
       ->capture_default_str()
       ->check(CLI::IsMember({"auto", "direct", "bicgstab", "sweeps"}));
 
+  CompareArgs compare_args;
+  CLI::App* compare = app.add_subcommand(
+      "compare", "solve two models (e.g. two revisions) and report what changed");
+  compare->add_option("MODEL_A", compare_args.model_a, "the first (older) model document")
+      ->required();
+  compare->add_option("MODEL_B", compare_args.model_b, "the second (newer) model document")
+      ->required();
+  compare->add_option("--method", compare_args.method, "solve method for both")
+      ->capture_default_str()
+      ->check(CLI::IsMember({"value_iteration", "gauss_seidel", "policy_iteration",
+                             "modified_policy_iteration"}));
+  compare->add_option("--tolerance", compare_args.tolerance, "solve tolerance for both")
+      ->capture_default_str()
+      ->check(CLI::Range(1e-14, 1e6));
+  compare->add_option("--top", compare_args.top, "largest value changes to list")
+      ->capture_default_str()
+      ->check(CLI::Range(0, 100000));
+
   ServerConfig serve_config;
   CLI::App* serve = app.add_subcommand(
       "serve", "run the planning service over HTTP (see api-schema/openapi.json)");
@@ -309,6 +353,7 @@ int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
   if (solve->parsed()) return RunSolve(solve_args, out, err);
   if (verify->parsed()) return RunVerify(verify_args, out, err);
   if (evaluate->parsed()) return RunEvaluate(evaluate_args, out, err);
+  if (compare->parsed()) return RunCompare(compare_args, out, err);
   if (serve->parsed()) return RunServe(serve_config, out);
   return kExitBadInput;
 }

@@ -243,6 +243,43 @@ Json EncodeEvaluation(const Model& m, const PolicyValues& values) {
           {"values", StateMap(m, values.values)}};
 }
 
+Json EncodeComparison(const ComparisonReport& r) {
+  auto state = [](const StateComparison& c) {
+    auto pick = [](const std::string& a) { return a.empty() ? Json(nullptr) : Json(a); };
+    return Json{{"state", c.state},
+                {"value_a", c.value_a},
+                {"value_b", c.value_b},
+                {"value_difference", c.value_b - c.value_a},
+                {"optimal_actions_a", c.optimal_a},
+                {"optimal_actions_b", c.optimal_b},
+                {"action_a", pick(c.pick_a)},
+                {"action_b", pick(c.pick_b)}};
+  };
+  Json set_changes = Json::array();
+  for (const StateComparison& c : r.optimal_set_changes) set_changes.push_back(state(c));
+  Json largest = Json::array();
+  for (const StateComparison& c : r.largest_value_changes) largest.push_back(state(c));
+  return {{"format", "mdpserve/comparison@1"},
+          {"same_objective", r.same_objective},
+          {"same_discount", r.same_discount},
+          {"states_a", r.states_a},
+          {"states_b", r.states_b},
+          {"common_states", r.common_states},
+          {"only_in_a", r.only_in_a},
+          {"only_in_b", r.only_in_b},
+          {"only_in_a_count", r.only_in_a_count},
+          {"only_in_b_count", r.only_in_b_count},
+          {"actions_changed_count", r.actions_changed_count},
+          {"optimal_set_changed_count", r.optimal_set_changed_count},
+          {"action_changed_count", r.pick_changed_count},
+          {"value_changed_count", r.value_changed_count},
+          {"value_margin", r.value_margin},
+          {"max_abs_value_difference", r.max_abs_value_difference},
+          {"mean_abs_value_difference", r.mean_abs_value_difference},
+          {"optimal_set_changes", std::move(set_changes)},
+          {"largest_value_changes", std::move(largest)}};
+}
+
 Json EncodeIssues(const std::vector<DocumentIssue>& errors,
                   const std::vector<DocumentIssue>& warnings, int64_t errors_not_listed) {
   auto list = [](const std::vector<DocumentIssue>& issues) {

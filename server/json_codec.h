@@ -24,6 +24,7 @@ Json EncodeSolution(const Model& m, const Solution& solution, SolutionDetail det
 Json EncodeValuesReport(const Model& m, const ValuesReport& report);
 Json EncodePolicyReport(const Model& m, const PolicyReport& report);
 Json EncodeEvaluation(const Model& m, const PolicyValues& values);
+Json EncodeComparison(const ComparisonReport& report);
 Json EncodeIssues(const std::vector<DocumentIssue>& errors,
                   const std::vector<DocumentIssue>& warnings, int64_t errors_not_listed);
 

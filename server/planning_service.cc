@@ -479,6 +479,17 @@ Result<SolutionRecord> PlanningService::GetSolutionRecord(const std::string& mod
   return record;
 }
 
+Result<ComparisonReport> PlanningService::Compare(const std::string& model_a,
+                                                 const std::string& solution_a,
+                                                 const std::string& model_b,
+                                                 const std::string& solution_b) {
+  Result<Plan> a = GetPlan(model_a, solution_a);
+  if (!a.ok()) return a.status();
+  Result<Plan> b = GetPlan(model_b, solution_b);
+  if (!b.ok()) return b.status();
+  return CompareSolutions(*a->model, *a->solution, *b->model, *b->solution, CompareOptions{});
+}
+
 Result<VerifyStart> PlanningService::Verify(const std::string& model_id, std::string_view body) {
   Result<std::shared_ptr<const Model>> loaded = LoadModel(model_id);
   if (!loaded.ok()) return loaded.status();

@@ -117,6 +117,10 @@ class PlanningService {
   Result<SolutionRecord> GetSolutionRecord(const std::string& model_id,
                                            const std::string& solution_id);
 
+  // Compares two solutions (current ones when the ids are empty), e.g. of two revisions.
+  Result<ComparisonReport> Compare(const std::string& model_a, const std::string& solution_a,
+                                   const std::string& model_b, const std::string& solution_b);
+
   // Verifies a candidate (a values or policy document, optionally with "tolerance").
   Result<VerifyStart> Verify(const std::string& model_id, std::string_view body);
 

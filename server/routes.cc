@@ -231,6 +231,14 @@ void Verify(HttpContext& ctx, const Request& req, Response& res) {
   WriteJson(res, 200, done->report_json);
 }
 
+void Compare(HttpContext& ctx, const Request& req, Response& res) {
+  if (!req.has_param("with")) return WriteProblem(res, MissingParam("with"));
+  Result<ComparisonReport> report = ctx.service.Compare(
+      req.matches[1], Param(req, "solution_id"), Param(req, "with"), Param(req, "with_solution_id"));
+  if (!report.ok()) return WriteProblem(res, report.status());
+  WriteJson(res, 200, EncodeComparison(*report).dump());
+}
+
 void Healthz(HttpContext&, const Request&, Response& res) {
   WriteJson(res, 200, R"({"status":"ok"})");
 }
@@ -273,6 +281,7 @@ const std::vector<Route>& ApiRoutes() {
        "/v1/models/([0-9a-zA-Z_-]{1,64})/solutions/([0-9a-zA-Z_-]{1,64})/tables",
        GetSolutionTables},
       {"POST", "/v1/models/{id}/verify", "/v1/models/([0-9a-zA-Z_-]{1,64})/verify", Verify},
+      {"GET", "/v1/models/{id}/compare", "/v1/models/([0-9a-zA-Z_-]{1,64})/compare", Compare},
       {"POST", "/v1/jobs", "/v1/jobs", StartSolve},
       {"GET", "/v1/jobs", "/v1/jobs", ListJobs},
       {"GET", "/v1/jobs/{id}", "/v1/jobs/([0-9a-zA-Z_-]{1,64})", GetJob},

@@ -4,12 +4,14 @@
 #ifndef MDP_SOLVER_SOLVER_H_
 #define MDP_SOLVER_SOLVER_H_
 
+#include "solver/compare.h"
 #include "solver/evaluate.h"
 #include "solver/model.h"
 #include "solver/model_spec.h"
 #include "solver/options.h"
 #include "solver/policy.h"
 #include "solver/progress.h"
+#include "solver/simulate.h"
 #include "solver/solution.h"
 #include "solver/status.h"
 #include "solver/validate.h"

@@ -837,6 +837,21 @@ def scenario_a(api, client, root, m):
             [j["id"] for j in resp.json()["jobs"]] == [view["id"], m["jobs"][0]])
     m["jobs"].append(view["id"])
     m["solves"] = 4
+    # Comparing the two pump solutions (policy iteration vs value iteration, both tight):
+    # same model, so no state is added or removed and no value moves beyond the margin.
+    resp = client.call("GET", "/v1/models/{id}/compare", {"id": pump_id},
+                       {"with": pump_id, "solution_id": solutions[pump_id],
+                        "with_solution_id": sid}, expect=200,
+                       name="a: compare two solutions of one model")
+    got = resp.json() if resp.status == 200 else {}
+    R.check("a: comparison of two solves of one model finds no change",
+            got.get("common_states") == 10 and got.get("value_changed_count") == 0 and
+            got.get("only_in_a_count") == 0 and got.get("optimal_set_changed_count") == 0 and
+            got.get("max_abs_value_difference", 1) <= got.get("value_margin", 0), short(resp.body))
+    client.call("GET", "/v1/models/{id}/compare", {"id": pump_id}, expect=400,
+                name="a: compare without 'with'")
+    client.call("GET", "/v1/models/{id}/compare", {"id": pump_id}, {"with": "nosuchmodel"},
+                expect=404, name="a: compare with an unknown model")
 
 
 # --------------------------------------------------------------------------------------------
