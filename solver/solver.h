@@ -6,6 +6,7 @@
 
 #include "solver/compare.h"
 #include "solver/evaluate.h"
+#include "solver/finite_horizon.h"
 #include "solver/model.h"
 #include "solver/model_spec.h"
 #include "solver/options.h"
