@@ -12,7 +12,6 @@
 #include "solver/options.h"
 #include "solver/policy.h"
 #include "solver/progress.h"
-#include "solver/simulate.h"
 #include "solver/solution.h"
 #include "solver/status.h"
 #include "solver/validate.h"
