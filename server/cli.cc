@@ -3,10 +3,12 @@
 #include <CLI/CLI.hpp>
 #include <cstdio>
 #include <iomanip>
+#include <iostream>
 #include <optional>
 #include <ostream>
 #include <sstream>
 #include <string>
+#include <unistd.h>
 
 #include "server/file_io.h"
 #include "server/json_codec.h"
@@ -245,6 +247,152 @@ int RunCompare(const CompareArgs& args, std::ostream& out, std::ostream& err) {
   return kExitOk;
 }
 
+struct SimulateArgs {
+  std::string model, policy, solution, start_file, out;
+  std::vector<std::string> start;
+  SimulateOptions options;
+  int listed_states = 20;
+  bool progress = false;
+};
+
+// The policy to simulate: from --policy or --solution, else the greedy policy of a fresh
+// policy-iteration solve. Nullopt (after printing why) iff none can be had.
+std::optional<Policy> PolicyToSimulate(const Model& m, const SimulateArgs& args,
+                                       std::ostream& err) {
+  const std::string& path = args.policy.empty() ? args.solution : args.policy;
+  if (path.empty()) {
+    Result<Solution> solution = Solve(m, SolveOptions{});
+    if (!solution.ok()) {
+      err << "mdpserve: " << solution.status().message() << "\n";
+      return std::nullopt;
+    }
+    return GreedyPolicy(m, *solution);
+  }
+  Result<std::string> text = ReadWholeFile(path);
+  if (!text.ok()) {
+    err << "mdpserve: " << text.status().message() << "\n";
+    return std::nullopt;
+  }
+  Decoded<Policy> policy = DecodePolicy(m, *text);
+  if (!policy.ok()) {
+    PrintIssues(err, path, policy.errors, "");
+    return std::nullopt;
+  }
+  return std::move(policy.value);
+}
+
+// The start distribution: --start-distribution FILE, else the --start states (equally likely;
+// a state named twice counts twice), else the model's first state. False after printing why.
+bool StartDistribution(const Model& m, const SimulateArgs& args, std::vector<StartWeight>& start,
+                       std::ostream& err) {
+  if (!args.start_file.empty()) {
+    Result<std::string> text = ReadWholeFile(args.start_file);
+    if (!text.ok()) {
+      err << "mdpserve: " << text.status().message() << "\n";
+      return false;
+    }
+    Decoded<std::vector<StartWeight>> decoded = DecodeStartDistribution(m, *text);
+    PrintIssues(err, args.start_file, decoded.errors, "");
+    start = std::move(decoded.value);
+    return decoded.ok();
+  }
+  if (args.start.empty()) {
+    start = {{0, 1.0}};
+    return true;
+  }
+  for (const std::string& name : args.start) {
+    std::optional<StateId> s = m.FindState(name);
+    if (!s) {
+      err << "mdpserve: --start: the model has no state '" << name << "'\n";
+      return false;
+    }
+    start.push_back({*s, 1.0 / static_cast<double>(args.start.size())});
+  }
+  return true;
+}
+
+// Prints a line to `err` each time another 5% of the episodes is done.
+ProgressFn ProgressLines(int64_t episodes, std::ostream& err) {
+  return [episodes, &err, next = int64_t{5}](const Progress& p) mutable {
+    const int64_t percent = p.iteration * 100 / episodes;
+    if (percent < next) return;
+    next = percent / 5 * 5 + 5;
+    std::ostringstream line;  // Own stream, so err's formatting state is left alone.
+    line << "simulate: " << percent << "% (" << p.iteration << "/" << episodes << " episodes, "
+         << std::setprecision(3) << p.elapsed_seconds << " s)\n";
+    err << line.str() << std::flush;
+  };
+}
+
+// Cut episodes bias the mean; say so when the bias could matter next to the sampling error
+// (more than a tenth of the interval's half-width).
+void WarnAboutTruncation(const SimulationReport& r, int64_t max_steps, std::ostream& err) {
+  const double half_width = std::isnan(r.ci_high) ? 0.0 : 0.5 * (r.ci_high - r.ci_low);
+  if (r.truncated_episodes == 0 || r.truncation_bias_bound <= 0.1 * half_width) return;
+  err << "mdpserve: warning: " << r.truncated_episodes << " of " << r.episodes
+      << " episodes were cut at --max-steps " << max_steps << "; the mean may be off by up to "
+      << r.truncation_bias_bound << " (truncation_bias_bound); raise --max-steps\n";
+}
+
+int RunSimulate(const SimulateArgs& args, std::ostream& out, std::ostream& err) {
+  std::optional<Model> model = LoadModel(args.model, err, true);
+  if (!model) return kExitBadInput;
+  std::optional<Policy> policy = PolicyToSimulate(*model, args, err);
+  SimulateOptions options = args.options;
+  if (!policy || !StartDistribution(*model, args, options.start, err)) return kExitBadInput;
+  ProgressFn progress;
+  if (args.progress || (&err == &std::cerr && ::isatty(STDERR_FILENO) == 1)) {
+    progress = ProgressLines(options.episodes, err);
+  }
+  Result<SimulationReport> report = Simulate(*model, *policy, options, &progress);
+  if (!report.ok()) {
+    err << "mdpserve: " << report.status().message() << "\n";
+    return kExitBadInput;
+  }
+  WarnAboutTruncation(*report, options.max_steps, err);
+  Status written =
+      Emit(EncodeSimulation(*model, options, *report, args.listed_states), args.out, out);
+  if (!written.ok()) {
+    err << "mdpserve: " << written.message() << "\n";
+    return kExitBadInput;
+  }
+  return kExitOk;
+}
+
+CLI::App* AddSimulateCommand(CLI::App& app, SimulateArgs& a) {
+  CLI::App* cmd = app.add_subcommand(
+      "simulate", "Monte Carlo rollouts of a policy: return statistics and state visits");
+  cmd->add_option("MODEL", a.model, "model document (JSON)")->required();
+  CLI::Option* policy = cmd->add_option("--policy", a.policy, "policy or solution document");
+  cmd->add_option("--solution", a.solution,
+                  "solution document whose policy to simulate (default: solve the model)")
+      ->excludes(policy);
+  CLI::Option* start = cmd->add_option(
+      "--start", a.start, "start state(s), equally likely (default: the model's first state)");
+  cmd->add_option("--start-distribution", a.start_file,
+                  "start distribution document (mdpserve/start@1)")
+      ->excludes(start);
+  cmd->add_option("--episodes", a.options.episodes, "episodes to run")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{1}, int64_t{100000000}));
+  cmd->add_option("--max-steps", a.options.max_steps, "steps after which an episode is cut")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{1}, int64_t{1000000000}));
+  cmd->add_option("--seed", a.options.seed, "seed of the random stream")->capture_default_str();
+  cmd->add_option("--confidence", a.options.confidence,
+                  "level of the confidence interval of the mean, in (0, 1)")
+      ->capture_default_str();
+  cmd->add_option("--quantiles", a.options.quantiles, "quantile levels of the return, in [0, 1]")
+      ->delimiter(',');
+  cmd->add_option("--top-states", a.listed_states, "most visited states to list")
+      ->capture_default_str()
+      ->check(CLI::Range(0, 100000));
+  cmd->add_option("--out", a.out, "write the simulation document here instead of stdout");
+  cmd->add_flag("--progress", a.progress,
+                "print progress lines to stderr (default: only when stderr is a terminal)");
+  return cmd;
+}
+
 void AddSolveOptions(CLI::App* cmd, SolveArgs& a) {
   cmd->add_option("MODEL", a.model, "model document (JSON), or - for standard input")->required();
   cmd->add_option("--method", a.method,
@@ -338,6 +486,9 @@ int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
       ->capture_default_str()
       ->check(CLI::Range(0, 100000));
 
+  SimulateArgs simulate_args;
+  CLI::App* simulate = AddSimulateCommand(app, simulate_args);
+
   ServerConfig serve_config;
   CLI::App* serve = app.add_subcommand(
       "serve", "run the planning service over HTTP (see api-schema/openapi.json)");
@@ -354,6 +505,7 @@ int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
   if (verify->parsed()) return RunVerify(verify_args, out, err);
   if (evaluate->parsed()) return RunEvaluate(evaluate_args, out, err);
   if (compare->parsed()) return RunCompare(compare_args, out, err);
+  if (simulate->parsed()) return RunSimulate(simulate_args, out, err);
   if (serve->parsed()) return RunServe(serve_config, out);
   return kExitBadInput;
 }

@@ -1,6 +1,8 @@
 #include "server/json_codec.h"
 
+#include <algorithm>
 #include <cmath>
+#include <numeric>
 #include <string>
 
 namespace mdp::server {
@@ -280,6 +282,87 @@ Json EncodeComparison(const ComparisonReport& r) {
           {"largest_value_changes", std::move(largest)}};
 }
 
+namespace {
+
+// The `listed` most visited states (most visits first, ties in model order), and the share of
+// steps spent in the others.
+Json VisitSummary(const Model& m, const SimulationReport& r, int listed) {
+  std::vector<StateId> visited;
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (r.visits[s] > 0) visited.push_back(s);
+  }
+  const size_t shown = std::min(visited.size(), static_cast<size_t>(std::max(0, listed)));
+  std::partial_sort(visited.begin(), visited.begin() + shown, visited.end(),
+                    [&](StateId a, StateId b) {
+                      return r.visits[a] != r.visits[b] ? r.visits[a] > r.visits[b] : a < b;
+                    });
+  Json top = Json::array();
+  int64_t listed_steps = 0;
+  for (size_t i = 0; i < shown; ++i) {
+    const StateId s = visited[i];
+    listed_steps += r.visits[s];
+    top.push_back({{"state", m.state_name(s)},
+                   {"visits", r.visits[s]},
+                   {"frequency", r.visit_frequency[s]}});
+  }
+  const double rest = r.total_steps > 0
+                          ? static_cast<double>(r.total_steps - listed_steps) / r.total_steps
+                          : 0.0;
+  return {{"total_steps", r.total_steps},
+          {"states_visited", static_cast<int64_t>(visited.size())},
+          {"most_visited", std::move(top)},
+          {"unlisted_frequency", rest}};
+}
+
+Json StartMap(const Model& m, const std::vector<StartWeight>& start) {
+  Json out = Json::object();
+  for (const StartWeight& w : start) {
+    const std::string& name = m.state_name(w.state);
+    out[name] = (out.contains(name) ? out[name].get<double>() : 0.0) + w.probability;
+  }
+  return out;
+}
+
+}  // namespace
+
+Json EncodeSimulation(const Model& m, const SimulateOptions& options,
+                      const SimulationReport& r, int listed_states) {
+  Json levels = Json::array();
+  for (double q : options.quantiles) levels.push_back(q);
+  Json quantiles = Json::array();
+  for (const QuantileValue& q : r.quantiles) {
+    quantiles.push_back({{"level", q.level}, {"value", NumberOrNull(q.value)}});
+  }
+  const Json ret = {{"mean", NumberOrNull(r.mean)},
+                    {"std_dev", NumberOrNull(r.std_dev)},
+                    {"std_error", NumberOrNull(r.std_error)},
+                    {"confidence_interval", {{"level", options.confidence},
+                                             {"low", NumberOrNull(r.ci_low)},
+                                             {"high", NumberOrNull(r.ci_high)}}},
+                    {"min", NumberOrNull(r.min)},
+                    {"max", NumberOrNull(r.max)},
+                    {"quantiles", std::move(quantiles)}};
+  return {{"format", "mdpserve/simulation@1"},
+          {"model", ModelSummary(m)},
+          {"objective", ObjectiveName(m.objective())},
+          {"criterion", EncodeCriterion(m.criterion())},
+          {"options", {{"start", StartMap(m, options.start)},
+                       {"episodes", options.episodes},
+                       {"max_steps", options.max_steps},
+                       {"seed", options.seed},
+                       {"confidence", options.confidence},
+                       {"quantiles", std::move(levels)}}},
+          {"outcome", SimulationOutcomeName(r.outcome)},
+          {"episodes", r.episodes},
+          {"return", ret},
+          {"episode_length", {{"mean", NumberOrNull(r.mean_length)},
+                              {"truncated_episodes", r.truncated_episodes}}},
+          {"truncation_bound", r.truncation_bound},
+          {"truncation_bias_bound", r.truncation_bias_bound},
+          {"visits", VisitSummary(m, r, listed_states)},
+          {"simulate_seconds", r.elapsed_seconds}};
+}
+
 Json EncodeIssues(const std::vector<DocumentIssue>& errors,
                   const std::vector<DocumentIssue>& warnings, int64_t errors_not_listed) {
   auto list = [](const std::vector<DocumentIssue>& issues) {
@@ -343,6 +426,37 @@ Decoded<Policy> DecodePolicy(const Model& m, std::string_view text) {
   if (out.errors.empty()) {
     Status status = CheckPolicy(m, out.value);
     if (!status.ok()) AddError(out.errors, "/policy", status.message());
+  }
+  return out;
+}
+
+Decoded<std::vector<StartWeight>> DecodeStartDistribution(const Model& m, std::string_view text) {
+  Decoded<std::vector<StartWeight>> out;
+  JsonReadResult read = ReadJson(text, JsonReadOptions{});
+  if (!read.errors.empty()) {
+    out.errors = std::move(read.errors);
+    return out;
+  }
+  const Json* map = OpenCandidate(read.root, "start", "mdpserve/start@1", out.errors);
+  if (map == nullptr) return out;
+  double sum = 0.0;
+  for (auto it = map->begin(); it != map->end(); ++it) {
+    const std::string ptr = "/start/" + EscapePointerToken(it.key());
+    std::optional<StateId> s = m.FindState(it.key());
+    if (!s) {
+      AddError(out.errors, ptr, "the model has no state '" + it.key() + "'");
+    } else if (!it->is_number() || !std::isfinite(it->get<double>()) ||
+               it->get<double>() < 0.0 || it->get<double>() > 1.0) {
+      AddError(out.errors, ptr, "probability must be a number between 0 and 1");
+    } else {
+      out.value.push_back({*s, it->get<double>()});
+      sum += it->get<double>();
+    }
+  }
+  if (out.errors.empty() && out.value.empty()) {
+    AddError(out.errors, "/start", "needs at least one state");
+  } else if (out.errors.empty() && std::fabs(sum - 1.0) > kStartSumTolerance) {
+    AddError(out.errors, "/start", "probabilities sum to " + std::to_string(sum) + ", not 1");
   }
   return out;
 }

@@ -25,6 +25,10 @@ Json EncodeValuesReport(const Model& m, const ValuesReport& report);
 Json EncodePolicyReport(const Model& m, const PolicyReport& report);
 Json EncodeEvaluation(const Model& m, const PolicyValues& values);
 Json EncodeComparison(const ComparisonReport& report);
+// The simulation document (api-schema/simulation.schema.json). Lists the `listed_states` most
+// visited states (most visits first, ties in model order) and the frequency of the rest.
+Json EncodeSimulation(const Model& m, const SimulateOptions& options,
+                      const SimulationReport& report, int listed_states = 20);
 Json EncodeIssues(const std::vector<DocumentIssue>& errors,
                   const std::vector<DocumentIssue>& warnings, int64_t errors_not_listed);
 
@@ -40,6 +44,9 @@ struct Decoded {
 Decoded<std::vector<double>> DecodeValues(const Model& m, std::string_view text);
 // Reads a policy document (or a solution document's `policy`) for model `m`.
 Decoded<Policy> DecodePolicy(const Model& m, std::string_view text);
+// Reads a start distribution document (api-schema/start.schema.json) for model `m`:
+// `{"start": {"<state>": <probability>, ...}}`, probabilities summing to 1 within 1e-6.
+Decoded<std::vector<StartWeight>> DecodeStartDistribution(const Model& m, std::string_view text);
 
 }  // namespace mdp::server
 

@@ -140,11 +140,26 @@ Result<PolicyValues> EvaluatePolicy(const Model& m, const Policy& policy,
       out.residual = SupResidual(Assemble(m, policy), x);
     } else {
       const LinearSystem sys = Assemble(m, policy);
+      const Vector start = x;
       status = out.solver_used == LinearSolver::kDirect
                    ? Direct(sys, out, x)
                    : Krylov(sys, options, g, cancel, out, x);
-      if (!status.ok()) return status;
-      out.residual = SupResidual(sys, x);
+      if (status.code() == StatusCode::kCancelled) return status;
+      if (status.ok() && x.allFinite()) out.residual = SupResidual(sys, x);
+      // BiCGSTAB can break down (seen on chain-shaped policies) or stall above the target;
+      // the policy's operator is a g-contraction, so sweeps always get there: fall back to
+      // them, from the Krylov iterate when it is usable.
+      const bool failed = !status.ok() || !x.allFinite();
+      if (out.solver_used == LinearSolver::kBiCgStab &&
+          (failed || out.residual / (1.0 - g) > 1e3 * options.tolerance)) {
+        if (failed) x = start;
+        out.solver_used = LinearSolver::kSweeps;
+        status = Sweeps(m, policy, options, cancel, out, x);
+        if (!status.ok()) return status;
+        out.residual = SupResidual(sys, x);
+      } else if (!status.ok()) {
+        return status;
+      }
     }
     out.value_error_bound = out.residual / (1.0 - g);
     out.values.assign(x.data(), x.data() + x.size());

@@ -29,7 +29,7 @@ struct EvaluateOptions {
 
 struct PolicyValues {
   std::vector<double> values;  // V^pi per state.
-  LinearSolver solver_used = LinearSolver::kDirect;
+  LinearSolver solver_used = LinearSolver::kDirect;  // kSweeps if BiCGSTAB had to fall back.
   double residual = 0.0;           // sup |(I - g P_pi) V - r_pi|.
   double value_error_bound = 0.0;  // residual / (1 - g).
   int64_t iterations = 0;          // Krylov iterations or sweeps spent.

@@ -4,6 +4,7 @@
 #ifndef MDP_SOLVER_SOLVER_H_
 #define MDP_SOLVER_SOLVER_H_
 
+#include "solver/average_reward.h"
 #include "solver/compare.h"
 #include "solver/evaluate.h"
 #include "solver/finite_horizon.h"
@@ -12,6 +13,7 @@
 #include "solver/options.h"
 #include "solver/policy.h"
 #include "solver/progress.h"
+#include "solver/simulate.h"
 #include "solver/solution.h"
 #include "solver/status.h"
 #include "solver/validate.h"

@@ -18,7 +18,9 @@ With --mdpserve it also runs the CLI:
       solution.schema.json and consistent with the model; `verify EXAMPLE --values TMP` and
       `verify EXAMPLE --policy TMP` (exit 0 = pass, 1 = fail) must print verification
       documents; `evaluate EXAMPLE --policy TMP` (exit 0) an evaluation document; `validate
-      EXAMPLE` (exit 0) an errors document without errors. Every bad model must be refused by
+      EXAMPLE` (exit 0) an errors document without errors; `simulate EXAMPLE --solution TMP
+      --start-distribution START` (exit 0) a simulation document whose mean agrees with the
+      exact V^pi of `evaluate` within its 99.9% interval, reproduced exactly by a rerun. Every bad model must be refused by
       `validate` (non-zero exit, errors document with an error at the expected pointer) and by
       `solve` (non-zero exit, `POINTER: message` lines on stderr); valid and warning-only
       models must be accepted by `validate` (exit 0, no errors).
@@ -45,6 +47,7 @@ SCHEMA_BASE = "https://mdpserve.invalid/schema/"
 SCHEMA_FILES = [
     "model.schema.json", "values.schema.json", "policy.schema.json", "solution.schema.json",
     "verification.schema.json", "evaluation.schema.json", "errors.schema.json",
+    "start.schema.json", "simulation.schema.json",
 ]
 CLI_TIMEOUT = 600  # seconds per CLI run
 
@@ -585,6 +588,65 @@ OTHER_DOCS = [
      {"format": "mdpserve/errors@1", "errors": [], "warnings": []}, False),
 ]
 
+def sample_simulation():
+    return {
+        "format": "mdpserve/simulation@1",
+        "model": {"name": BASE_MODEL["name"], "states": 3, "actions": 2, "state_actions": 4,
+                  "outcomes": 5},
+        "objective": "maximize",
+        "criterion": {"kind": "discounted", "discount": 0.9},
+        "options": {"start": {"a": 1.0}, "episodes": 1000, "max_steps": 1000, "seed": 7,
+                    "confidence": 0.95, "quantiles": [0.05, 0.5, 0.95]},
+        "outcome": "completed",
+        "episodes": 1000,
+        "return": {"mean": 3.2, "std_dev": 1.1, "std_error": 0.035,
+                   "confidence_interval": {"level": 0.95, "low": 3.13, "high": 3.27},
+                   "min": 1.0, "max": 8.4,
+                   "quantiles": [{"level": 0.05, "value": 1.0}, {"level": 0.5, "value": 2.9},
+                                 {"level": 0.95, "value": 5.7}]},
+        "episode_length": {"mean": 4.2, "truncated_episodes": 0},
+        "truncation_bound": 1.7e-45, "truncation_bias_bound": 0.0,
+        "visits": {"total_steps": 4200, "states_visited": 2,
+                   "most_visited": [{"state": "a", "visits": 3000, "frequency": 0.714},
+                                    {"state": "b", "visits": 1200, "frequency": 0.286}],
+                   "unlisted_frequency": 0.0},
+        "simulate_seconds": 0.002,
+    }
+
+
+def cancelled_simulation():
+    doc = sample_simulation()
+    doc.update(outcome="cancelled", episodes=0, truncation_bias_bound=0.0,
+               episode_length={"mean": None, "truncated_episodes": 0},
+               visits={"total_steps": 0, "states_visited": 0, "most_visited": [],
+                       "unlisted_frequency": 0.0})
+    doc["return"] = {"mean": None, "std_dev": None, "std_error": None,
+                     "confidence_interval": {"level": 0.95, "low": None, "high": None},
+                     "min": None, "max": None,
+                     "quantiles": [{"level": 0.5, "value": None}]}
+    return doc
+
+
+OTHER_DOCS += [
+    ("simulation", "simulation.schema.json", sample_simulation(), True),
+    ("simulation cancelled before any episode", "simulation.schema.json",
+     cancelled_simulation(), True),
+    ("simulation with unknown outcome", "simulation.schema.json",
+     changed(sample_simulation(), "outcome", "diverged"), False),
+    ("simulation without return", "simulation.schema.json",
+     dropped(sample_simulation(), "return"), False),
+    ("simulation with confidence 1", "simulation.schema.json",
+     (lambda d: (d["options"].update(confidence=1), d)[1])(sample_simulation()), False),
+    ("start distribution", "start.schema.json",
+     {"format": "mdpserve/start@1", "start": {"a": 0.25, "b": 0.75}}, True),
+    ("start distribution with probability 1.5", "start.schema.json",
+     {"format": "mdpserve/start@1", "start": {"a": 1.5}}, False),
+    ("empty start distribution", "start.schema.json",
+     {"format": "mdpserve/start@1", "start": {}}, False),
+    ("start distribution with unknown member", "start.schema.json",
+     {"format": "mdpserve/start@1", "start": {"a": 1.0}, "seed": 3}, False),
+]
+
 
 # --------------------------------------------------------------------------------------------
 # Parts (a) to (c)
@@ -904,6 +966,64 @@ def check_cli_example(rep, schemas, binary, root, tmp, path):
                     far.append("%s: V^pi %r vs V %r" % (s, v, w))
             rep.check("%s agrees with the solved values within the bounds" % what, not far,
                       "; ".join(far[:3]))
+    check_cli_simulate(rep, schemas, binary, root, tmp, path, model, sol_path)
+
+
+def check_cli_simulate(rep, schemas, binary, root, tmp, path, model, sol_path):
+    """Simulates the solved policy from an even split over the first two non-terminal states
+    and checks the document against the schema, the exact V^pi and a rerun."""
+    name = os.path.basename(path)
+    starts = [s["name"] for s in model["states"] if not s.get("terminal", False)][:2]
+    start_doc = {"format": "mdpserve/start@1", "start": {s: 1.0 / len(starts) for s in starts}}
+    errs = schemas.errors("start.schema.json", start_doc)
+    rep.check("start distribution for %s matches start.schema.json" % name, not errs,
+              "; ".join("%s: %s" % e for e in errs[:3]))
+    start_path = os.path.join(tmp, name.replace(".json", ".start.json"))
+    with open(start_path, "w", encoding="utf-8") as fh:
+        json.dump(start_doc, fh)
+    cmd = [binary, "simulate", path, "--solution", sol_path, "--start-distribution",
+           start_path, "--episodes", "4000", "--seed", "11", "--confidence", "0.999"]
+    what = "simulate %s" % name
+    rc, out, err = run(cmd, root)
+    if not rep.check("%s exits 0" % what, rc == 0, "exit %r; %s" % (rc, short(err))):
+        return
+    doc = validated_output(rep, schemas, what, "simulation.schema.json", out)
+    if doc is None:
+        return
+    rc, exact_out, err = run([binary, "evaluate", path, "--policy", sol_path], root)
+    exact, _ = parse_json(exact_out) if rc == 0 else (None, err)
+    problems = []
+    if doc["outcome"] != "completed" or doc["episodes"] != 4000:
+        problems.append("outcome %r after %r episodes" % (doc["outcome"], doc["episodes"]))
+    if doc["options"]["start"] != start_doc["start"]:
+        problems.append("options.start %r" % doc["options"]["start"])
+    ret, visits = doc["return"], doc["visits"]
+    levels = [q["value"] for q in ret["quantiles"]]
+    if levels != sorted(levels) or not ret["min"] <= levels[0] <= levels[-1] <= ret["max"]:
+        problems.append("quantiles %r outside [min, max] or not increasing" % levels)
+    share = sum(v["frequency"] for v in visits["most_visited"]) + visits["unlisted_frequency"]
+    if abs(share - 1.0) > 1e-9:
+        problems.append("visit frequencies sum to %r" % share)
+    terminal = {s["name"] for s in model["states"] if s.get("terminal", False)}
+    if any(v["state"] in terminal for v in visits["most_visited"]):
+        problems.append("a terminal state is listed as visited")
+    if exact is None:
+        problems.append("evaluate failed: %s" % short(err))
+    else:
+        v_pi = sum(p * exact["values"][s] for s, p in start_doc["start"].items())
+        slack = doc["truncation_bias_bound"]
+        ci = ret["confidence_interval"]
+        if not ci["low"] - slack <= v_pi <= ci["high"] + slack:
+            problems.append("exact V^pi %r outside the interval [%r, %r]"
+                            % (v_pi, ci["low"], ci["high"]))
+    rep.check("%s agrees with the model and with evaluate" % what, not problems,
+              "; ".join(problems[:4]), info="mean %.6g" % ret["mean"])
+    rc, again, err = run(cmd, root)
+    second, _ = parse_json(again) if rc == 0 else (None, err)
+    same = second is not None and \
+        dict(second, simulate_seconds=0) == dict(doc, simulate_seconds=0)
+    rep.check("%s is reproduced by a rerun with the same seed" % what, same,
+              "exit %r; %s" % (rc, short(err)))
 
 
 POINTER_RE = re.compile(r"^(/([^~/]|~[01])*)*$")

@@ -274,6 +274,108 @@ TEST_F(CliTest, EvaluateGivesThePolicyValues) {
   EXPECT_NEAR(doc["values"]["seedling"].get<double>(), 2.4, 1e-9);
 }
 
+// Greenhouse from `dry` under the optimal policy: water (-1), then harvest (+10 at step 1),
+// so every episode returns -1 + 0.5 * 10 = 4 in two steps.
+TEST_F(CliTest, SimulateSolvesAndRollsOutTheOptimalPolicy) {
+  const CliRun run = Run({"simulate", model_, "--episodes", "100"});
+  EXPECT_EQ(run.code, kExitOk) << run.err;
+  EXPECT_EQ(run.err, "");
+  const Json doc = Parse(run.out);
+  EXPECT_EQ(doc["format"], "mdpserve/simulation@1");
+  EXPECT_EQ(doc["outcome"], "completed");
+  EXPECT_EQ(doc["episodes"], 100);
+  EXPECT_EQ(doc["options"]["start"], Json({{"dry", 1.0}}));
+  EXPECT_EQ(doc["return"]["mean"], 4.0);
+  EXPECT_EQ(doc["return"]["std_dev"], 0.0);
+  EXPECT_EQ(doc["episode_length"]["mean"], 2.0);
+  EXPECT_EQ(doc["episode_length"]["truncated_episodes"], 0);
+  EXPECT_EQ(doc["visits"]["total_steps"], 200);
+  EXPECT_EQ(doc["visits"]["most_visited"],
+            Json::parse(R"([{"state": "dry", "visits": 100, "frequency": 0.5},
+                            {"state": "wet", "visits": 100, "frequency": 0.5}])"));
+}
+
+// Waiting when dry: V(dry) = 0.8 (see kWaitWhenDry), inside the 99.9% interval; the seed alone
+// decides the numbers. Episodes never end (dry and seedling alternate), so each is cut, at a
+// cost below 0.5^60 * 2 / 0.5.
+TEST_F(CliTest, SimulateIsReproducibleWithASeed) {
+  const std::string policy = Write("policy.json", kWaitWhenDry);
+  auto simulate = [&](const std::string& seed) {
+    const CliRun run = Run({"simulate", model_, "--policy", policy, "--episodes", "4000",
+                            "--max-steps", "60", "--confidence", "0.999", "--seed", seed});
+    EXPECT_EQ(run.err, "");  // No truncation warning: the cut is negligible.
+    EXPECT_EQ(run.code, kExitOk) << run.err;
+    Json doc = Parse(run.out);
+    doc.erase("simulate_seconds");
+    return doc;
+  };
+  const Json first = simulate("5");
+  EXPECT_EQ(first["options"]["seed"], 5);
+  EXPECT_LE(first["return"]["confidence_interval"]["low"].get<double>(), 0.8);
+  EXPECT_GE(first["return"]["confidence_interval"]["high"].get<double>(), 0.8);
+  EXPECT_EQ(simulate("5"), first);
+  EXPECT_NE(simulate("6")["return"]["mean"], first["return"]["mean"]);
+}
+
+TEST_F(CliTest, SimulateReadsStartStatesAndDistributions) {
+  const CliRun named = Run({"simulate", model_, "--start", "seedling", "wet", "--episodes", "10"});
+  EXPECT_EQ(named.code, kExitOk) << named.err;
+  EXPECT_EQ(Parse(named.out)["options"]["start"], Json({{"seedling", 0.5}, {"wet", 0.5}}));
+  const std::string start = Write("start.json", R"({"format": "mdpserve/start@1",
+      "start": {"dry": 0.25, "done": 0.75}})");
+  const CliRun file = Run({"simulate", model_, "--start-distribution", start, "--episodes", "10"});
+  EXPECT_EQ(file.code, kExitOk) << file.err;
+  EXPECT_EQ(Parse(file.out)["options"]["start"], Json({{"dry", 0.25}, {"done", 0.75}}));
+
+  const CliRun unknown = Run({"simulate", model_, "--start", "attic"});
+  EXPECT_EQ(unknown.code, kExitBadInput);
+  EXPECT_NE(unknown.err.find("--start: the model has no state 'attic'"), std::string::npos)
+      << unknown.err;
+  const std::string bad = Write("bad-start.json", R"({"format": "mdpserve/start@1",
+      "start": {"dry": 0.5, "wet": 0.4}})");
+  const CliRun bad_sum = Run({"simulate", model_, "--start-distribution", bad});
+  EXPECT_EQ(bad_sum.code, kExitBadInput);
+  EXPECT_NE(bad_sum.err.find(bad + ": /start: probabilities sum to 0.9"), std::string::npos)
+      << bad_sum.err;
+  EXPECT_EQ(bad_sum.out, "");
+}
+
+TEST_F(CliTest, SimulateRefusesBadOptions) {
+  const std::string solution = SolveToFile();
+  for (const std::vector<std::string>& args :
+       {std::vector<std::string>{"--confidence", "1"}, {"--episodes", "0"},
+        {"--quantiles", "0.5,1.5"}, {"--policy", solution, "--solution", solution}}) {
+    std::vector<std::string> argv = {"simulate", model_};
+    argv.insert(argv.end(), args.begin(), args.end());
+    const CliRun run = Run(argv);
+    EXPECT_EQ(run.code, kExitBadInput) << args[0];
+    EXPECT_NE(run.err, "") << args[0];
+    EXPECT_EQ(run.out, "") << args[0];
+  }
+}
+
+TEST_F(CliTest, SimulateProgressGoesToStderr) {
+  const CliRun run = Run({"simulate", model_, "--episodes", "200", "--progress"});
+  EXPECT_EQ(run.code, kExitOk) << run.err;
+  EXPECT_EQ(run.err.rfind("simulate: 5% (10/200 episodes, ", 0), 0u) << run.err;
+  EXPECT_NE(run.err.find("simulate: 100% (200/200 episodes, "), std::string::npos) << run.err;
+  EXPECT_EQ(Parse(run.out)["episodes"], 200);
+}
+
+// Cut after one step, the wait policy may miss up to g * max|r| / (1 - g) = 0.5 * 10 / 0.5 = 10
+// per episode (10 for harvesting, the largest reward the policy may earn): far more than the
+// interval's width, so the command warns (and still succeeds).
+TEST_F(CliTest, SimulateWarnsWhenCutEpisodesMayBiasTheMean) {
+  const std::string policy = Write("policy.json", kWaitWhenDry);
+  const CliRun run = Run({"simulate", model_, "--policy", policy, "--max-steps", "1"});
+  EXPECT_EQ(run.code, kExitOk) << run.err;
+  EXPECT_NE(run.err.find("warning: 10000 of 10000 episodes were cut at --max-steps 1; the mean "
+                         "may be off by up to 10 "),
+            std::string::npos)
+      << run.err;
+  EXPECT_EQ(Parse(run.out)["truncation_bias_bound"], 10.0);
+}
+
 TEST_F(CliTest, UnknownOptionIsBadInput) {
   const CliRun run = Run({"solve", model_, "--frobnicate"});
   EXPECT_EQ(run.code, kExitBadInput);

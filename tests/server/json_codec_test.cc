@@ -336,6 +336,69 @@ TEST_F(JsonCodecTest, EncodeEvaluationGivesThePolicyValues) {
   EXPECT_EQ(doc["residual"], values->residual);
 }
 
+TEST_F(JsonCodecTest, EncodeSimulationListsTheMostVisitedStatesAndTheRest) {
+  SimulationReport report;
+  report.episodes = 3;
+  report.total_steps = 10;
+  report.visits = {2, 5, 3, 0};  // dry, wet, seedling, done.
+  report.visit_frequency = {0.2, 0.5, 0.3, 0.0};
+  report.quantiles = {{0.5, 1.0}};
+  SimulateOptions options;
+  options.start = {{kDry, 0.5}, {kWet, 0.25}, {kDry, 0.25}};
+  const Json doc = EncodeSimulation(model_, options, report, 2);
+  EXPECT_EQ(doc["format"], "mdpserve/simulation@1");
+  EXPECT_EQ(doc["options"]["start"], Json({{"dry", 0.75}, {"wet", 0.25}}));
+  EXPECT_EQ(doc["visits"]["states_visited"], 3);
+  ASSERT_EQ(doc["visits"]["most_visited"].size(), 2u);
+  EXPECT_EQ(doc["visits"]["most_visited"][0]["state"], "wet");
+  EXPECT_EQ(doc["visits"]["most_visited"][1]["state"], "seedling");
+  EXPECT_DOUBLE_EQ(doc["visits"]["unlisted_frequency"].get<double>(), 0.2);
+}
+
+TEST_F(JsonCodecTest, EncodeSimulationWritesNullForUndefinedStatistics) {
+  SimulationReport report;
+  report.outcome = SimulationOutcome::kCancelled;
+  report.mean = report.std_dev = report.ci_low = report.ci_high = std::nan("");
+  report.quantiles = {{0.5, std::nan("")}};
+  report.visits.assign(model_.num_states(), 0);
+  report.visit_frequency.assign(model_.num_states(), 0.0);
+  SimulateOptions options;
+  options.start = {{kDry, 1.0}};
+  const Json doc = EncodeSimulation(model_, options, report);
+  EXPECT_EQ(doc["outcome"], "cancelled");
+  EXPECT_TRUE(doc["return"]["mean"].is_null());
+  EXPECT_TRUE(doc["return"]["confidence_interval"]["low"].is_null());
+  EXPECT_TRUE(doc["return"]["quantiles"][0]["value"].is_null());
+  EXPECT_EQ(doc["visits"]["most_visited"], Json::array());
+  EXPECT_EQ(doc["visits"]["unlisted_frequency"], 0.0);
+}
+
+TEST_F(JsonCodecTest, DecodeStartDistributionReadsStatesAndProbabilities) {
+  Decoded<std::vector<StartWeight>> start = DecodeStartDistribution(
+      model_, R"({"format": "mdpserve/start@1", "start": {"wet": 0.75, "done": 0.25}})");
+  ASSERT_TRUE(start.ok()) << Describe(start.errors);
+  ASSERT_EQ(start.value.size(), 2u);
+  double wet = 0.0;
+  for (const StartWeight& w : start.value) wet += w.state == kWet ? w.probability : 0.0;
+  EXPECT_EQ(wet, 0.75);
+}
+
+TEST_F(JsonCodecTest, DecodeStartDistributionReportsWhereItIsWrong) {
+  Decoded<std::vector<StartWeight>> bad = DecodeStartDistribution(
+      model_, R"({"start": {"attic": 0.5, "dry": 1.5, "wet": "half"}})");
+  EXPECT_TRUE(HasIssue(bad.errors, "/start/attic", "no state 'attic'")) << Describe(bad.errors);
+  EXPECT_TRUE(HasIssue(bad.errors, "/start/dry", "between 0 and 1")) << Describe(bad.errors);
+  EXPECT_TRUE(HasIssue(bad.errors, "/start/wet", "between 0 and 1")) << Describe(bad.errors);
+  Decoded<std::vector<StartWeight>> empty = DecodeStartDistribution(model_, R"({"start": {}})");
+  EXPECT_TRUE(HasIssue(empty.errors, "/start", "at least one state")) << Describe(empty.errors);
+  Decoded<std::vector<StartWeight>> short_sum =
+      DecodeStartDistribution(model_, R"({"start": {"dry": 0.5}})");
+  EXPECT_TRUE(HasIssue(short_sum.errors, "/start", "sum to 0.5")) << Describe(short_sum.errors);
+  Decoded<std::vector<StartWeight>> format = DecodeStartDistribution(
+      model_, R"({"format": "mdpserve/policy@1", "start": {"dry": 1}})");
+  EXPECT_TRUE(HasIssue(format.errors, "/format", "mdpserve/start@1")) << Describe(format.errors);
+}
+
 TEST(JsonCodecIssuesTest, EncodeIssuesListsErrorsWarningsAndTheRest) {
   const Json doc = EncodeIssues(
       {{"/objective", "must be \"maximize\" or \"minimize\""}, {"", "the document is empty"}},

@@ -101,6 +101,35 @@ TEST(EvaluateTest, AutoPicksDirectForSmallAndKrylovForLarge) {
   EXPECT_EQ(direct->solver_used, LinearSolver::kDirect);
 }
 
+// A long corridor: each state steps to the next and earns 1, the last is terminal. Closed
+// form V(k) = (1 - g^(n-1-k)) / (1 - g). Chain-shaped systems can break BiCGSTAB down; the
+// evaluation must still be right (falling back to sweeps if it does).
+TEST(EvaluateTest, ChainShapedPoliciesEvaluateCorrectlyWithTheKrylovSolver) {
+  const int n = 5000;
+  const double g = 0.99;
+  ModelSpec spec;
+  spec.criterion.discount = g;
+  spec.action_names = {"step"};
+  for (int k = 0; k < n; ++k) {
+    spec.AddState("c" + std::to_string(k), k == n - 1);
+    if (k + 1 < n) {
+      spec.AddStateAction(0, 0.0);
+      spec.AddOutcome(k + 1, 1.0, 1.0);
+    }
+  }
+  const Model m = testing::MustBuild(spec);
+  std::vector<RowId> rows(n, -1);
+  for (int k = 0; k + 1 < n; ++k) rows[k] = k;
+  EvaluateOptions options;
+  options.solver = LinearSolver::kBiCgStab;
+  Result<PolicyValues> v = EvaluatePolicy(m, DeterministicPolicy(m, rows), options);
+  ASSERT_OK(v);
+  for (int k = 0; k < n; k += 499) {
+    EXPECT_NEAR(v->values[k], (1.0 - std::pow(g, n - 1 - k)) / (1.0 - g), 1e-8) << k;
+  }
+  EXPECT_LE(v->value_error_bound, 1e-8);
+}
+
 TEST(EvaluateTest, MalformedPolicyIsRefused) {
   SpecWriter w(0.5, Objective::kMaximize);
   w.States({"S"}, {});

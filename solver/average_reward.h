@@ -1,0 +1,186 @@
+// Average-reward solvers: the long-run reward (or cost) per step of a finite MDP, found by
+// relative value iteration or by policy iteration, with the chain-structure analysis both
+// use. Pure functions of (model, options): thread-safe on immutable models, no global state;
+// results are plain values the caller owns. The model's discount is ignored, and a terminal
+// state counts as absorbing with reward 0 per step.
+//
+// The criterion. The gain of a stationary policy pi from state s is
+//   g^pi(s) = lim_N (1/N) E[sum_{t<N} r(S_t, A_t) | S_0 = s];
+// the optimal gain g*(s) is its maximum over policies (minimum for Objective::kMinimize).
+// When g* is the same in every state (as in unichain models), the optimality equation
+//   g + h(s) = best_a q(s, a),   q(s, a) = r(s, a) + sum_s' p(s' | s, a) h(s')        (OE)
+// has solutions (g*, h); h is a bias, or relative value, vector ("best" is max or min).
+// Puterman 1994, Markov Decision Processes, ch. 8 (from memory for section numbers).
+//
+// The gain bracket. For any vector v let d(s) = best_a [r(s, a) + sum p v] - v(s), with
+// d(s) = 0 at terminal states. Then, in every finite model (unichain or not),
+//   min_s d(s) <= g*(s') <= max_s d(s)   for every state s'.
+// Proof for kMaximize (kMinimize is the mirror image): the greedy policy G of v has
+// r_G + P_G v - v = d; applying its limiting matrix P*_G (rows sum to 1, P*_G P_G = P*_G)
+// gives g^G = P*_G d >= min d, and g* >= g^G. Every deterministic stationary pi has
+// r_pi + P_pi v - v <= d, so g^pi = P*_pi (r_pi + P_pi v - v) <= max d, and in a finite model
+// some deterministic stationary policy is gain-optimal (Puterman 1994, ch. 9, from memory).
+// For unichain models this is the bound Puterman gives for (relative) value iteration
+// (sec. 8.5, from memory). The bracket's width is at least max g* - min g*, so it can shrink
+// to 0 only when g* is constant. Reported: gain = the bracket's midpoint, so
+// |gain - g*(s)| <= (gain_upper - gain_lower) / 2 for every s.
+//
+// The greedy policy. The same argument bounds what a policy picking from q loses: if at every
+// state it takes a row whose q trails the best by at most t, its gain is within
+// (gain_upper - gain_lower) + t of g* from every start state.
+//
+// Chain structure. A policy's recurrent classes are the closed strongly connected components
+// of its transition graph (no edge leaves them; a terminal state is a class by itself). With
+// two or more classes the model is multichain and the gain may differ between states. The
+// solvers return kFailedPrecondition, naming the classes, when they can show that it does;
+// multichain models whose optimal gain is the same everywhere are solved normally, with
+// multichain_suspected set and the classes listed. A per-state gain is not computed.
+#ifndef MDP_SOLVER_AVERAGE_REWARD_H_
+#define MDP_SOLVER_AVERAGE_REWARD_H_
+
+#include <array>
+#include <cstdint>
+#include <span>
+#include <string>
+#include <string_view>
+#include <vector>
+
+#include "solver/model.h"
+#include "solver/options.h"
+#include "solver/progress.h"
+#include "solver/solution.h"
+#include "solver/status.h"
+
+namespace mdp {
+
+enum class AverageRewardMethod {
+  kRelativeValueIteration,  // RelativeValueIteration() below.
+  kPolicyIteration,         // AverageRewardPolicyIteration() below.
+};
+
+// "relative_value_iteration" or "policy_iteration".
+std::string_view AverageRewardMethodName(AverageRewardMethod method);
+
+struct AverageRewardOptions {
+  // Target width of the gain bracket (reward units per step); converged iff reached.
+  double tolerance = 1e-8;
+  int64_t max_iterations = 100000;  // Outcome kIterationLimit when reached.
+  double time_limit_seconds = 0.0;  // 0 means no limit; else outcome kTimeLimit.
+  // Relative value iteration only: tau of the aperiodicity transformation
+  //   p'(s' | s, a) = tau [s' = s] + (1 - tau) p(s' | s, a),   r' = r,
+  // in [0, 0.99]; 0 turns it off. Plain relative value iteration can oscillate for ever on a
+  // periodic chain (two states that swap deterministically: d alternates between the two
+  // rewards); with tau > 0 every policy's chain has self-loops and is aperiodic. The
+  // transformed model has the same gain, and its bias is h / (1 - tau): from
+  // g + h' = r + tau h' + (1 - tau) P h' follows g + (1 - tau) h' = r + P (1 - tau) h'. The
+  // solver converts back, so bias and q always refer to the original model. Larger tau
+  // slows convergence; smaller tau damps oscillation less.
+  double aperiodicity = 0.5;
+  double tie_tolerance = 1e-9;  // Extra slack (reward units) when grouping tied actions.
+  int threads = 1;              // Threads for sweeps; 0 = all cores.
+  StateId reference_state = 0;  // The reported bias is 0 here.
+};
+
+// Bounds of the numeric AverageRewardOptions fields, in declaration order (reference_state is
+// further limited to the model's states).
+inline constexpr std::array<OptionBound, 7> kAverageRewardOptionBounds = {{
+    {"tolerance", "target width of the bracket around the optimal gain, in reward units per step",
+     1e-8, 1e-14, 1e6},
+    {"max_iterations", "iteration cap; the outcome says iteration_limit when reached", 100000, 1,
+     1e9},
+    {"time_limit_seconds", "wall-clock limit in seconds, 0 for none", 0, 0, 1e7},
+    {"aperiodicity",
+     "relative value iteration: weight of the self-loop mixed into every "
+     "transition so periodic chains converge, 0 for none",
+     0.5, 0, 0.99},
+    {"tie_tolerance", "extra slack when grouping actions as tied, in reward units", 1e-9, 0, 1e6},
+    {"threads", "threads for sweeps, 0 for all cores", 1, 0, 256},
+    {"reference_state", "index of the state whose bias is 0", 0, 0, 2147483647},
+}};
+
+// Returns kInvalidArgument naming the field if an option is out of its bounds or
+// reference_state is not a state of `m`.
+Status CheckAverageRewardOptions(const Model& m, const AverageRewardOptions& options);
+
+struct AverageRewardSolution {
+  AverageRewardMethod method = AverageRewardMethod::kPolicyIteration;
+  AverageRewardOptions options;
+  SolveOutcome outcome = SolveOutcome::kConverged;  // kConverged iff width <= tolerance.
+  int64_t iterations = 0;  // Relative value iteration: sweeps; policy iteration: improvements.
+  int64_t sweeps = 0;      // Full passes over the model, including the final one.
+  double solve_seconds = 0.0;
+
+  // See the header comment: gain_lower <= g*(s) <= gain_upper for every s, in any model;
+  // gain is the midpoint.
+  double gain = 0.0;
+  double gain_lower = 0.0;
+  double gain_upper = 0.0;
+
+  // A bias: h with best_a q(s, a) - h(s) in [gain_lower, gain_upper] for every non-terminal
+  // s, so it solves (OE) up to the bracket width; bias[reference_state] = 0. (OE) says
+  // nothing about a terminal state's own bias. When (OE) has solutions that differ by more
+  // than a constant (e.g. several optimal policies with different recurrent classes) the two
+  // methods may return different ones.
+  StateId reference_state = 0;
+  std::vector<double> bias;  // Per state.
+  std::vector<double> q;     // Per row: r(s, a) + sum p h (relative action values).
+  // Per state: the first row (document order) whose q is within options.tie_tolerance of the
+  // best q; -1 for terminal states.
+  std::vector<RowId> best_row;
+  std::vector<uint8_t> optimal_row;  // Per row: 1 iff q is within tie_tolerance of the best.
+  std::vector<double> action_gap;    // Per state: |best q - second best q|; NaN with < 2 rows.
+  int64_t tied_states = 0;           // States whose optimal set has two or more rows.
+  // options.tie_tolerance + (gain_upper - gain_lower): a policy taking only rows in the
+  // optimal sets has gain within 2 (gain_upper - gain_lower) + options.tie_tolerance of g*
+  // (plus rounding, 1e-12 max(1, |best q|)), by the argument of the header comment.
+  double tie_tolerance = 0.0;
+  // g* - g^pi(s) <= policy_loss_bound for every s, pi = the best_row policy (kMinimize:
+  // g^pi(s) - g*(s)). Equals the bracket width plus the pick's slack.
+  double policy_loss_bound = 0.0;
+
+  // Chain structure of the best_row policy.
+  bool multichain_suspected = false;                    // Two or more recurrent classes.
+  std::vector<std::vector<StateId>> recurrent_classes;  // Sorted; ordered by first state.
+  std::string chain_structure_note;                     // Plain words; empty if unichain.
+};
+
+// Relative value iteration on the aperiodicity-transformed model (options.aperiodicity):
+// v <- T'v - (T'v)(reference_state), stopping when the bracket of v (the span of T'v - v)
+// is at most options.tolerance, or at a limit, on cancel, or when the width stalls.
+// With aperiodicity > 0 it converges on unichain models (Puterman 1994, sec. 8.5, from
+// memory); with 0 it may stall on periodic chains, the bracket still valid.
+// Returns kInvalidArgument for bad options and kFailedPrecondition when it finds the
+// optimal gain differs between states (see the .cc for the test used).
+// `progress` and `cancel` may be null; progress is called once per iteration from this thread.
+Result<AverageRewardSolution> RelativeValueIteration(const Model& m,
+                                                     const AverageRewardOptions& options,
+                                                     const ProgressFn* progress,
+                                                     const CancelToken* cancel);
+
+// Policy iteration for the average criterion. Each policy is evaluated exactly, one
+// recurrent class at a time: g + h(s) = r_pi(s) + sum P_pi h on the class with h = 0 at its
+// smallest state (a sparse system in which g takes that state's unknown), then the transient
+// states (sparse LU up to a few thousand states, BiCGSTAB beyond). Improvement first seeks a
+// better gain (best_a sum p g) and, when no state finds one, a better q among the actions
+// that keep the gain, keeping the current action unless another beats it by more than a
+// small slack: Howard's method, in its multichain form (Puterman 1994, sec. 9.2, from
+// memory), which reduces to the unichain method when every policy has one class.
+// Returns kInvalidArgument for bad options; kFailedPrecondition, naming the classes and
+// their gains, if the final policy's recurrent classes earn different gains;
+// kResourceExhausted if memory runs out; kInternal if a linear solve fails. A run stopped by
+// a limit or cancel returns the last evaluated policy's bias, with a valid bracket.
+// options.aperiodicity is not used. `progress` (may be null) is called once per improvement.
+Result<AverageRewardSolution> AverageRewardPolicyIteration(const Model& m,
+                                                           const AverageRewardOptions& options,
+                                                           const ProgressFn* progress,
+                                                           const CancelToken* cancel);
+
+// Recurrent classes of the Markov chain of the deterministic policy `rows` (rows[s] is a row
+// of s, or -1 exactly for terminal states): the closed strongly connected components of its
+// transition graph, each sorted, ordered by their smallest state. Iterative (no recursion).
+// REQUIRES: rows.size() == m.num_states().
+std::vector<std::vector<StateId>> RecurrentClasses(const Model& m, std::span<const RowId> rows);
+
+}  // namespace mdp
+
+#endif  // MDP_SOLVER_AVERAGE_REWARD_H_
