@@ -136,6 +136,94 @@ Result<VerifyRequest> DecodeVerifyRequest(std::string_view body) {
   return request;
 }
 
+Decoded<SimulateRequest> DecodeSimulateRequest(const Model& m, std::string_view body) {
+  Decoded<SimulateRequest> out;
+  JsonReadResult read = ReadJson(body, JsonReadOptions{});
+  if (!read.errors.empty()) {
+    out.errors = std::move(read.errors);
+    return out;
+  }
+  const Json& root = read.root;
+  if (!root.is_object()) {
+    out.errors.push_back({"", "the request must be a JSON object"});
+    return out;
+  }
+  static const char* kKnown[] = {"start", "policy", "solution_id", "episodes", "max_steps",
+                                 "seed", "confidence", "quantiles", "top_states"};
+  for (auto it = root.begin(); it != root.end(); ++it) {
+    if (std::none_of(std::begin(kKnown), std::end(kKnown),
+                     [&](const char* k) { return it.key() == k; })) {
+      out.errors.push_back({"/" + EscapePointerToken(it.key()), "unknown field"});
+    }
+  }
+  SimulateOptions& o = out.value.options;
+  auto integer = [&](const char* key, int64_t low, int64_t high, int64_t* target) {
+    auto it = root.find(key);
+    if (it == root.end()) return;
+    if (!it->is_number_integer() || it->get<int64_t>() < low || it->get<int64_t>() > high) {
+      out.errors.push_back({std::string("/") + key, "must be an integer from " +
+                                                        std::to_string(low) + " to " +
+                                                        std::to_string(high)});
+      return;
+    }
+    *target = it->get<int64_t>();
+  };
+  integer("episodes", 1, 100'000'000, &o.episodes);
+  integer("max_steps", 1, 1'000'000'000, &o.max_steps);
+  int64_t top = out.value.listed_states;
+  integer("top_states", 0, 100'000, &top);
+  out.value.listed_states = static_cast<int>(top);
+  if (auto it = root.find("seed"); it != root.end()) {
+    if (!it->is_number_unsigned()) {
+      out.errors.push_back({"/seed", "must be a non-negative integer"});
+    } else {
+      o.seed = it->get<uint64_t>();
+    }
+  }
+  if (auto it = root.find("confidence"); it != root.end()) {
+    if (!it->is_number() || !(it->get<double>() > 0.0 && it->get<double>() < 1.0)) {
+      out.errors.push_back({"/confidence", "must be a number strictly between 0 and 1"});
+    } else {
+      o.confidence = it->get<double>();
+    }
+  }
+  if (auto it = root.find("quantiles"); it != root.end()) {
+    o.quantiles.clear();
+    if (!it->is_array() || it->size() > 100) {
+      out.errors.push_back({"/quantiles", "must be an array of at most 100 levels"});
+    } else {
+      for (size_t i = 0; i < it->size(); ++i) {
+        const Json& q = (*it)[i];
+        if (!q.is_number() || !(q.get<double>() >= 0.0 && q.get<double>() <= 1.0)) {
+          out.errors.push_back({"/quantiles/" + std::to_string(i), "must be between 0 and 1"});
+        } else {
+          o.quantiles.push_back(q.get<double>());
+        }
+      }
+    }
+  }
+  if (auto it = root.find("solution_id"); it != root.end()) {
+    if (!it->is_string()) {
+      out.errors.push_back({"/solution_id", "must be a string"});
+    } else {
+      out.value.solution_id = it->get<std::string>();
+    }
+  }
+  if (root.contains("start")) {
+    Decoded<std::vector<StartWeight>> start = DecodeStartDistribution(m, body);
+    for (auto& e : start.errors) out.errors.push_back(std::move(e));
+    o.start = std::move(start.value);
+  } else if (m.num_states() > 0) {
+    o.start = {StartWeight{0, 1.0}};
+  }
+  if (root.contains("policy")) {
+    Decoded<Policy> policy = DecodePolicy(m, body);
+    for (auto& e : policy.errors) out.errors.push_back(std::move(e));
+    out.value.policy = std::move(policy.value);
+  }
+  return out;
+}
+
 Json EncodeSolutionReport(const Model& m, const Solution& solution,
                           const std::string& solution_id) {
   Json report = EncodeSolution(m, solution, SolutionDetail::kSummary);

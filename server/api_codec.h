@@ -9,6 +9,7 @@
 #include <string_view>
 #include <vector>
 
+#include "server/json_codec.h"
 #include "server/json_reader.h"
 #include "server/planning_service.h"
 #include "server/store.h"
@@ -35,6 +36,18 @@ struct VerifyRequest {
 };
 // A values or policy document, optionally with "tolerance", "worst" and "solution_id".
 Result<VerifyRequest> DecodeVerifyRequest(std::string_view body);
+
+// A simulation request (POST /v1/models/{id}/simulations): options, an optional start
+// distribution ("start": {"<state>": p}; default the model's first state), an optional
+// candidate "policy" (default the greedy policy of the solution "solution_id", or of the
+// current solution) and "top_states". Every problem is listed with its pointer.
+struct SimulateRequest {
+  SimulateOptions options;
+  std::optional<Policy> policy;
+  std::string solution_id;
+  int listed_states = 20;
+};
+Decoded<SimulateRequest> DecodeSimulateRequest(const Model& m, std::string_view body);
 
 // The report of a solution: everything EncodeSolution gives except the per-state tables,
 // plus its "id".

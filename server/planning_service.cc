@@ -275,7 +275,9 @@ void PlanningService::RunJob(const std::shared_ptr<ActiveJob>& job) {
   const auto started = std::chrono::steady_clock::now();
   if (!skip) {
     Persist(*job);
-    status = job->record.kind == "solve" ? RunSolve(*job) : RunVerify(*job);
+    status = job->record.kind == "solve"      ? RunSolve(*job)
+             : job->record.kind == "simulate" ? RunSimulation(*job)
+                                              : RunVerify(*job);
   }
   {
     std::lock_guard<std::mutex> lock(job->mu);
@@ -352,6 +354,66 @@ Status PlanningService::RunVerify(ActiveJob& job) {
   if (!done->errors.empty()) return InvalidArgumentError(done->errors.front().message);
   std::lock_guard<std::mutex> lock(job.mu);
   job.record.result_json = std::move(done->report_json);
+  return Status::Ok();
+}
+
+Result<SimulateStart> PlanningService::StartSimulation(const std::string& model_id,
+                                                      std::string_view body) {
+  if (!accepting()) return Status(StatusCode::kUnavailable, "the service is shutting down");
+  Result<std::shared_ptr<const Model>> model = LoadModel(model_id);
+  if (!model.ok()) return model.status();
+  Decoded<SimulateRequest> request = DecodeSimulateRequest(**model, body);
+  SimulateStart start;
+  if (!request.ok()) {
+    start.errors = std::move(request.errors);
+    return start;
+  }
+  if (!request.value.policy) {
+    Result<Plan> plan = GetPlan(model_id, request.value.solution_id);
+    if (!plan.ok()) return plan.status();
+  }
+  auto job = std::make_shared<ActiveJob>();
+  job->record.id = NewJobId();
+  job->record.kind = "simulate";
+  job->record.model_id = model_id;
+  job->record.request_json = std::string(body);
+  job->record.status = JobStatus::kQueued;
+  job->record.created_at = NowRfc3339();
+  std::lock_guard<std::mutex> lock(mu_);
+  MDP_RETURN_IF_ERROR(Enqueue(job));
+  start.job = ViewOf(*job);
+  return start;
+}
+
+Status PlanningService::RunSimulation(ActiveJob& job) {
+  Result<std::shared_ptr<const Model>> model = LoadModel(job.record.model_id);
+  if (!model.ok()) return model.status();
+  Decoded<SimulateRequest> request = DecodeSimulateRequest(**model, job.record.request_json);
+  if (!request.ok()) return InvalidArgumentError(request.errors.front().message);
+  Policy policy;
+  if (request.value.policy) {
+    policy = *request.value.policy;
+  } else {
+    Result<Plan> plan = GetPlan(job.record.model_id, request.value.solution_id);
+    if (!plan.ok()) return plan.status();
+    policy = GreedyPolicy(**model, *plan->solution);
+  }
+  ProgressFn progress = [&job](const Progress& p) {
+    std::lock_guard<std::mutex> lock(job.mu);
+    job.progress = p;
+    job.phase = std::string(p.phase);
+  };
+  Result<SimulationReport> report =
+      Simulate(**model, policy, request.value.options, &progress, &job.cancel);
+  if (!report.ok()) return report.status();
+  if (report->outcome == SimulationOutcome::kCancelled) {
+    return Status(StatusCode::kCancelled, "cancelled");
+  }
+  std::string result =
+      EncodeSimulation(**model, request.value.options, *report, request.value.listed_states)
+          .dump();
+  std::lock_guard<std::mutex> lock(job.mu);
+  job.record.result_json = std::move(result);
   return Status::Ok();
 }
 

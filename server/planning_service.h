@@ -78,6 +78,12 @@ struct VerifyStart {
   std::vector<DocumentIssue> errors;  // Non-empty: the candidate is not valid for the model.
 };
 
+// A simulation request accepted as a job, or the errors that refuse it.
+struct SimulateStart {
+  std::optional<JobView> job;
+  std::vector<DocumentIssue> errors;  // Non-empty: the request does not fit the model.
+};
+
 class PlanningService {
  public:
   PlanningService(Store& store, ServiceOptions options);
@@ -121,6 +127,11 @@ class PlanningService {
   Result<ComparisonReport> Compare(const std::string& model_a, const std::string& solution_a,
                                    const std::string& model_b, const std::string& solution_b);
 
+  // Queues a Monte Carlo simulation job (api_codec.h DecodeSimulateRequest for the body);
+  // its result is the simulation document. kFailedPrecondition if no policy is given and the
+  // model has no solution yet.
+  Result<SimulateStart> StartSimulation(const std::string& model_id, std::string_view body);
+
   // Verifies a candidate (a values or policy document, optionally with "tolerance").
   Result<VerifyStart> Verify(const std::string& model_id, std::string_view body);
 
@@ -139,6 +150,7 @@ class PlanningService {
   void RunJob(const std::shared_ptr<ActiveJob>& job);
   Status RunSolve(ActiveJob& job);
   Status RunVerify(ActiveJob& job);
+  Status RunSimulation(ActiveJob& job);
   Result<VerifyStart> VerifyNow(const std::string& model_id, std::string_view body);
   void Persist(ActiveJob& job);
   JobView ViewOf(ActiveJob& job);

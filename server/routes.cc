@@ -239,6 +239,19 @@ void Compare(HttpContext& ctx, const Request& req, Response& res) {
   WriteJson(res, 200, EncodeComparison(*report).dump());
 }
 
+void StartSimulation(HttpContext& ctx, const Request& req, Response& res) {
+  if (!RequireJsonBody(req, res)) return;
+  Result<SimulateStart> start = ctx.service.StartSimulation(req.matches[1], req.body);
+  if (!start.ok()) return WriteProblem(res, start.status());
+  if (!start->errors.empty()) {
+    return WriteProblem(
+        res, MakeProblem(InvalidArgumentError("the simulation request does not fit the model"),
+                         ProblemKind::kInvalidCandidate, start->errors));
+  }
+  res.set_header("Location", "/v1/jobs/" + start->job->record.id);
+  WriteJson(res, 202, EncodeJobView(*start->job).dump());
+}
+
 void Healthz(HttpContext&, const Request&, Response& res) {
   WriteJson(res, 200, R"({"status":"ok"})");
 }
@@ -282,6 +295,8 @@ const std::vector<Route>& ApiRoutes() {
        GetSolutionTables},
       {"POST", "/v1/models/{id}/verify", "/v1/models/([0-9a-zA-Z_-]{1,64})/verify", Verify},
       {"GET", "/v1/models/{id}/compare", "/v1/models/([0-9a-zA-Z_-]{1,64})/compare", Compare},
+      {"POST", "/v1/models/{id}/simulations", "/v1/models/([0-9a-zA-Z_-]{1,64})/simulations",
+       StartSimulation},
       {"POST", "/v1/jobs", "/v1/jobs", StartSolve},
       {"GET", "/v1/jobs", "/v1/jobs", ListJobs},
       {"GET", "/v1/jobs/{id}", "/v1/jobs/([0-9a-zA-Z_-]{1,64})", GetJob},

@@ -852,6 +852,27 @@ def scenario_a(api, client, root, m):
                 name="a: compare without 'with'")
     client.call("GET", "/v1/models/{id}/compare", {"id": pump_id}, {"with": "nosuchmodel"},
                 expect=404, name="a: compare with an unknown model")
+    # A Monte Carlo simulation job of the current (value iteration) solution's policy from
+    # worn_peak: its mean must cover the exact value within its 99.9% interval.
+    resp = client.call("POST", "/v1/models/{id}/simulations", {"id": pump_id},
+                       body={"start": {"worn_peak": 1.0}, "episodes": 4000, "max_steps": 2000,
+                             "seed": 7, "confidence": 0.999}, expect=202,
+                       name="a: start a simulation")
+    if resp.status == 202:
+        job = wait_job(client, resp.json()["id"], ("succeeded", "failed", "cancelled"))
+        result = (job or {}).get("result") or {}
+        exact = refs[pump_id].state("worn_peak")["value"]
+        R.check("a: simulation succeeded and its interval covers the exact value",
+                job is not None and job["status"] == "succeeded" and
+                result.get("format") == "mdpserve/simulation@1" and
+                result["return"]["confidence_interval"]["low"] <= exact <=
+                result["return"]["confidence_interval"]["high"],
+                "%s exact %s" % (short(json.dumps(result)), exact))
+    client.call("POST", "/v1/models/{id}/simulations", {"id": pump_id},
+                body={"start": {"attic": 1.0}}, expect=422,
+                name="a: simulate from an unknown state")
+    client.call("POST", "/v1/models/{id}/simulations", {"id": pump_id},
+                body={"episodes": 0}, expect=422, name="a: simulate zero episodes")
 
 
 # --------------------------------------------------------------------------------------------
