@@ -61,6 +61,11 @@ std::string NewJobId() {
 }
 
 
+// A solution's id: the hash of its model and its canonical options.
+std::string SolutionIdFor(const std::string& model_id, const std::string& options_json) {
+  return Sha256Hex(model_id + "\n" + options_json).substr(0, 32);
+}
+
 }  // namespace
 
 PlanningService::PlanningService(Store& store, ServiceOptions options)
@@ -203,7 +208,7 @@ Result<SolveStart> PlanningService::StartSolve(const std::string& model_id,
   Result<ModelRecord> model = store_.GetModel(model_id, false);
   if (!model.ok()) return model.status();
   const std::string options_json = CanonicalSolveOptions(options);
-  const std::string solution_id = Sha256Hex(model_id + "\n" + options_json).substr(0, 32);
+  const std::string solution_id = SolutionIdFor(model_id, options_json);
   SolveStart start;
   if (store_.GetSolution(solution_id, false).ok()) {
     start.cached_solution_id = solution_id;
@@ -215,14 +220,8 @@ Result<SolveStart> PlanningService::StartSolve(const std::string& model_id,
     start.job = ViewOf(*active_.at(running->second));
     return start;
   }
-  auto job = std::make_shared<ActiveJob>();
+  auto job = NewQueuedJob("solve", model_id, options_json);
   job->options = options;
-  job->record.id = NewJobId();
-  job->record.kind = "solve";
-  job->record.model_id = model_id;
-  job->record.request_json = options_json;
-  job->record.status = JobStatus::kQueued;
-  job->record.created_at = NowRfc3339();
   MDP_RETURN_IF_ERROR(Enqueue(job));
   start.job = ViewOf(*job);
   return start;
@@ -234,8 +233,8 @@ Status PlanningService::Enqueue(std::shared_ptr<ActiveJob> job) {
   MDP_RETURN_IF_ERROR(queue_->Submit([this, job] { RunJob(job); }));
   active_[job->record.id] = job;
   if (job->record.kind == "solve") {
-    active_by_solution_[Sha256Hex(job->record.model_id + "\n" + job->record.request_json)
-                            .substr(0, 32)] = job->record.id;
+    active_by_solution_[SolutionIdFor(job->record.model_id, job->record.request_json)] =
+        job->record.id;
   }
   Persist(*job);
   return Status::Ok();
@@ -314,14 +313,30 @@ void PlanningService::RunJob(const std::shared_ptr<ActiveJob>& job) {
   }
 }
 
-Status PlanningService::RunSolve(ActiveJob& job) {
-  Result<std::shared_ptr<const Model>> model = LoadModel(job.record.model_id);
-  if (!model.ok()) return model.status();
-  ProgressFn progress = [&job](const Progress& p) {
+std::shared_ptr<PlanningService::ActiveJob> PlanningService::NewQueuedJob(
+    const std::string& kind, const std::string& model_id, std::string request_json) {
+  auto job = std::make_shared<ActiveJob>();
+  job->record.id = NewJobId();
+  job->record.kind = kind;
+  job->record.model_id = model_id;
+  job->record.request_json = std::move(request_json);
+  job->record.status = JobStatus::kQueued;
+  job->record.created_at = NowRfc3339();
+  return job;
+}
+
+ProgressFn PlanningService::ProgressInto(ActiveJob& job) {
+  return [&job](const Progress& p) {
     std::lock_guard<std::mutex> lock(job.mu);
     job.progress = p;
     job.phase = std::string(p.phase);
   };
+}
+
+Status PlanningService::RunSolve(ActiveJob& job) {
+  Result<std::shared_ptr<const Model>> model = LoadModel(job.record.model_id);
+  if (!model.ok()) return model.status();
+  ProgressFn progress = ProgressInto(job);
   SolveOptions options = job.options;
   options.threads = options_.solver_threads;
   Result<Solution> solved = Solve(**model, options, &progress, &job.cancel);
@@ -331,7 +346,7 @@ Status PlanningService::RunSolve(ActiveJob& job) {
   }
   auto solution = std::make_shared<const Solution>(std::move(*solved));
   SolutionRecord record;
-  record.id = Sha256Hex(job.record.model_id + "\n" + job.record.request_json).substr(0, 32);
+  record.id = SolutionIdFor(job.record.model_id, job.record.request_json);
   record.model_id = job.record.model_id;
   record.options_json = job.record.request_json;
   record.report_json = EncodeSolutionReport(**model, *solution, record.id).dump();
@@ -372,13 +387,7 @@ Result<SimulateStart> PlanningService::StartSimulation(const std::string& model_
     Result<Plan> plan = GetPlan(model_id, request.value.solution_id);
     if (!plan.ok()) return plan.status();
   }
-  auto job = std::make_shared<ActiveJob>();
-  job->record.id = NewJobId();
-  job->record.kind = "simulate";
-  job->record.model_id = model_id;
-  job->record.request_json = std::string(body);
-  job->record.status = JobStatus::kQueued;
-  job->record.created_at = NowRfc3339();
+  auto job = NewQueuedJob("simulate", model_id, std::string(body));
   std::lock_guard<std::mutex> lock(mu_);
   MDP_RETURN_IF_ERROR(Enqueue(job));
   start.job = ViewOf(*job);
@@ -398,11 +407,7 @@ Status PlanningService::RunSimulation(ActiveJob& job) {
     if (!plan.ok()) return plan.status();
     policy = GreedyPolicy(**model, *plan->solution);
   }
-  ProgressFn progress = [&job](const Progress& p) {
-    std::lock_guard<std::mutex> lock(job.mu);
-    job.progress = p;
-    job.phase = std::string(p.phase);
-  };
+  ProgressFn progress = ProgressInto(job);
   Result<SimulationReport> report =
       Simulate(**model, policy, request.value.options, &progress, &job.cancel);
   if (!report.ok()) return report.status();
@@ -559,13 +564,7 @@ Result<VerifyStart> PlanningService::Verify(const std::string& model_id, std::st
   Result<VerifyRequest> request = DecodeVerifyRequest(body);
   if (!request.ok()) return request.status();
   if (!accepting()) return Status(StatusCode::kUnavailable, "the service is shutting down");
-  auto job = std::make_shared<ActiveJob>();
-  job->record.id = NewJobId();
-  job->record.kind = "verify";
-  job->record.model_id = model_id;
-  job->record.request_json = std::string(body);
-  job->record.status = JobStatus::kQueued;
-  job->record.created_at = NowRfc3339();
+  auto job = NewQueuedJob("verify", model_id, std::string(body));
   std::lock_guard<std::mutex> lock(mu_);
   MDP_RETURN_IF_ERROR(Enqueue(job));
   VerifyStart out;

@@ -146,6 +146,10 @@ class PlanningService {
   Result<std::shared_ptr<const Model>> LoadModel(const std::string& model_id);
   Result<std::shared_ptr<const Solution>> LoadSolution(const std::string& solution_id,
                                                        const Model& model);
+  static std::shared_ptr<ActiveJob> NewQueuedJob(const std::string& kind,
+                                                 const std::string& model_id,
+                                                 std::string request_json);
+  static ProgressFn ProgressInto(ActiveJob& job);  // Records progress in the job's view.
   Status Enqueue(std::shared_ptr<ActiveJob> job);
   void RunJob(const std::shared_ptr<ActiveJob>& job);
   Status RunSolve(ActiveJob& job);
