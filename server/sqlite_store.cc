@@ -254,6 +254,11 @@ class SqliteStore final : public Store {
  private:
   // All REQUIRE mu_ held.
   Status Exec(const std::string& sql, std::string_view operation);
+  // Runs `sql`, a SELECT of at most one row keyed by one text parameter `key`, and reads the
+  // row with `read(stmt, &record)`. kNotFound naming `what` if there is no row.
+  template <typename Record, typename Read>
+  Result<Record> SelectOne(const std::string& sql, const std::string& key, std::string_view what,
+                           const std::string& operation, Read read);
   Result<std::string> QueryText(const std::string& sql, std::string_view operation);
   Status Migrate();
   // The cached prepared statement for `sql` (prepared on first use; owned by the store).
@@ -430,25 +435,36 @@ Status SqliteStore::PutModel(const ModelRecord& model, bool* created) {
   });
 }
 
+template <typename Record, typename Read>
+Result<Record> SqliteStore::SelectOne(const std::string& sql, const std::string& key,
+                                      std::string_view what, const std::string& operation,
+                                      Read read) {
+  Result<sqlite3_stmt*> stmt = Prepare(sql, operation);
+  if (!stmt.ok()) return stmt.status();
+  StatementUse use(*stmt);
+  int rc = Binder(*stmt).Text(key).rc();
+  if (rc != SQLITE_OK) return SqliteError(db_, rc, operation);
+  rc = sqlite3_step(*stmt);
+  if (rc == SQLITE_DONE) {
+    return NotFoundError("store: " + std::string(what) + " " + key + " not found");
+  }
+  if (rc != SQLITE_ROW) return SqliteError(db_, rc, operation);
+  Record record;
+  MDP_RETURN_IF_ERROR(read(*stmt, &record));
+  return record;
+}
+
 Result<ModelRecord> SqliteStore::GetModel(const std::string& id, bool with_document) {
   const std::string operation = "get model " + id;
   std::lock_guard<std::mutex> lock(mu_);
-  Result<sqlite3_stmt*> stmt =
-      Prepare(std::string("SELECT ") + kModelColumns + (with_document ? ", document" : "") +
-                  " FROM models WHERE id = ?",
-              operation);
-  if (!stmt.ok()) return stmt.status();
-  StatementUse use(*stmt);
-  int rc = Binder(*stmt).Text(id).rc();
-  if (rc != SQLITE_OK) return SqliteError(db_, rc, operation);
-  rc = sqlite3_step(*stmt);
-  if (rc == SQLITE_DONE) return NotFoundError("store: model " + id + " not found");
-  if (rc != SQLITE_ROW) return SqliteError(db_, rc, operation);
-  ModelRecord model = ReadModel(*stmt);
-  if (with_document) {
-    MDP_RETURN_IF_ERROR(ColumnBlob(db_, *stmt, 8, operation, &model.document));
-  }
-  return model;
+  return SelectOne<ModelRecord>(
+      std::string("SELECT ") + kModelColumns + (with_document ? ", document" : "") +
+          " FROM models WHERE id = ?",
+      id, "model", operation, [&](sqlite3_stmt* stmt, ModelRecord* model) -> Status {
+        *model = ReadModel(stmt);
+        if (!with_document) return Status::Ok();
+        return ColumnBlob(db_, stmt, 8, operation, &model->document);
+      });
 }
 
 Result<std::vector<ModelRecord>> SqliteStore::ListModels() {
@@ -519,20 +535,14 @@ Status SqliteStore::PutSolution(const SolutionRecord& solution) {
 Result<SolutionRecord> SqliteStore::GetSolution(const std::string& id, bool with_data) {
   const std::string operation = "get solution " + id;
   std::lock_guard<std::mutex> lock(mu_);
-  Result<sqlite3_stmt*> stmt =
-      Prepare(std::string("SELECT ") + kSolutionColumns + (with_data ? ", data" : "") +
-                  " FROM solutions WHERE id = ?",
-              operation);
-  if (!stmt.ok()) return stmt.status();
-  StatementUse use(*stmt);
-  int rc = Binder(*stmt).Text(id).rc();
-  if (rc != SQLITE_OK) return SqliteError(db_, rc, operation);
-  rc = sqlite3_step(*stmt);
-  if (rc == SQLITE_DONE) return NotFoundError("store: solution " + id + " not found");
-  if (rc != SQLITE_ROW) return SqliteError(db_, rc, operation);
-  SolutionRecord solution = ReadSolution(*stmt);
-  if (with_data) MDP_RETURN_IF_ERROR(ColumnBlob(db_, *stmt, 5, operation, &solution.data));
-  return solution;
+  return SelectOne<SolutionRecord>(
+      std::string("SELECT ") + kSolutionColumns + (with_data ? ", data" : "") +
+          " FROM solutions WHERE id = ?",
+      id, "solution", operation, [&](sqlite3_stmt* stmt, SolutionRecord* solution) -> Status {
+        *solution = ReadSolution(stmt);
+        if (!with_data) return Status::Ok();
+        return ColumnBlob(db_, stmt, 5, operation, &solution->data);
+      });
 }
 
 Result<std::vector<SolutionRecord>> SqliteStore::ListSolutions(const std::string& model_id) {
@@ -589,16 +599,13 @@ Status SqliteStore::PutJob(const JobRecord& job) {
 Result<JobRecord> SqliteStore::GetJob(const std::string& id) {
   const std::string operation = "get job " + id;
   std::lock_guard<std::mutex> lock(mu_);
-  Result<sqlite3_stmt*> stmt =
-      Prepare(std::string("SELECT ") + kJobColumns + " FROM jobs WHERE id = ?", operation);
-  if (!stmt.ok()) return stmt.status();
-  StatementUse use(*stmt);
-  int rc = Binder(*stmt).Text(id).rc();
-  if (rc != SQLITE_OK) return SqliteError(db_, rc, operation);
-  rc = sqlite3_step(*stmt);
-  if (rc == SQLITE_DONE) return NotFoundError("store: job " + id + " not found");
-  if (rc != SQLITE_ROW) return SqliteError(db_, rc, operation);
-  return ReadJob(*stmt);
+  return SelectOne<JobRecord>(std::string("SELECT ") + kJobColumns + " FROM jobs WHERE id = ?",
+                              id, "job", operation, [](sqlite3_stmt* stmt, JobRecord* job) {
+                                Result<JobRecord> read = ReadJob(stmt);
+                                if (!read.ok()) return read.status();
+                                *job = std::move(*read);
+                                return Status::Ok();
+                              });
 }
 
 Result<std::vector<JobRecord>> SqliteStore::ListJobs(const std::string& model_id,
