@@ -28,6 +28,16 @@ StateId FindStateOr404(const Plan& plan, const std::string& name, Response& res)
   return s.value_or(-1);
 }
 
+// The problem for a request body that could not be decoded: malformed-json when the body is
+// not JSON at all (read again only on this error path), else what the status says.
+Problem BodyProblem(const Request& req, const Status& status) {
+  if (status.code() == StatusCode::kInvalidArgument &&
+      ReadJson(req.body, JsonReadOptions{}).malformed) {
+    return MakeProblem(status, ProblemKind::kMalformedJson);
+  }
+  return MakeProblem(status);
+}
+
 void UploadModel(HttpContext& ctx, const Request& req, Response& res) {
   if (!RequireJsonBody(req, res)) return;
   Result<UploadResult> upload = ctx.service.UploadModel(req.body);
@@ -76,7 +86,7 @@ void DeleteModel(HttpContext& ctx, const Request& req, Response& res) {
 void StartSolve(HttpContext& ctx, const Request& req, Response& res) {
   if (!RequireJsonBody(req, res)) return;
   Result<SolveRequest> request = DecodeSolveRequest(req.body);
-  if (!request.ok()) return WriteProblem(res, request.status());
+  if (!request.ok()) return WriteProblem(res, BodyProblem(req, request.status()));
   Result<SolveStart> start = ctx.service.StartSolve(request->model_id, request->options);
   if (!start.ok()) return WriteProblem(res, start.status());
   if (!start->job) {
@@ -219,7 +229,7 @@ void GetSolutionTables(HttpContext& ctx, const Request& req, Response& res) {
 void Verify(HttpContext& ctx, const Request& req, Response& res) {
   if (!RequireJsonBody(req, res)) return;
   Result<VerifyStart> done = ctx.service.Verify(req.matches[1], req.body);
-  if (!done.ok()) return WriteProblem(res, done.status());
+  if (!done.ok()) return WriteProblem(res, BodyProblem(req, done.status()));
   if (!done->errors.empty()) {
     return WriteProblem(res, MakeProblem(InvalidArgumentError("the candidate does not fit the model"),
                                          ProblemKind::kInvalidCandidate, done->errors));
