@@ -1,6 +1,7 @@
 #include "server/api_codec.h"
 
 #include <algorithm>
+#include <charconv>
 #include <cmath>
 
 #include "server/canonical.h"
@@ -60,8 +61,9 @@ Result<SolveOptions> DecodeSolveOptions(const Json& json) {
   if (auto it = json.find("method"); it != json.end()) {
     std::optional<Method> m = it->is_string() ? ParseMethod(it->get<std::string>()) : std::nullopt;
     if (!m) {
-      return Invalid(ptr + "/method", "must be one of value_iteration, gauss_seidel, "
-                                      "policy_iteration, modified_policy_iteration");
+      return Invalid(ptr + "/method", "must be one of auto, value_iteration, gauss_seidel, "
+                                      "policy_iteration, modified_policy_iteration, "
+                                      "relative_value_iteration, backward_induction");
     }
     o.method = *m;
   }
@@ -291,58 +293,144 @@ Json EncodeSolutionRecord(const SolutionRecord& r) {
   return out;
 }
 
-void AppendBestAction(std::string& out, const Plan& plan, StateId s) {
+Result<int64_t> ResolveStage(const Plan& plan, std::string_view stage,
+                             std::string_view periods_remaining) {
+  if (stage.empty() && periods_remaining.empty()) return int64_t{0};
+  const Solution& sol = *plan.solution;
+  if (sol.criterion != CriterionKind::kFiniteHorizon) {
+    return InvalidArgumentError(
+        "'stage' and 'periods_remaining' apply only to finite-horizon models; this model's "
+        "criterion is " + std::string(CriterionKindName(sol.criterion)));
+  }
+  if (!stage.empty() && !periods_remaining.empty()) {
+    return InvalidArgumentError("give 'stage' or 'periods_remaining', not both");
+  }
+  const std::string_view text = stage.empty() ? periods_remaining : stage;
+  int64_t n = -1;
+  const auto [end, error] = std::from_chars(text.data(), text.data() + text.size(), n);
+  const bool whole = error == std::errc() && end == text.data() + text.size();
+  if (stage.empty()) {
+    if (!whole || n < 1 || n > sol.horizon) {
+      return InvalidArgumentError("periods_remaining must be a whole number from 1 to the horizon " +
+                                  std::to_string(sol.horizon));
+    }
+    return sol.horizon - n;
+  }
+  if (!whole || n < 0 || n >= sol.horizon) {
+    return InvalidArgumentError("stage must be a whole number from 0 to " +
+                                std::to_string(sol.horizon - 1) + " (the horizon is " +
+                                std::to_string(sol.horizon) + ")");
+  }
+  return n;
+}
+
+namespace {
+
+// What a query answers in one state: the stored stage-0 fields, or a stage's decision.
+struct StateView {
+  double value = 0.0;
+  const double* q = nullptr;          // Per row of the state, document order.
+  const uint8_t* optimal = nullptr;
+  RowId pick = -1;
+  double action_gap = 0.0;
+  StageDecision decision;             // Holds the arrays for stage > 0.
+};
+
+StateView ViewAt(const Plan& plan, StateId s, int64_t stage) {
   const Model& m = *plan.model;
   const Solution& sol = *plan.solution;
+  StateView v;
+  if (stage == 0) {
+    v.value = sol.values[s];
+    v.q = sol.q.data() + m.row_begin(s);
+    v.optimal = sol.optimal_row.data() + m.row_begin(s);
+    v.pick = sol.best_row[s];
+    v.action_gap = sol.action_gap[s];
+    return v;
+  }
+  v.decision = DecideAtStage(m, sol, stage, s);
+  v.value = m.terminal(s) ? 0.0 : v.decision.value;
+  v.q = v.decision.q.data();
+  v.optimal = v.decision.optimal.data();
+  v.pick = v.decision.pick;
+  v.action_gap = v.decision.action_gap;
+  return v;
+}
+
+}  // namespace
+
+void AppendBestAction(std::string& out, const Plan& plan, StateId s, int64_t stage) {
+  const Model& m = *plan.model;
+  const Solution& sol = *plan.solution;
+  const StateView view = ViewAt(plan, s, stage);
+  const RowId begin = m.row_begin(s);
   out += "{\"state\":";
   AppendJsonString(out, m.state_name(s));
   out += ",\"terminal\":";
   out += m.terminal(s) ? "true" : "false";
   out += ",\"action\":";
-  if (sol.best_row[s] >= 0) {
-    AppendJsonString(out, m.row_action_name(sol.best_row[s]));
+  if (view.pick >= 0) {
+    AppendJsonString(out, m.row_action_name(view.pick));
   } else {
     out += "null";
   }
   out += ",\"optimal_actions\":[";
-  bool first = true;
-  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-    if (!sol.optimal_row[r]) continue;
-    if (!first) out += ',';
-    first = false;
+  int64_t optimal = 0;
+  for (RowId r = begin; r < m.row_end(s); ++r) {
+    if (!view.optimal[r - begin]) continue;
+    if (optimal++ > 0) out += ',';
     AppendJsonString(out, m.row_action_name(r));
   }
   out += "],\"value\":";
-  AppendJsonNumber(out, sol.values[s]);
+  AppendJsonNumber(out, view.value);
   out += ",\"q\":{";
-  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-    if (r > m.row_begin(s)) out += ',';
+  for (RowId r = begin; r < m.row_end(s); ++r) {
+    if (r > begin) out += ',';
     AppendJsonString(out, m.row_action_name(r));
     out += ':';
-    AppendJsonNumber(out, sol.q[r]);
+    AppendJsonNumber(out, view.q[r - begin]);
   }
   out += "},\"action_gap\":";
-  if (std::isnan(sol.action_gap[s])) {
-    out += "null";
-  } else {
-    AppendJsonNumber(out, sol.action_gap[s]);
-  }
+  AppendJsonNumber(out, view.action_gap);  // null when NaN.
   out += ",\"tied\":";
-  out += sol.OptimalCount(m, s) >= 2 ? "true" : "false";
+  out += optimal >= 2 ? "true" : "false";
   out += ",\"value_error_bound\":";
   AppendJsonNumber(out, sol.value_error_bound);
+  switch (sol.criterion) {
+    case CriterionKind::kFiniteHorizon:
+      out += ",\"stage\":" + std::to_string(stage) +
+             ",\"periods_remaining\":" + std::to_string(sol.horizon - stage);
+      break;
+    case CriterionKind::kAverage:
+      out += ",\"gain\":";
+      AppendJsonNumber(out, sol.average.state_gain.empty() ? sol.average.gain
+                                                           : sol.average.state_gain[s]);
+      break;
+    case CriterionKind::kTotal:
+      out += ",\"reaches_goal\":";
+      out += sol.total.reaches_goal.empty() || sol.total.reaches_goal[s] ? "true" : "false";
+      out += ",\"expected_steps\":";
+      AppendJsonNumber(out, sol.total.expected_steps.empty() ? 0.0 : sol.total.expected_steps[s]);
+      break;
+    case CriterionKind::kDiscounted: break;
+  }
   out += ",\"solution_id\":";
   AppendJsonString(out, plan.solution_id);
   out += '}';
 }
 
-Json EncodeExplain(const Plan& plan, StateId s) {
+Json EncodeExplain(const Plan& plan, StateId s, int64_t stage) {
   const Model& m = *plan.model;
   const Solution& sol = *plan.solution;
+  const StateView view = ViewAt(plan, s, stage);
+  const int64_t n = m.num_states();
+  // The values the lookahead uses: V1 of the solve, or those of the following stage.
+  const double* next_values = sol.criterion == CriterionKind::kFiniteHorizon
+                                  ? sol.stage_values.data() + (stage + 1) * n
+                                  : sol.values.data();
   Json actions = Json::array();
   for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-    // Q = r(s, a) + g * sum p V1(s'): the stored Q is the total, so the discounted next
-    // value is Q - r exactly as the solution computed it.
+    const double q = view.q[r - m.row_begin(s)];
     std::vector<std::pair<double, StateId>> next;
     for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
       next.emplace_back(m.entry_probability(e), m.entry_next(e));
@@ -352,25 +440,35 @@ Json EncodeExplain(const Plan& plan, StateId s) {
     for (size_t i = 0; i < next.size() && i < 20; ++i) {
       outcomes.push_back({{"next", m.state_name(next[i].second)},
                           {"probability", next[i].first},
-                          {"value", sol.values[next[i].second]}});
+                          {"value", NumberOrNull(next_values[next[i].second])}});
     }
+    // q = r(s, a) + the continuation term, so the term is q - r exactly as solved.
     actions.push_back({{"action", m.row_action_name(r)},
-                       {"optimal", sol.optimal_row[r] != 0},
+                       {"optimal", view.optimal[r - m.row_begin(s)] != 0},
                        {"expected_reward", m.row_reward(r)},
-                       {"discounted_next_value", sol.q[r] - m.row_reward(r)},
-                       {"q", sol.q[r]},
+                       {"discounted_next_value", NumberOrNull(q - m.row_reward(r))},
+                       {"q", NumberOrNull(q)},
                        {"next_states", static_cast<int64_t>(next.size())},
                        {"outcomes", std::move(outcomes)}});
   }
-  return {{"state", m.state_name(s)},
-          {"terminal", m.terminal(s)},
-          {"discount", m.discount()},
-          {"objective", m.objective() == Objective::kMaximize ? "maximize" : "minimize"},
-          {"value", sol.values[s]},
-          {"action", sol.best_row[s] >= 0 ? Json(m.row_action_name(sol.best_row[s]))
-                                          : Json(nullptr)},
-          {"actions", std::move(actions)},
-          {"solution_id", plan.solution_id}};
+  Json out = {{"state", m.state_name(s)},
+              {"terminal", m.terminal(s)},
+              {"criterion", EncodeCriterion(m)},
+              {"discount", m.discount()},
+              {"objective", m.objective() == Objective::kMaximize ? "maximize" : "minimize"},
+              {"value", NumberOrNull(view.value)},
+              {"action", view.pick >= 0 ? Json(m.row_action_name(view.pick)) : Json(nullptr)},
+              {"actions", std::move(actions)},
+              {"solution_id", plan.solution_id}};
+  if (sol.criterion == CriterionKind::kFiniteHorizon) {
+    out["stage"] = stage;
+    out["periods_remaining"] = sol.horizon - stage;
+  }
+  if (sol.criterion == CriterionKind::kAverage) {
+    out["gain"] = NumberOrNull(sol.average.state_gain.empty() ? sol.average.gain
+                                                              : sol.average.state_gain[s]);
+  }
+  return out;
 }
 
 }  // namespace mdp::server

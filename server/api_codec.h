@@ -59,10 +59,18 @@ Json EncodeUpload(const UploadResult& upload);
 Json EncodeJobView(const JobView& view);
 Json EncodeSolutionRecord(const SolutionRecord& record);
 
-// Appends the best-action answer for state `s` of `plan` (see the OpenAPI BestAction schema).
-void AppendBestAction(std::string& out, const Plan& plan, StateId s);
-// The explain answer: the one-step lookahead of every action of state `s`.
-Json EncodeExplain(const Plan& plan, StateId s);
+// The stage a query is about, from its `stage` (0-based) or `periods_remaining` (horizon -
+// stage) parameter, each empty when not given: finite-horizon solutions only, default 0.
+// kInvalidArgument, saying why, for a parameter that is not a whole number in range, for
+// both at once, or for either on a solution of another criterion.
+Result<int64_t> ResolveStage(const Plan& plan, std::string_view stage,
+                             std::string_view periods_remaining);
+
+// Appends the best-action answer for state `s` of `plan` at `stage` (see the OpenAPI
+// BestAction schema). REQUIRES: stage from ResolveStage.
+void AppendBestAction(std::string& out, const Plan& plan, StateId s, int64_t stage = 0);
+// The explain answer: the one-step lookahead of every action of state `s` at `stage`.
+Json EncodeExplain(const Plan& plan, StateId s, int64_t stage = 0);
 
 }  // namespace mdp::server
 

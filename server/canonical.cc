@@ -45,6 +45,47 @@ void AppendJsonNumber(std::string& out, double value) {
   out.append(buffer, result.ptr);
 }
 
+namespace {
+
+// Members in key order. Terminal values of 0 are left out (and the member with them), so
+// writing 0 or nothing names the same model.
+void AppendCriterion(std::string& out, const ModelSpec& spec) {
+  const Criterion& c = spec.criterion;
+  switch (c.kind) {
+    case CriterionKind::kDiscounted:
+      out += "{\"discount\":";
+      AppendJsonNumber(out, c.discount);
+      out += ",\"kind\":\"discounted\"}";
+      return;
+    case CriterionKind::kAverage:
+      out += "{\"kind\":\"average\"}";
+      return;
+    case CriterionKind::kTotal:
+      out += "{\"kind\":\"total\"}";
+      return;
+    case CriterionKind::kFiniteHorizon:
+      break;
+  }
+  out += "{\"discount\":";
+  AppendJsonNumber(out, c.discount);
+  out += ",\"horizon\":";
+  out += std::to_string(c.horizon);
+  out += ",\"kind\":\"finite_horizon\"";
+  bool any = false;
+  for (size_t s = 0; s < c.terminal_values.size(); ++s) {
+    if (c.terminal_values[s] == 0.0) continue;
+    out += any ? "," : ",\"terminal_values\":{";
+    any = true;
+    AppendJsonString(out, spec.state_names[s]);
+    out += ':';
+    AppendJsonNumber(out, c.terminal_values[s]);
+  }
+  if (any) out += '}';
+  out += '}';
+}
+
+}  // namespace
+
 std::string EncodeCanonicalModel(const ModelSpec& spec) {
   std::string out;
   out.reserve(static_cast<size_t>(spec.num_outcomes()) * 48 + 4096);
@@ -53,9 +94,8 @@ std::string EncodeCanonicalModel(const ModelSpec& spec) {
     if (a) out += ',';
     AppendJsonString(out, spec.action_names[a]);
   }
-  out += "],\"criterion\":{\"discount\":";
-  AppendJsonNumber(out, spec.criterion.discount);
-  out += ",\"kind\":\"discounted\"}";
+  out += "],\"criterion\":";
+  AppendCriterion(out, spec);
   if (!spec.description.empty()) {
     out += ",\"description\":";
     AppendJsonString(out, spec.description);

@@ -54,6 +54,14 @@ Status Emit(const Json& doc, const std::string& out_path, std::ostream& out) {
   return WriteFileAtomically(out_path, text);
 }
 
+const std::vector<std::string> kMethodNames = {
+    "auto", "value_iteration", "gauss_seidel", "policy_iteration", "modified_policy_iteration",
+    "relative_value_iteration", "backward_induction"};
+constexpr const char* kMethodHelp =
+    "auto (the criterion's default) | value_iteration | gauss_seidel | policy_iteration | "
+    "modified_policy_iteration (discounted) | relative_value_iteration (average) | "
+    "backward_induction (finite_horizon)";
+
 std::string Fixed(double x) {
   std::ostringstream s;
   s << std::setprecision(10) << x;
@@ -76,19 +84,45 @@ void PrintTable(const Model& m, const Solution& sol, std::ostream& out) {
     const double gap = sol.action_gap[s];
     out << std::left << std::setw(static_cast<int>(width)) << m.state_name(s) << "  "
         << std::setw(14) << Fixed(sol.values[s]) << "  " << std::setw(16)
-        << (best >= 0 ? m.row_action_name(best) : std::string("(terminal)")) << "  "
+        << (best >= 0          ? m.row_action_name(best)
+            : m.terminal(s)    ? std::string("(terminal)")
+                               : std::string("(no goal)"))
+        << "  "
         << std::setw(12) << (std::isnan(gap) ? std::string("-") : Fixed(gap)) << "  "
         << tied << "\n";
   }
+  const std::string unit = m.reward_unit().empty() ? "" : " (" + m.reward_unit() + ")";
   out << "outcome " << SolveOutcomeName(sol.outcome) << " after " << sol.iterations
-      << " iterations; values within " << sol.value_error_bound << " of optimal"
-      << (m.reward_unit().empty() ? "" : " (" + m.reward_unit() + ")") << "\n";
+      << " iterations; ";
+  switch (sol.criterion) {
+    case CriterionKind::kAverage:
+      out << "gain " << Fixed(sol.average.gain) << " per step, within "
+          << (sol.average.gain_upper - sol.average.gain_lower) / 2 << unit
+          << "; values are the bias (0 at " << m.state_name(sol.average.reference_state)
+          << ")\n";
+      if (!sol.average.note.empty()) out << sol.average.note << "\n";
+      return;
+    case CriterionKind::kFiniteHorizon:
+      out << "stage " << sol.stage << " of a " << sol.horizon << "-period horizon ("
+          << sol.horizon - sol.stage << " periods to go); exact up to rounding" << unit << "\n";
+      return;
+    case CriterionKind::kTotal:
+      out << "values within " << sol.value_error_bound << " of optimal" << unit
+          << "; at most " << Fixed(sol.total.max_expected_steps)
+          << " expected steps to a goal; " << sol.total.states_not_reaching_goal
+          << " states cannot reach a goal with certainty\n";
+      return;
+    case CriterionKind::kDiscounted:
+      out << "values within " << sol.value_error_bound << " of optimal" << unit << "\n";
+      return;
+  }
 }
 
 struct SolveArgs {
-  std::string model, out, method = "policy_iteration", linear_solver = "auto", detail = "full";
+  std::string model, out, method = "auto", linear_solver = "auto", detail = "full";
   SolveOptions options;
   bool table = false;
+  int64_t stage = 0;
 };
 
 int RunSolve(const SolveArgs& args, std::ostream& out, std::ostream& err) {
@@ -111,6 +145,15 @@ int RunSolve(const SolveArgs& args, std::ostream& out, std::ostream& err) {
   if (solution->outcome != SolveOutcome::kConverged) {
     err << "mdpserve: warning: solve stopped before the tolerance was met ("
         << SolveOutcomeName(solution->outcome) << "); bounds in the output still hold\n";
+  }
+  if (args.stage != 0) {
+    if (solution->criterion != CriterionKind::kFiniteHorizon || args.stage < 0 ||
+        args.stage >= solution->horizon) {
+      err << "mdpserve: --stage applies to finite-horizon models only, from 0 to the horizon "
+             "minus 1\n";
+      return kExitBadInput;
+    }
+    *solution = SolutionAtStage(*model, *solution, args.stage);
   }
   if (args.table) {
     PrintTable(*model, *solution, out);
@@ -141,7 +184,6 @@ struct VerifyArgs {
 // Solves `m` tightly for use as the optimal reference.
 Result<Solution> ReferenceSolution(const Model& m) {
   SolveOptions options;
-  options.method = Method::kPolicyIteration;
   options.tolerance = 1e-10;
   return Solve(m, options);
 }
@@ -222,7 +264,7 @@ int RunEvaluate(const EvaluateArgs& args, std::ostream& out, std::ostream& err) 
 }
 
 struct CompareArgs {
-  std::string model_a, model_b, method = "policy_iteration";
+  std::string model_a, model_b, method = "auto";
   double tolerance = 1e-8;
   int top = 10;
 };
@@ -395,11 +437,9 @@ CLI::App* AddSimulateCommand(CLI::App& app, SimulateArgs& a) {
 
 void AddSolveOptions(CLI::App* cmd, SolveArgs& a) {
   cmd->add_option("MODEL", a.model, "model document (JSON), or - for standard input")->required();
-  cmd->add_option("--method", a.method,
-                  "value_iteration | gauss_seidel | policy_iteration | modified_policy_iteration")
+  cmd->add_option("--method", a.method, kMethodHelp)
       ->capture_default_str()
-      ->check(CLI::IsMember({"value_iteration", "gauss_seidel", "policy_iteration",
-                             "modified_policy_iteration"}));
+      ->check(CLI::IsMember(kMethodNames));
   cmd->add_option("--tolerance", a.options.tolerance,
                   "target bound on sup |V - V*| in reward units")
       ->capture_default_str()
@@ -430,6 +470,10 @@ void AddSolveOptions(CLI::App* cmd, SolveArgs& a) {
       ->check(CLI::IsMember({"summary", "full"}));
   cmd->add_option("--out", a.out, "write the solution document here instead of stdout");
   cmd->add_flag("--table", a.table, "print a readable policy table to stdout");
+  cmd->add_option("--stage", a.stage,
+                  "finite horizon: report the decisions of this stage (0 = the whole horizon "
+                  "ahead) instead of stage 0")
+      ->capture_default_str();
 }
 
 }  // namespace
@@ -477,8 +521,7 @@ int RunCli(int argc, char** argv, std::ostream& out, std::ostream& err) {
       ->required();
   compare->add_option("--method", compare_args.method, "solve method for both")
       ->capture_default_str()
-      ->check(CLI::IsMember({"value_iteration", "gauss_seidel", "policy_iteration",
-                             "modified_policy_iteration"}));
+      ->check(CLI::IsMember(kMethodNames));
   compare->add_option("--tolerance", compare_args.tolerance, "solve tolerance for both")
       ->capture_default_str()
       ->check(CLI::Range(1e-14, 1e6));

@@ -26,28 +26,81 @@ Json ModelSummary(const Model& m) {
   return out;
 }
 
+Json StateMap(const Model& m, const std::vector<double>& values) {
+  Json out = Json::object();
+  for (StateId s = 0; s < m.num_states(); ++s) out[m.state_name(s)] = NumberOrNull(values[s]);
+  return out;
+}
+
 Json StateEntry(const Model& m, const Solution& sol, StateId s) {
   Json q = Json::object();
   Json optimal = Json::array();
   for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-    q[m.row_action_name(r)] = sol.q[r];
+    q[m.row_action_name(r)] = NumberOrNull(sol.q[r]);
     if (sol.optimal_row[r]) optimal.push_back(m.row_action_name(r));
   }
   const RowId best = sol.best_row[s];
-  return {{"state", m.state_name(s)},
-          {"terminal", m.terminal(s)},
-          {"value", sol.values[s]},
-          {"action", best >= 0 ? Json(m.row_action_name(best)) : Json(nullptr)},
-          {"optimal_actions", std::move(optimal)},
-          {"action_gap", NumberOrNull(sol.action_gap[s])},
-          {"q", std::move(q)}};
-}
-
-Json StateMap(const Model& m, const std::vector<double>& values) {
-  Json out = Json::object();
-  for (StateId s = 0; s < m.num_states(); ++s) out[m.state_name(s)] = values[s];
+  Json out = {{"state", m.state_name(s)},
+              {"terminal", m.terminal(s)},
+              {"value", NumberOrNull(sol.values[s])},
+              {"action", best >= 0 ? Json(m.row_action_name(best)) : Json(nullptr)},
+              {"optimal_actions", std::move(optimal)},
+              {"action_gap", NumberOrNull(sol.action_gap[s])},
+              {"q", std::move(q)}};
+  if (sol.criterion == CriterionKind::kTotal && !sol.total.reaches_goal.empty()) {
+    out["reaches_goal"] = sol.total.reaches_goal[s] != 0;
+    out["expected_steps"] = NumberOrNull(sol.total.expected_steps[s]);
+  }
+  if (sol.criterion == CriterionKind::kAverage && !sol.average.state_gain.empty()) {
+    out["gain"] = NumberOrNull(sol.average.state_gain[s]);
+  }
   return out;
 }
+
+constexpr size_t kListedNames = 100;
+
+// Up to kListedNames state names, then a count of the rest.
+Json NameList(const Model& m, const std::vector<StateId>& states) {
+  Json names = Json::array();
+  for (size_t i = 0; i < states.size() && i < kListedNames; ++i) {
+    names.push_back(m.state_name(states[i]));
+  }
+  return names;
+}
+
+Json AverageBlock(const Model& m, const Solution& sol) {
+  const Solution::AverageReport& a = sol.average;
+  Json classes = Json::array();
+  for (size_t i = 0; i < a.recurrent_classes.size() && i < kListedNames; ++i) {
+    const auto& c = a.recurrent_classes[i];
+    classes.push_back({{"states", NameList(m, c)}, {"size", c.size()}});
+  }
+  Json out = {{"gain", NumberOrNull(a.gain)},
+              {"gain_lower", NumberOrNull(a.gain_lower)},
+              {"gain_upper", NumberOrNull(a.gain_upper)},
+              {"gain_error_bound", NumberOrNull((a.gain_upper - a.gain_lower) / 2)},
+              {"reference_state", m.state_name(a.reference_state)},
+              {"multichain", a.multichain},
+              {"recurrent_class_count", a.recurrent_classes.size()},
+              {"recurrent_classes", std::move(classes)},
+              {"note", a.note}};
+  if (!a.state_gain.empty()) out["state_gains"] = StateMap(m, a.state_gain);
+  return out;
+}
+
+Json TotalBlock(const Model& m, const Solution& sol) {
+  std::vector<StateId> stuck;
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (!sol.total.reaches_goal.empty() && !sol.total.reaches_goal[s]) stuck.push_back(s);
+  }
+  int64_t goals = 0;
+  for (StateId s = 0; s < m.num_states(); ++s) goals += m.terminal(s) ? 1 : 0;
+  return {{"goal_states", goals},
+          {"states_not_reaching_goal", sol.total.states_not_reaching_goal},
+          {"not_reaching_goal", NameList(m, stuck)},
+          {"max_expected_steps", NumberOrNull(sol.total.max_expected_steps)}};
+}
+
 
 void AddError(std::vector<DocumentIssue>& errors, std::string pointer, std::string message) {
   if (static_cast<int64_t>(errors.size()) < kMaxListedErrors) {
@@ -134,8 +187,21 @@ void ReadPolicyEntry(const Model& m, StateId s, const Json& entry, const std::st
 
 }  // namespace
 
-Json EncodeCriterion(const Criterion& criterion) {
-  return {{"kind", "discounted"}, {"discount", criterion.discount}};
+Json EncodeCriterion(const Model& m) {
+  const Criterion& c = m.criterion();
+  Json out = {{"kind", CriterionKindName(c.kind)}};
+  if (c.kind == CriterionKind::kDiscounted || c.kind == CriterionKind::kFiniteHorizon) {
+    out["discount"] = c.discount;
+  }
+  if (c.kind == CriterionKind::kFiniteHorizon) {
+    out["horizon"] = c.horizon;
+    Json values = Json::object();
+    for (size_t s = 0; s < c.terminal_values.size(); ++s) {
+      if (c.terminal_values[s] != 0.0) values[m.state_name(static_cast<StateId>(s))] = c.terminal_values[s];
+    }
+    if (!values.empty()) out["terminal_values"] = std::move(values);
+  }
+  return out;
 }
 
 Json EncodeSolveOptions(const SolveOptions& o) {
@@ -160,22 +226,32 @@ Json EncodeSolution(const Model& m, const Solution& sol, SolutionDetail detail) 
   Json out = {{"format", "mdpserve/solution@1"},
               {"model", ModelSummary(m)},
               {"objective", ObjectiveName(m.objective())},
-              {"criterion", EncodeCriterion(m.criterion())},
+              {"criterion", EncodeCriterion(m)},
               {"method", MethodName(sol.method)},
               {"options", EncodeSolveOptions(sol.options)},
               {"outcome", SolveOutcomeName(sol.outcome)},
               {"iterations", sol.iterations},
               {"sweeps", sol.sweeps},
-              {"residual", sol.residual},
-              {"value_error_bound", sol.value_error_bound},
-              {"q_error_bound", sol.q_error_bound},
-              {"policy_loss_bound", sol.policy_loss_bound},
+              {"residual", NumberOrNull(sol.residual)},
+              {"value_error_bound", NumberOrNull(sol.value_error_bound)},
+              {"q_error_bound", NumberOrNull(sol.q_error_bound)},
+              {"policy_loss_bound", NumberOrNull(sol.policy_loss_bound)},
               {"tie_tolerance", sol.tie_tolerance},
               {"solve_seconds", sol.solve_seconds},
               {"tied_states", sol.tied_states},
               {"smallest_gaps", std::move(gaps)},
               {"values", StateMap(m, sol.values)},
               {"policy", std::move(policy)}};
+  switch (sol.criterion) {
+    case CriterionKind::kAverage: out["average"] = AverageBlock(m, sol); break;
+    case CriterionKind::kTotal: out["total"] = TotalBlock(m, sol); break;
+    case CriterionKind::kFiniteHorizon:
+      out["finite_horizon"] = {{"horizon", sol.horizon},
+                               {"stage", sol.stage},
+                               {"periods_remaining", sol.horizon - sol.stage}};
+      break;
+    case CriterionKind::kDiscounted: break;
+  }
   if (detail == SolutionDetail::kFull) {
     Json states = Json::array();
     for (StateId s = 0; s < m.num_states(); ++s) states.push_back(StateEntry(m, sol, s));
@@ -345,7 +421,7 @@ Json EncodeSimulation(const Model& m, const SimulateOptions& options,
   return {{"format", "mdpserve/simulation@1"},
           {"model", ModelSummary(m)},
           {"objective", ObjectiveName(m.objective())},
-          {"criterion", EncodeCriterion(m.criterion())},
+          {"criterion", EncodeCriterion(m)},
           {"options", {{"start", StartMap(m, options.start)},
                        {"episodes", options.episodes},
                        {"max_steps", options.max_steps},

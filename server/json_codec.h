@@ -18,7 +18,7 @@ enum class SolutionDetail {
   kFull,     // Also `states`: Q of every action, optimal sets, gaps.
 };
 
-Json EncodeCriterion(const Criterion& criterion);
+Json EncodeCriterion(const Model& m);
 Json EncodeSolveOptions(const SolveOptions& options);
 Json EncodeSolution(const Model& m, const Solution& solution, SolutionDetail detail);
 Json EncodeValuesReport(const Model& m, const ValuesReport& report);

@@ -141,6 +141,7 @@ class Decoder {
 
   // Maps the names met in states to catalogue and state indices.
   void Resolve() {
+    ResolveTerminalValues();
     std::unordered_map<std::string_view, ActionId> catalogue;
     for (size_t a = 0; a < spec_.action_names.size(); ++a) {
       catalogue.emplace(spec_.action_names[a], static_cast<ActionId>(a));
@@ -339,23 +340,85 @@ class Decoder {
       return;
     }
     const std::string& k = kind->get_ref<const std::string&>();
-    if (k == "average" || k == "finite_horizon" || k == "total") {
-      Error("/criterion/kind", "criterion '" + k +
-                                   "' is not supported by this version; it solves 'discounted'");
-      return;
-    }
-    if (k != "discounted") {
-      Error("/criterion/kind", "unknown criterion '" + k + "'; expected 'discounted'");
-      return;
-    }
-    CheckKeys(*c, "/criterion", {"kind", "discount"});
-    spec_.criterion.kind = CriterionKind::kDiscounted;
-    if (const Json* g = Field(*c, "/criterion", "discount", true)) {
-      const double discount = ReadNumber(*g, "/criterion/discount");
-      spec_.criterion.discount = std::isnan(discount) ? 0.0 : discount;
-      if (std::isnan(discount)) discount_unreadable_ = true;
+    Criterion& criterion = spec_.criterion;
+    if (k == "discounted") {
+      CheckKeys(*c, "/criterion", {"kind", "discount"});
+      criterion.kind = CriterionKind::kDiscounted;
+      ReadDiscount(*c, /*required=*/true);
+    } else if (k == "average") {
+      CheckKeys(*c, "/criterion", {"kind"});
+      criterion.kind = CriterionKind::kAverage;
+      criterion.discount = 1.0;
+    } else if (k == "total") {
+      CheckKeys(*c, "/criterion", {"kind"});
+      criterion.kind = CriterionKind::kTotal;
+      criterion.discount = 1.0;
+    } else if (k == "finite_horizon") {
+      CheckKeys(*c, "/criterion", {"kind", "horizon", "discount", "terminal_values"});
+      criterion.kind = CriterionKind::kFiniteHorizon;
+      criterion.discount = 1.0;
+      ReadDiscount(*c, /*required=*/false);
+      ReadHorizon(*c);
+      if (const Json* v = Field(*c, "/criterion", "terminal_values", false)) ReadTerminalValues(*v);
     } else {
-      discount_unreadable_ = true;
+      Error("/criterion/kind", "unknown criterion '" + k +
+                                   "'; expected 'discounted', 'average', 'finite_horizon' or "
+                                   "'total'");
+    }
+  }
+
+  void ReadDiscount(const Json& c, bool required) {
+    const Json* g = Field(c, "/criterion", "discount", required);
+    if (g == nullptr) {
+      discount_unreadable_ = required;
+      return;
+    }
+    const double discount = ReadNumber(*g, "/criterion/discount");
+    spec_.criterion.discount = std::isnan(discount) ? 0.0 : discount;
+    if (std::isnan(discount)) discount_unreadable_ = true;
+  }
+
+  void ReadHorizon(const Json& c) {
+    spec_.criterion.horizon = 1;  // A placeholder where it cannot be read (reported here).
+    const Json* h = Field(c, "/criterion", "horizon", true);
+    if (h == nullptr) return;
+    const double horizon = ReadNumber(*h, "/criterion/horizon");
+    if (std::isnan(horizon)) return;
+    if (horizon != std::floor(horizon)) {
+      Error("/criterion/horizon", "must be a whole number of periods");
+      return;
+    }
+    // Out-of-range values are left for the validator, clamped so the cast is defined.
+    spec_.criterion.horizon =
+        static_cast<int64_t>(std::clamp(horizon, -1.0, static_cast<double>(kMaxHorizon) + 1));
+  }
+
+  // Keeps the named values until every state is known (Resolve maps them to indices).
+  void ReadTerminalValues(const Json& v) {
+    if (!v.is_object()) {
+      Error("/criterion/terminal_values", "must be an object mapping state names to numbers, not " +
+                                              TypeName(v));
+      return;
+    }
+    for (auto it = v.begin(); it != v.end(); ++it) {
+      const std::string ptr = "/criterion/terminal_values/" + EscapePointerToken(it.key());
+      const double value = ReadNumber(it.value(), ptr);
+      pending_terminal_values_.emplace_back(it.key(), std::isnan(value) ? 0.0 : value);
+    }
+    has_terminal_values_ = true;
+  }
+
+  void ResolveTerminalValues() {
+    if (!has_terminal_values_) return;
+    spec_.criterion.terminal_values.assign(spec_.state_names.size(), 0.0);
+    for (const auto& [name, value] : pending_terminal_values_) {
+      auto it = defined_.find(name);
+      if (it == defined_.end()) {
+        Error("/criterion/terminal_values/" + EscapePointerToken(name),
+              "state '" + name + "' is not defined");
+        continue;
+      }
+      spec_.criterion.terminal_values[it->second] = value;
     }
   }
 
@@ -405,11 +468,13 @@ class Decoder {
   NameTable action_refs_;
   bool catalogue_ok_ = true;
   bool discount_unreadable_ = false;
+  bool has_terminal_values_ = false;
+  std::vector<std::pair<std::string, double>> pending_terminal_values_;
   std::vector<DocumentIssue> errors_;
   int64_t errors_not_listed_ = 0;
 };
 
-std::string LocationPointer(const Location& where) {
+std::string LocationPointer(const ModelSpec& spec, const Location& where) {
   using F = Location::Field;
   const std::string state = "/states/" + std::to_string(where.state);
   const std::string slot = state + "/actions/" + std::to_string(where.slot);
@@ -417,6 +482,10 @@ std::string LocationPointer(const Location& where) {
   switch (where.field) {
     case F::kModel: return "";
     case F::kDiscount: return "/criterion/discount";
+    case F::kCriterion: return "/criterion";
+    case F::kHorizon: return "/criterion/horizon";
+    case F::kTerminalValue:
+      return "/criterion/terminal_values/" + EscapePointerToken(spec.state_names[where.state]);
     case F::kStates: return "/states";
     case F::kCatalogue: return "/actions";
     case F::kCatalogueEntry: return "/actions/" + std::to_string(where.action);
@@ -515,7 +584,7 @@ bool RepeatsDecoderError(const ModelSpec& spec, const Finding& f,
     default:
       break;
   }
-  return AlreadyReported(LocationPointer(w), reported);
+  return AlreadyReported(LocationPointer(spec, w), reported);
 }
 
 }  // namespace
@@ -551,10 +620,10 @@ ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits)
                                  decoder.discount_unreadable());
     };
     ValidationReport report = Validate(spec, options);
-    for (const Finding& f : report.errors) out.errors.push_back({LocationPointer(f.where), f.message});
+    for (const Finding& f : report.errors) out.errors.push_back({LocationPointer(spec, f.where), f.message});
     out.errors_not_listed += report.errors_not_listed;
     for (const Finding& f : report.warnings) {
-      out.warnings.push_back({LocationPointer(f.where), f.message});
+      out.warnings.push_back({LocationPointer(spec, f.where), f.message});
     }
     out.warnings_not_listed = report.warnings_not_listed;
   }

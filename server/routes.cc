@@ -28,6 +28,26 @@ StateId FindStateOr404(const Plan& plan, const std::string& name, Response& res)
   return s.value_or(-1);
 }
 
+// The stage of a finite-horizon query from its `stage` or `periods_remaining` parameter.
+Result<int64_t> QueryStage(const Request& req, const Plan& plan) {
+  return ResolveStage(plan, Param(req, "stage"), Param(req, "periods_remaining"));
+}
+
+// The same from a batch body's optional "stage" or "periods_remaining" integer members.
+Result<int64_t> BatchStage(const Json& body, const Plan& plan) {
+  std::string texts[2];
+  const char* keys[2] = {"stage", "periods_remaining"};
+  for (int i = 0; i < 2; ++i) {
+    if (!body.contains(keys[i])) continue;
+    const Json& v = body[keys[i]];
+    if (!v.is_number_integer()) {
+      return InvalidArgumentError(std::string("/") + keys[i] + ": must be an integer");
+    }
+    texts[i] = std::to_string(v.get<int64_t>());
+  }
+  return ResolveStage(plan, texts[0], texts[1]);
+}
+
 // The problem for a request body that could not be decoded: malformed-json when the body is
 // not JSON at all (read again only on this error path), else what the status says.
 Problem BodyProblem(const Request& req, const Status& status) {
@@ -144,9 +164,11 @@ void BestAction(HttpContext& ctx, const Request& req, Response& res) {
   if (!plan.ok()) return WriteProblem(res, plan.status());
   const StateId s = FindStateOr404(*plan, Param(req, "state"), res);
   if (s < 0) return;
+  Result<int64_t> stage = QueryStage(req, *plan);
+  if (!stage.ok()) return WriteProblem(res, stage.status());
   std::string body;
   body.reserve(512);
-  AppendBestAction(body, *plan, s);
+  AppendBestAction(body, *plan, s, *stage);
   WriteJson(res, 200, body);
 }
 
@@ -169,6 +191,8 @@ void BestActionBatch(HttpContext& ctx, const Request& req, Response& res) {
   }
   Result<Plan> plan = ctx.service.GetPlan(req.matches[1], solution_id);
   if (!plan.ok()) return WriteProblem(res, plan.status());
+  Result<int64_t> stage = BatchStage(read.root, *plan);
+  if (!stage.ok()) return WriteProblem(res, stage.status());
   std::vector<StateId> ids;
   std::vector<DocumentIssue> unknown;
   for (size_t i = 0; i < states.size(); ++i) {
@@ -189,7 +213,7 @@ void BestActionBatch(HttpContext& ctx, const Request& req, Response& res) {
   std::string body = "{\"solution_id\":\"" + plan->solution_id + "\",\"answers\":[";
   for (size_t i = 0; i < ids.size(); ++i) {
     if (i) body += ',';
-    AppendBestAction(body, *plan, ids[i]);
+    AppendBestAction(body, *plan, ids[i], *stage);
   }
   body += "]}";
   WriteJson(res, 200, body);
@@ -201,7 +225,9 @@ void Explain(HttpContext& ctx, const Request& req, Response& res) {
   if (!plan.ok()) return WriteProblem(res, plan.status());
   const StateId s = FindStateOr404(*plan, Param(req, "state"), res);
   if (s < 0) return;
-  WriteJson(res, 200, EncodeExplain(*plan, s).dump());
+  Result<int64_t> stage = QueryStage(req, *plan);
+  if (!stage.ok()) return WriteProblem(res, stage.status());
+  WriteJson(res, 200, EncodeExplain(*plan, s, *stage).dump());
 }
 
 void ListSolutions(HttpContext& ctx, const Request& req, Response& res) {
@@ -221,7 +247,12 @@ void GetSolution(HttpContext& ctx, const Request& req, Response& res) {
 void GetSolutionTables(HttpContext& ctx, const Request& req, Response& res) {
   Result<Plan> plan = ctx.service.GetPlan(req.matches[1], req.matches[2]);
   if (!plan.ok()) return WriteProblem(res, plan.status());
-  Json doc = EncodeSolution(*plan->model, *plan->solution, SolutionDetail::kFull);
+  Result<int64_t> stage = QueryStage(req, *plan);
+  if (!stage.ok()) return WriteProblem(res, stage.status());
+  Json doc = *stage == 0 ? EncodeSolution(*plan->model, *plan->solution, SolutionDetail::kFull)
+                         : EncodeSolution(*plan->model,
+                                          SolutionAtStage(*plan->model, *plan->solution, *stage),
+                                          SolutionDetail::kFull);
   doc["id"] = plan->solution_id;
   WriteJson(res, 200, doc.dump());
 }

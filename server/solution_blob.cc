@@ -7,7 +7,21 @@ namespace mdp::server {
 namespace {
 
 constexpr char kMagic[4] = {'M', 'D', 'P', 'S'};
-constexpr uint32_t kVersion = 1;
+constexpr uint32_t kVersion = 2;  // 1: discounted only (no criterion section); still read.
+
+// Stable codes of methods in blobs (the enum's order is not a storage format).
+constexpr Method kMethodCodes[] = {Method::kValueIteration, Method::kGaussSeidel,
+                                   Method::kPolicyIteration, Method::kModifiedPolicyIteration,
+                                   Method::kRelativeValueIteration, Method::kBackwardInduction,
+                                   Method::kAuto};
+constexpr uint32_t kMethodCount = sizeof kMethodCodes / sizeof kMethodCodes[0];
+
+uint32_t MethodCode(Method method) {
+  for (uint32_t i = 0; i < kMethodCount; ++i) {
+    if (kMethodCodes[i] == method) return i;
+  }
+  return 0;
+}
 
 class Writer {
  public:
@@ -19,6 +33,11 @@ class Writer {
   template <typename T>
   void PutArray(const std::vector<T>& values) {
     out_.append(reinterpret_cast<const char*>(values.data()), values.size() * sizeof(T));
+  }
+  template <typename T>
+  void PutCounted(const std::vector<T>& values) {
+    Put(static_cast<int64_t>(values.size()));
+    PutArray(values);
   }
   std::string Take() { return std::move(out_); }
   void Reserve(size_t n) { out_.reserve(n); }
@@ -47,10 +66,69 @@ class Reader {
     return true;
   }
   bool AtEnd() const { return in_.empty(); }
+  // A length-prefixed array of at most `max` elements.
+  template <typename T>
+  bool GetCounted(std::vector<T>* values, int64_t max) {
+    int64_t count = 0;
+    return Get(&count) && count >= 0 && count <= max && GetArray(values, count);
+  }
 
  private:
   std::string_view in_;
 };
+
+// Version 2 appends: u32 criterion; average: f64 gain, gain_lower, gain_upper,
+// i32 reference_state, u8 multichain, i64 classes, per class i64 n + i32[n], i64 n + note
+// bytes, i64 n + f64[n] state_gain; finite horizon: i64 horizon, i64 n + f64[n] stage
+// values; total: i64 n + u8[n] reaches_goal, i64 n + f64[n] expected_steps, i64
+// states_not_reaching_goal, f64 max_expected_steps.
+void PutCriterionSection(const Solution& s, Writer& w) {
+  w.Put(static_cast<uint32_t>(s.criterion));
+  const Solution::AverageReport& a = s.average;
+  w.Put(a.gain);
+  w.Put(a.gain_lower);
+  w.Put(a.gain_upper);
+  w.Put(static_cast<int32_t>(a.reference_state));
+  w.Put(static_cast<uint8_t>(a.multichain ? 1 : 0));
+  w.Put(static_cast<int64_t>(a.recurrent_classes.size()));
+  for (const auto& c : a.recurrent_classes) w.PutCounted(c);
+  w.PutCounted(std::vector<char>(a.note.begin(), a.note.end()));
+  w.PutCounted(a.state_gain);
+  w.Put(s.horizon);
+  w.PutCounted(s.stage_values);
+  w.PutCounted(s.total.reaches_goal);
+  w.PutCounted(s.total.expected_steps);
+  w.Put(s.total.states_not_reaching_goal);
+  w.Put(s.total.max_expected_steps);
+}
+
+bool GetCriterionSection(Reader& r, int64_t states, Solution& s) {
+  uint32_t kind = 0;
+  uint8_t multichain = 0;
+  int32_t reference = 0;
+  int64_t classes = 0;
+  Solution::AverageReport& a = s.average;
+  if (!(r.Get(&kind) && kind <= 3 && r.Get(&a.gain) && r.Get(&a.gain_lower) &&
+        r.Get(&a.gain_upper) && r.Get(&reference) && r.Get(&multichain) && r.Get(&classes) &&
+        classes >= 0 && classes <= states)) {
+    return false;
+  }
+  s.criterion = static_cast<CriterionKind>(kind);
+  a.reference_state = reference;
+  a.multichain = multichain != 0;
+  a.recurrent_classes.resize(static_cast<size_t>(classes));
+  for (auto& c : a.recurrent_classes) {
+    if (!r.GetCounted(&c, states)) return false;
+  }
+  std::vector<char> note;
+  if (!r.GetCounted(&note, int64_t{1} << 20)) return false;
+  a.note.assign(note.begin(), note.end());
+  return r.GetCounted(&a.state_gain, states) && r.Get(&s.horizon) && s.horizon >= 0 &&
+         r.GetCounted(&s.stage_values, (s.horizon + 1) * states) &&
+         r.GetCounted(&s.total.reaches_goal, states) &&
+         r.GetCounted(&s.total.expected_steps, states) &&
+         r.Get(&s.total.states_not_reaching_goal) && r.Get(&s.total.max_expected_steps);
+}
 
 }  // namespace
 
@@ -59,7 +137,7 @@ std::string EncodeSolutionBlob(const Solution& s) {
   w.Reserve(256 + s.values.size() * 24 + s.q.size() * 9);
   for (char c : kMagic) w.Put(c);
   w.Put(kVersion);
-  w.Put(static_cast<uint32_t>(s.method));
+  w.Put(MethodCode(s.method));
   w.Put(static_cast<uint32_t>(s.outcome));
   w.Put(s.iterations);
   w.Put(s.sweeps);
@@ -68,7 +146,7 @@ std::string EncodeSolutionBlob(const Solution& s) {
     w.Put(x);
   }
   const SolveOptions& o = s.options;
-  w.Put(static_cast<uint32_t>(o.method));
+  w.Put(MethodCode(o.method));
   w.Put(o.tolerance);
   w.Put(o.max_iterations);
   w.Put(o.time_limit_seconds);
@@ -84,6 +162,7 @@ std::string EncodeSolutionBlob(const Solution& s) {
   w.PutArray(s.best_row);
   w.PutArray(s.optimal_row);
   w.PutArray(s.action_gap);
+  PutCriterionSection(s, w);
   return w.Take();
 }
 
@@ -95,7 +174,8 @@ Result<Solution> DecodeSolutionBlob(std::string_view blob, int64_t states, int64
   int64_t stored_states = 0, stored_rows = 0;
   Solution s;
   bool ok = r.Get(&magic[0]) && r.Get(&magic[1]) && r.Get(&magic[2]) && r.Get(&magic[3]) &&
-            std::memcmp(magic, kMagic, 4) == 0 && r.Get(&version) && version == kVersion;
+            std::memcmp(magic, kMagic, 4) == 0 && r.Get(&version) &&
+            (version == 1 || version == kVersion);
   if (!ok) return InternalError("stored solution has an unknown format or version");
   ok = r.Get(&method) && r.Get(&outcome) && r.Get(&s.iterations) && r.Get(&s.sweeps) &&
        r.Get(&s.residual) && r.Get(&s.value_error_bound) && r.Get(&s.q_error_bound) &&
@@ -104,18 +184,19 @@ Result<Solution> DecodeSolutionBlob(std::string_view blob, int64_t states, int64
        r.Get(&s.options.time_limit_seconds) && r.Get(&s.options.evaluation_sweeps) &&
        r.Get(&linear) && r.Get(&s.options.tie_tolerance) && r.Get(&threads) &&
        r.Get(&s.tied_states) && r.Get(&stored_states) && r.Get(&stored_rows);
-  if (!ok || stored_states != states || stored_rows != rows || method > 3 || outcome > 4 ||
-      option_method > 3 || linear > 3) {
+  if (!ok || stored_states != states || stored_rows != rows || method >= kMethodCount ||
+      outcome > 4 || option_method >= kMethodCount || linear > 3) {
     return InternalError("stored solution is truncated or does not match its model");
   }
-  s.method = static_cast<Method>(method);
+  s.method = kMethodCodes[method];
   s.outcome = static_cast<SolveOutcome>(outcome);
-  s.options.method = static_cast<Method>(option_method);
+  s.options.method = kMethodCodes[option_method];
   s.options.linear_solver = static_cast<LinearSolver>(linear);
   s.options.threads = threads;
   ok = r.GetArray(&s.values, states) && r.GetArray(&s.q, rows) &&
        r.GetArray(&s.best_row, states) && r.GetArray(&s.optimal_row, rows) &&
-       r.GetArray(&s.action_gap, states) && r.AtEnd();
+       r.GetArray(&s.action_gap, states) &&
+       (version == 1 || GetCriterionSection(r, states, s)) && r.AtEnd();
   if (!ok) return InternalError("stored solution is truncated");
   return s;
 }
@@ -123,7 +204,11 @@ Result<Solution> DecodeSolutionBlob(std::string_view blob, int64_t states, int64
 int64_t SolutionByteSize(const Solution& s) {
   return static_cast<int64_t>(sizeof(Solution) + s.values.size() * sizeof(double) +
                               s.q.size() * sizeof(double) + s.best_row.size() * sizeof(RowId) +
-                              s.optimal_row.size() + s.action_gap.size() * sizeof(double));
+                              s.optimal_row.size() + s.action_gap.size() * sizeof(double) +
+                              s.stage_values.size() * sizeof(double) +
+                              s.average.state_gain.size() * sizeof(double) +
+                              s.total.reaches_goal.size() +
+                              s.total.expected_steps.size() * sizeof(double));
 }
 
 }  // namespace mdp::server

@@ -1,5 +1,6 @@
 // The stored form of a Solution: a versioned little-endian binary blob, so a solved
-// Q-table of millions of rows is written and read back without JSON. Layout (version 1):
+// Q-table of millions of rows is written and read back without JSON. Layout (version 1, and
+// the start of version 2; see solution_blob.cc for the criterion section version 2 appends):
 //   "MDPS" u32 version
 //   u32 method, u32 outcome, i64 iterations, i64 sweeps,
 //   f64 residual, value_error_bound, q_error_bound, policy_loss_bound, tie_tolerance,

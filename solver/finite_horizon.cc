@@ -110,13 +110,18 @@ Result<FiniteHorizonSolution> BackwardInduction(const Model& m, const FiniteHori
 
 StageDecision DecideAtStage(const Model& m, const FiniteHorizonSolution& solution, int64_t stage,
                             StateId s, double tie_tolerance) {
+  return DecideFromNextStage(m, solution.stage_values.data() + (stage + 1) * solution.states,
+                             solution.discount, s, tie_tolerance);
+}
+
+StageDecision DecideFromNextStage(const Model& m, const double* next, double discount, StateId s,
+                                  double tie_tolerance) {
   StageDecision d;
   d.action_gap = std::numeric_limits<double>::quiet_NaN();
-  const double* next = solution.stage_values.data() + (stage + 1) * solution.states;
   const bool maximize = m.objective() == Objective::kMaximize;
   double best = 0.0;
   for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-    const double q = StageQ(m, r, next, solution.discount);
+    const double q = StageQ(m, r, next, discount);
     d.q.push_back(q);
     if (r == m.row_begin(s) || (maximize ? q > best : q < best)) best = q;
   }

@@ -57,6 +57,10 @@ struct StageDecision {
 };
 StageDecision DecideAtStage(const Model& m, const FiniteHorizonSolution& solution, int64_t stage,
                             StateId s, double tie_tolerance);
+// The same from the values of the following stage alone (V_{t+1}, one per state) and the
+// criterion's discount: what a solved finite-horizon Solution keeps (Solution::stage_values).
+StageDecision DecideFromNextStage(const Model& m, const double* next_stage_values,
+                                  double discount, StateId s, double tie_tolerance);
 
 }  // namespace mdp
 

@@ -5,6 +5,16 @@
 
 namespace mdp {
 
+std::string_view CriterionKindName(CriterionKind kind) {
+  switch (kind) {
+    case CriterionKind::kDiscounted: return "discounted";
+    case CriterionKind::kAverage: return "average";
+    case CriterionKind::kFiniteHorizon: return "finite_horizon";
+    case CriterionKind::kTotal: return "total";
+  }
+  return "discounted";
+}
+
 StateId ModelSpec::AddState(std::string state_name, bool is_terminal) {
   state_names.push_back(std::move(state_name));
   terminal.push_back(is_terminal ? 1 : 0);

@@ -7,17 +7,37 @@
 
 #include <cstdint>
 #include <string>
+#include <string_view>
 #include <vector>
 
 namespace mdp {
 
 enum class Objective { kMaximize, kMinimize };
 
-enum class CriterionKind { kDiscounted };
+// How rewards over time combine into a value (api-schema/README.md states each in full).
+enum class CriterionKind {
+  kDiscounted,     // sum_t g^t r_t, g in [0, 1).
+  kAverage,        // Long-run reward per step (gain), with a bias.
+  kFiniteHorizon,  // sum_{t<H} g^t r_t + g^H V_H(S_H), g in [0, 1]; stage-dependent policy.
+  kTotal,          // sum_t r_t until a terminal (goal) state is reached; undiscounted.
+};
+
+// "discounted", "average", "finite_horizon", "total".
+std::string_view CriterionKindName(CriterionKind kind);
+
+// Largest horizon a finite-horizon criterion may name; the per-stage value table is further
+// limited to kMaxStageTableEntries = (horizon + 1) x states.
+inline constexpr int64_t kMaxHorizon = 1000000;
+inline constexpr int64_t kMaxStageTableEntries = int64_t{1} << 28;
 
 struct Criterion {
   CriterionKind kind = CriterionKind::kDiscounted;
-  double discount = 0.9;  // In [0, 1) for kDiscounted.
+  // kDiscounted: in [0, 1). kFiniteHorizon: in [0, 1], default 1. Otherwise unused (1).
+  double discount = 0.9;
+  int64_t horizon = 0;  // kFiniteHorizon: 1..kMaxHorizon periods. Otherwise 0.
+  // kFiniteHorizon: V_H per state, the value of ending the horizon there; empty means 0
+  // everywhere. Terminal (absorbing) states must have 0.
+  std::vector<double> terminal_values;
 };
 
 // Index types. States and catalogue actions fit in 32 bits (caps are far below 2^31);

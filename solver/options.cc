@@ -32,17 +32,21 @@ Status CheckSolveOptions(const SolveOptions& o) {
 
 std::string_view MethodName(Method method) {
   switch (method) {
+    case Method::kAuto: return "auto";
     case Method::kValueIteration: return "value_iteration";
     case Method::kGaussSeidel: return "gauss_seidel";
     case Method::kPolicyIteration: return "policy_iteration";
     case Method::kModifiedPolicyIteration: return "modified_policy_iteration";
+    case Method::kRelativeValueIteration: return "relative_value_iteration";
+    case Method::kBackwardInduction: return "backward_induction";
   }
   return "unknown";
 }
 
 std::optional<Method> ParseMethod(std::string_view name) {
-  for (Method m : {Method::kValueIteration, Method::kGaussSeidel, Method::kPolicyIteration,
-                   Method::kModifiedPolicyIteration}) {
+  for (Method m : {Method::kAuto, Method::kValueIteration, Method::kGaussSeidel,
+                   Method::kPolicyIteration, Method::kModifiedPolicyIteration,
+                   Method::kRelativeValueIteration, Method::kBackwardInduction}) {
     if (MethodName(m) == name) return m;
   }
   return std::nullopt;

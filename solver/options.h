@@ -12,11 +12,20 @@
 
 namespace mdp {
 
+// Which methods apply depends on the model's criterion (Solve() says so when one does not):
+//   discounted:      value_iteration, gauss_seidel, policy_iteration, modified_policy_iteration
+//   average:         relative_value_iteration, policy_iteration
+//   finite_horizon:  backward_induction
+//   total:           policy_iteration
+// kAuto picks policy_iteration, or backward_induction for finite_horizon.
 enum class Method {
+  kAuto,                     // The criterion's default (above).
   kValueIteration,           // Synchronous (Jacobi) value iteration.
   kGaussSeidel,              // In-place value iteration, states in index order.
   kPolicyIteration,          // Exact evaluation + greedy improvement until stable.
   kModifiedPolicyIteration,  // `evaluation_sweeps` partial evaluation sweeps per improvement.
+  kRelativeValueIteration,   // Average criterion: value iteration normalised at a state.
+  kBackwardInduction,        // Finite horizon: one exact backup per stage, last stage first.
 };
 
 // How a policy's values are computed exactly: (I - g P_pi) V = r_pi.
@@ -28,7 +37,7 @@ enum class LinearSolver {
 };
 
 struct SolveOptions {
-  Method method = Method::kPolicyIteration;  // Default: exact, few iterations.
+  Method method = Method::kAuto;  // Default: exact, few iterations (policy iteration).
   double tolerance = 1e-8;        // Target bound on sup |V - V*| (in reward units).
   int64_t max_iterations = 100000;  // Outcome kIterationLimit when reached.
   double time_limit_seconds = 0.0;  // 0 means no limit; else outcome kTimeLimit.

@@ -29,6 +29,7 @@
 
 #include <cstdint>
 #include <span>
+#include <string>
 #include <string_view>
 #include <utility>
 #include <vector>
@@ -67,6 +68,43 @@ struct Solution {
   std::vector<uint8_t> optimal_row;  // Per row: 1 iff in its state's optimal set.
   std::vector<double> action_gap;    // Per state; NaN with fewer than two actions.
   int64_t tied_states = 0;           // States whose optimal set has two or more actions.
+
+  // Which criterion these numbers answer (the model's). The fields above read as follows:
+  //  - kDiscounted: as stated in the header comment.
+  //  - kAverage: `values` is a bias h (0 at average.reference_state) and
+  //    q(s, a) = r(s, a) + sum p h - gain(s), so values(s) = best q(s, .) up to the gain
+  //    bracket. value_error_bound and q_error_bound are NaN (a bias is unique only up to a
+  //    constant per recurrent class); residual is the bracket's width; policy_loss_bound is
+  //    a bound on the gain lost per step (see average_reward.h).
+  //  - kFiniteHorizon: every per-state field is stage 0 (the whole horizon ahead); the table
+  //    of all stages is stage_values. Backward induction is exact up to rounding: the
+  //    bounds are 0.
+  //  - kTotal: expected total reward until a goal. values are NaN for states that cannot
+  //    reach a goal with probability 1 (total.reaches_goal), q is NaN for rows that risk
+  //    leaving the goal-reaching states; see total_reward.h for the bounds.
+  CriterionKind criterion = CriterionKind::kDiscounted;
+
+  struct AverageReport {
+    double gain = 0.0;        // Midpoint of [gain_lower, gain_upper].
+    double gain_lower = 0.0;  // gain_lower <= g*(s) <= gain_upper for every state s.
+    double gain_upper = 0.0;
+    StateId reference_state = 0;
+    std::vector<double> state_gain;  // Per state; empty unless computed.
+    bool multichain = false;         // The best policy has two or more recurrent classes.
+    std::vector<std::vector<StateId>> recurrent_classes;  // Of the best policy.
+    std::string note;                // Plain words about the chain structure; may be empty.
+  } average;
+
+  int64_t horizon = 0;              // kFiniteHorizon: H.
+  int64_t stage = 0;                // kFiniteHorizon: the stage the per-state fields describe.
+  std::vector<double> stage_values;  // kFiniteHorizon: V_t(s) at [t * states + s], t = 0..H.
+
+  struct TotalReport {
+    std::vector<uint8_t> reaches_goal;   // Per state: a goal is reachable w.p. 1.
+    std::vector<double> expected_steps;  // Per state, under best_row; NaN where undefined.
+    int64_t states_not_reaching_goal = 0;
+    double max_expected_steps = 0.0;
+  } total;
 
   // Number of rows in the optimal set of state s.
   int64_t OptimalCount(const Model& m, StateId s) const;

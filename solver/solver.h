@@ -16,18 +16,35 @@
 #include "solver/simulate.h"
 #include "solver/solution.h"
 #include "solver/status.h"
+#if __has_include("solver/total_reward.h")
+#include "solver/total_reward.h"
+#endif
 #include "solver/validate.h"
 #include "solver/verify.h"
 
 namespace mdp {
 
-// Solves `m` with options.method. A non-OK status means the solve could not run (bad
+// Solves `m`. A non-OK status means the solve could not run (bad
 // options, out of memory). Stopping early (limits, cancel, stall) is a successful call whose
 // Solution::outcome says why; its values and bounds are still valid for what was reached.
 // `progress` (may be null) is called once per iteration from this thread; `cancel` (may be
 // null) is polled once per iteration.
+// The model's criterion decides what is solved (see Solution::criterion for how the fields
+// read); options.method must be one of the criterion's methods (options.h), kAuto picks its
+// default, and the Solution's method and options.method name the method used. Returns
+// kInvalidArgument for a method that does not apply, and passes on the criterion solvers'
+// errors (average_reward.h, total_reward.h: kFailedPrecondition for models they reject).
 Result<Solution> Solve(const Model& m, const SolveOptions& options,
                        const ProgressFn* progress = nullptr, const CancelToken* cancel = nullptr);
+
+// Finite horizon: the decision at `stage` (0 <= stage < solution.horizon; stage t has
+// horizon - t periods to go) in state `s`, from a Solution that Solve() made for `m`.
+StageDecision DecideAtStage(const Model& m, const Solution& solution, int64_t stage, StateId s);
+
+// Finite horizon: a copy of `solution` whose per-state fields (values, q, optimal sets, picks,
+// gaps) describe `stage` instead of stage 0; stage_values is left empty.
+// REQUIRES: 0 <= stage < solution.horizon.
+Solution SolutionAtStage(const Model& m, const Solution& solution, int64_t stage);
 
 }  // namespace mdp
 

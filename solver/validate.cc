@@ -1,5 +1,6 @@
 #include "solver/validate.h"
 
+#include <algorithm>
 #include <cmath>
 #include <sstream>
 #include <unordered_map>
@@ -59,11 +60,66 @@ Location At(Field field, int64_t state = -1, int64_t slot = -1, int64_t outcome 
   return where;
 }
 
-void CheckHeader(const ModelSpec& spec, Collector& out) {
-  const double g = spec.criterion.discount;
-  if (!(g >= 0.0 && g < 1.0)) {
-    out.Error(At(Field::kDiscount), "discount must be at least 0 and below 1, got " + Number(g));
+void CheckFiniteHorizon(const ModelSpec& spec, Collector& out) {
+  const Criterion& c = spec.criterion;
+  if (!(c.discount >= 0.0 && c.discount <= 1.0)) {
+    out.Error(At(Field::kDiscount), "discount must be between 0 and 1, got " + Number(c.discount));
   }
+  if (c.horizon < 1 || c.horizon > kMaxHorizon) {
+    out.Error(At(Field::kHorizon), "horizon must be a whole number from 1 to " +
+                                       std::to_string(kMaxHorizon) + ", got " +
+                                       std::to_string(c.horizon));
+  } else if ((c.horizon + 1) * static_cast<int64_t>(spec.state_names.size()) >
+             kMaxStageTableEntries) {
+    out.Error(At(Field::kHorizon),
+              "horizon " + std::to_string(c.horizon) + " with " +
+                  std::to_string(spec.state_names.size()) +
+                  " states needs a per-stage value table of (horizon + 1) x states entries, "
+                  "more than the limit of " + std::to_string(kMaxStageTableEntries));
+  }
+  if (c.terminal_values.empty()) return;
+  if (c.terminal_values.size() != spec.state_names.size()) {
+    out.Error(At(Field::kCriterion), "internal: terminal values do not match the states");
+    return;
+  }
+  for (StateId s = 0; s < spec.num_states(); ++s) {
+    const double v = c.terminal_values[s];
+    if (!std::isfinite(v)) {
+      out.Error(At(Field::kTerminalValue, s), "terminal value must be a finite number");
+    } else if (v != 0.0 && spec.terminal[s]) {
+      out.Error(At(Field::kTerminalValue, s),
+                "a terminal (absorbing) state has value 0 at every stage; got " + Number(v));
+    }
+  }
+}
+
+void CheckCriterion(const ModelSpec& spec, Collector& out) {
+  const Criterion& c = spec.criterion;
+  switch (c.kind) {
+    case CriterionKind::kDiscounted:
+      if (!(c.discount >= 0.0 && c.discount < 1.0)) {
+        out.Error(At(Field::kDiscount),
+                  "discount must be at least 0 and below 1, got " + Number(c.discount));
+      }
+      return;
+    case CriterionKind::kFiniteHorizon:
+      CheckFiniteHorizon(spec, out);
+      return;
+    case CriterionKind::kTotal:
+      if (!spec.state_names.empty() &&
+          std::find(spec.terminal.begin(), spec.terminal.end(), 1) == spec.terminal.end()) {
+        out.Error(At(Field::kCriterion),
+                  "the total criterion adds rewards until a terminal (goal) state is reached, "
+                  "but no state is terminal; mark the goal states \"terminal\": true");
+      }
+      return;
+    case CriterionKind::kAverage:
+      return;
+  }
+}
+
+void CheckHeader(const ModelSpec& spec, Collector& out) {
+  CheckCriterion(spec, out);
   if (spec.state_names.empty()) out.Error(At(Field::kStates), "the model has no states");
   if (spec.action_names.empty()) out.Error(At(Field::kCatalogue), "the model lists no actions");
   std::unordered_map<std::string_view, int64_t> seen;

@@ -3,7 +3,11 @@
 // do not. Pure function of its input: thread-safe, returns values the caller owns.
 //
 // Rules (api-schema/README.md is the user-facing statement of them):
-//  - discount in [0, 1); at least one state; at least one catalogue action;
+//  - the criterion's parameters: discount in [0, 1) (discounted) or [0, 1] (finite horizon);
+//    horizon in 1..kMaxHorizon with (horizon + 1) x states <= kMaxStageTableEntries; terminal
+//    values finite, one per state or none, 0 at terminal states; total reward needs at least
+//    one terminal (goal) state;
+//  - at least one state; at least one catalogue action;
 //  - non-terminal states have at least one action, terminal states none;
 //  - each state action names a catalogue action, at most once per state, and has outcomes;
 //  - outcome next states exist; probabilities finite and in [0, 1]; rewards finite;
@@ -31,6 +35,9 @@ struct Location {
   enum class Field {
     kModel,              // The whole model.
     kDiscount,           // criterion.discount
+    kCriterion,          // The criterion as a whole (e.g. total reward without a goal).
+    kHorizon,            // criterion.horizon
+    kTerminalValue,      // criterion.terminal_values[state name]
     kStates,             // The states list.
     kCatalogue,          // The action catalogue.
     kCatalogueEntry,     // catalogue[action]

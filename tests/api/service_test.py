@@ -807,7 +807,7 @@ def scenario_a(api, client, root, m):
             resp.headers.get("location") == want, short(resp.body))
     # Equivalent options (defaults written out, another thread count) are the same solve.
     resp = client.call("POST", "/v1/jobs", body={"model_id": pump_id, "options": {
-        "method": "policy_iteration", "tolerance": 1e-8, "threads": 2}}, expect=200,
+        "method": "auto", "tolerance": 1e-8, "threads": 2}}, expect=200,
         name="a: the same solve with explicit defaults")
     R.check("a: explicit defaults are the same solution",
             resp.status == 200 and resp.json()["solution_id"] == solutions[pump_id])

@@ -64,6 +64,38 @@ std::set<std::string> Pointers(const std::vector<DocumentIssue>& issues) {
   return out;
 }
 
+TEST(ModelCodecTest, TotalCriterionNeedsAGoalState) {
+  std::string text = Kiln();
+  ASSERT_TRUE(ReplaceOnce(text, R"("discounted", "discount": 0.8)", R"("total")"));
+  ASSERT_TRUE(DecodeModel(text).ok());  // "cracked" is terminal: a goal.
+  ASSERT_TRUE(ReplaceOnce(text, R"({"name": "cracked", "terminal": true})",
+                          R"({"name": "cracked", "actions": [
+                              {"action": "rest", "outcomes": [{"next": "cold", "probability": 1}]}]})"));
+  ModelDecodeResult result = DecodeModel(text);
+  EXPECT_FALSE(result.ok());
+  EXPECT_TRUE(HasIssue(result.errors, "/criterion", "no state is terminal")) << Describe(result.errors);
+}
+
+TEST(ModelCodecTest, CriteriaDecodeWithTheirParameters) {
+  std::string text = Kiln();
+  ASSERT_TRUE(ReplaceOnce(text, R"("discounted", "discount": 0.8)",
+                          R"("finite_horizon", "horizon": 12, "terminal_values": {"hot": 2.5})"));
+  ModelDecodeResult fh = DecodeModel(text);
+  ASSERT_TRUE(fh.ok()) << Describe(fh.errors);
+  const Criterion& c = fh.model->criterion();
+  EXPECT_EQ(c.kind, CriterionKind::kFiniteHorizon);
+  EXPECT_EQ(c.horizon, 12);
+  EXPECT_DOUBLE_EQ(c.discount, 1.0);  // The default for a finite horizon.
+  ASSERT_EQ(c.terminal_values.size(), 3u);
+  EXPECT_DOUBLE_EQ(c.terminal_values[0], 0.0);
+  EXPECT_DOUBLE_EQ(c.terminal_values[1], 2.5);
+  text = Kiln();
+  ASSERT_TRUE(ReplaceOnce(text, R"("discounted", "discount": 0.8)", R"("average")"));
+  ModelDecodeResult average = DecodeModel(text);
+  ASSERT_TRUE(average.ok()) << Describe(average.errors);
+  EXPECT_EQ(average.model->criterion().kind, CriterionKind::kAverage);
+}
+
 TEST(ModelCodecTest, KilnDecodesWithSizesNamesAndFlags) {
   ModelDecodeResult result = DecodeModel(Kiln());
   ASSERT_TRUE(result.ok()) << Describe(result.errors);
@@ -257,8 +289,38 @@ std::vector<BadDocument> SyntaxAndHeaderRows() {
             R"("objective": "maximize", "colour": "teal",)", "/colour", "unknown field"),
       Tweak("objective_maximise", R"("maximize")", R"("maximise")", "/objective",
             R"("maximize" or "minimize")"),
-      Tweak("criterion_average_is_reserved", R"("discounted")", R"("average")", "/criterion/kind",
-            "'average' is not supported"),
+      Tweak("average_takes_no_discount", R"("discounted")", R"("average")",
+            "/criterion/discount", "unknown field"),
+      Tweak("total_takes_no_discount", R"("discounted")", R"("total")", "/criterion/discount",
+            "unknown field"),
+      Tweak("horizon_missing", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "discount": 0.8)", "/criterion/horizon",
+            "required field is missing"),
+      Tweak("horizon_zero", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 0)", "/criterion/horizon", "from 1 to 1000000"),
+      Tweak("horizon_fractional", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 2.5)", "/criterion/horizon", "whole number"),
+      Tweak("horizon_as_string", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": "12")", "/criterion/horizon",
+            "must be a number, not a string"),
+      Tweak("horizon_too_long", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 1e9)", "/criterion/horizon", "from 1 to 1000000"),
+      Tweak("finite_horizon_discount_above_one", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 3, "discount": 1.5)", "/criterion/discount",
+            "between 0 and 1"),
+      Tweak("terminal_values_unknown_state", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 3, "terminal_values": {"warm": 1})",
+            "/criterion/terminal_values/warm", "state 'warm' is not defined"),
+      Tweak("terminal_value_not_a_number", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 3, "terminal_values": {"hot": true})",
+            "/criterion/terminal_values/hot", "must be a number, not a boolean"),
+      Tweak("terminal_value_at_an_absorbing_state", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 3, "terminal_values": {"cracked": -5})",
+            "/criterion/terminal_values/cracked", "value 0 at every stage"),
+      Tweak("terminal_values_not_an_object", R"("discounted", "discount": 0.8)",
+            R"("finite_horizon", "horizon": 3, "terminal_values": [1, 2])",
+            "/criterion/terminal_values", "must be an object"),
+
       Tweak("criterion_kind_unknown", R"("discounted")", R"("sideways")", "/criterion/kind",
             "unknown criterion 'sideways'"),
       Tweak("discount_one", "0.8}", "1.0}", "/criterion/discount", "at least 0 and below 1"),
