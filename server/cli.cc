@@ -83,7 +83,8 @@ void PrintTable(const Model& m, const Solution& sol, std::ostream& out) {
     }
     const double gap = sol.action_gap[s];
     out << std::left << std::setw(static_cast<int>(width)) << m.state_name(s) << "  "
-        << std::setw(14) << Fixed(sol.values[s]) << "  " << std::setw(16)
+        << std::setw(14) << (std::isnan(sol.values[s]) ? std::string("-") : Fixed(sol.values[s]))
+        << "  " << std::setw(16)
         << (best >= 0          ? m.row_action_name(best)
             : m.terminal(s)    ? std::string("(terminal)")
                                : std::string("(no goal)"))

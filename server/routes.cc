@@ -1,5 +1,6 @@
 // The route table and its handlers: decode -> call the service -> encode. No maths, no
 // locking, no SQL here; status codes for errors come from problem.cc.
+#include <cmath>
 #include <string>
 
 #include "server/api_codec.h"
@@ -40,10 +41,12 @@ Result<int64_t> BatchStage(const Json& body, const Plan& plan) {
   for (int i = 0; i < 2; ++i) {
     if (!body.contains(keys[i])) continue;
     const Json& v = body[keys[i]];
-    if (!v.is_number_integer()) {
-      return InvalidArgumentError(std::string("/") + keys[i] + ": must be an integer");
+    // JSON Schema counts 3.0 as an integer; so do we.
+    if (!v.is_number() || v.get<double>() != std::floor(v.get<double>()) ||
+        std::fabs(v.get<double>()) > 1e15) {
+      return InvalidArgumentError(std::string("/") + keys[i] + ": must be a whole number");
     }
-    texts[i] = std::to_string(v.get<int64_t>());
+    texts[i] = std::to_string(static_cast<int64_t>(v.get<double>()));
   }
   return ResolveStage(plan, texts[0], texts[1]);
 }

@@ -1,8 +1,5 @@
 #include "solver/average_reward.h"
 
-#include <Eigen/IterativeLinearSolvers>
-#include <Eigen/SparseCore>
-#include <Eigen/SparseLU>
 #include <algorithm>
 #include <cmath>
 #include <iterator>
@@ -12,12 +9,17 @@
 #include <sstream>
 #include <utility>
 
-#include "solver/evaluate.h"
+#include "solver/internal/average_chains.h"
 #include "solver/internal/bellman.h"
 #include "solver/internal/run_control.h"
 
 namespace mdp {
 namespace {
+
+using internal::AnalyseChain;
+using internal::AverageEvaluation;
+using internal::ChainStructure;
+using internal::RowExpectation;
 
 constexpr double kInf = std::numeric_limits<double>::infinity();
 
@@ -57,132 +59,7 @@ std::string DescribeClasses(const Model& m, const std::vector<std::vector<StateI
 }
 
 // ---------------------------------------------------------------------------------------
-// Chain structure.
-
-// Strongly connected components of the graph whose edges leave state s through the model
-// entries [range(s).first, range(s).second). Tarjan's algorithm with an explicit stack of
-// frames, so depth is bounded by memory, not the call stack. A component is numbered only
-// after every component it reaches, so each edge goes to a component with the same or a
-// smaller number.
-struct Components {
-  std::vector<int32_t> of;  // Per state.
-  int32_t count = 0;
-};
-
-template <typename EdgeRange>
-Components StronglyConnected(const Model& m, EdgeRange range) {
-  const StateId n = m.num_states();
-  const StateId* next = m.entry_next_data();
-  Components c;
-  c.of.assign(n, -1);
-  std::vector<int32_t> index(n, -1);
-  std::vector<int32_t> low(n, 0);
-  std::vector<StateId> stack;  // Visited states not yet in a component.
-  struct Frame {
-    StateId s;
-    int64_t edge;
-    int64_t end;
-  };
-  std::vector<Frame> frames;
-  int32_t counter = 0;
-  auto open = [&](StateId s) {
-    index[s] = low[s] = counter++;
-    stack.push_back(s);
-    const auto [begin, end] = range(s);
-    frames.push_back(Frame{s, begin, end});
-  };
-  for (StateId root = 0; root < n; ++root) {
-    if (index[root] >= 0) continue;
-    open(root);
-    while (!frames.empty()) {
-      Frame& f = frames.back();
-      if (f.edge < f.end) {
-        const StateId t = next[f.edge++];
-        if (index[t] < 0) {
-          open(t);                 // Invalidates f.
-        } else if (c.of[t] < 0) {  // On the stack.
-          low[f.s] = std::min(low[f.s], index[t]);
-        }
-        continue;
-      }
-      const StateId s = f.s;
-      frames.pop_back();
-      if (!frames.empty()) low[frames.back().s] = std::min(low[frames.back().s], low[s]);
-      if (low[s] == index[s]) {
-        StateId t;
-        do {
-          t = stack.back();
-          stack.pop_back();
-          c.of[t] = c.count;
-        } while (t != s);
-        ++c.count;
-      }
-    }
-  }
-  return c;
-}
-
-// The entries of the row a deterministic policy takes at s (none at terminal states).
-auto PolicyEdges(const Model& m, std::span<const RowId> rows) {
-  return [&m, rows](StateId s) -> std::pair<int64_t, int64_t> {
-    if (rows[s] < 0) return {0, 0};
-    return {m.entry_begin(rows[s]), m.entry_end(rows[s])};
-  };
-}
-
-// The entries of every row of s: the rows of a state, and so their entries, are contiguous.
-auto AllActionEdges(const Model& m) {
-  return [&m](StateId s) -> std::pair<int64_t, int64_t> {
-    return {m.entry_begin(m.row_begin(s)), m.entry_begin(m.row_end(s))};
-  };
-}
-
-struct ChainStructure {
-  std::vector<std::vector<StateId>> classes;  // Recurrent classes, as RecurrentClasses().
-  std::vector<int32_t> class_of;              // Per state: its class, or -1 if transient.
-};
-
-ChainStructure AnalyseChain(const Model& m, std::span<const RowId> rows) {
-  const auto edges = PolicyEdges(m, rows);
-  const Components c = StronglyConnected(m, edges);
-  const StateId* next = m.entry_next_data();
-  // A component is closed iff no edge leaves it; a finite chain's closed irreducible sets
-  // are exactly its recurrent classes.
-  std::vector<uint8_t> closed(c.count, 1);
-  for (StateId s = 0; s < m.num_states(); ++s) {
-    const auto [begin, end] = edges(s);
-    for (int64_t e = begin; e < end; ++e) {
-      if (c.of[next[e]] != c.of[s]) closed[c.of[s]] = 0;
-    }
-  }
-  ChainStructure out;
-  out.class_of.assign(m.num_states(), -1);
-  std::vector<int32_t> class_of_component(c.count, -1);
-  for (StateId s = 0; s < m.num_states(); ++s) {
-    const int32_t comp = c.of[s];
-    if (!closed[comp]) continue;
-    if (class_of_component[comp] < 0) {
-      class_of_component[comp] = static_cast<int32_t>(out.classes.size());
-      out.classes.emplace_back();
-    }
-    out.class_of[s] = class_of_component[comp];
-    out.classes[class_of_component[comp]].push_back(s);
-  }
-  return out;
-}
-
-// ---------------------------------------------------------------------------------------
 // Sweeps.
-
-// sum_s' p(s' | row r) x(s').
-inline double RowExpectation(const Model& m, RowId r, const double* x) {
-  const int64_t* begin = m.row_entry_begin_data();
-  const StateId* next = m.entry_next_data();
-  const double* prob = m.entry_probability_data();
-  double acc = 0.0;
-  for (int64_t e = begin[r], end = begin[r + 1]; e < end; ++e) acc += prob[e] * x[next[e]];
-  return acc;
-}
 
 struct Bracket {
   double lower = 0.0;
@@ -269,15 +146,16 @@ class GainEvidence {
     message += m_.state_name(worst) + "\" no policy ";
     message += maximize ? "earns more than " : "costs less than ";
     message += Number(sign * reach[worst]) + " per step. Recurrent classes of the current ";
-    message += "greedy policy: " + DescribeClasses(m_, chain.classes) + ". Solve the classes ";
-    message += "as separate models, or make every state reach one class.";
+    message += "greedy policy: " + DescribeClasses(m_, chain.classes) + ". Relative value ";
+    message += "iteration needs one gain for all states; use policy iteration, which returns ";
+    message += "the optimal gain of each state.";
     return message;
   }
 
  private:
   // Per state: max of sign * d over the states reachable from it (itself included).
   std::vector<double> ReachableMax(const double* d, double sign) {
-    if (components_.of.empty()) components_ = StronglyConnected(m_, AllActionEdges(m_));
+    if (components_.of.empty()) components_ = internal::AllActionComponents(m_);
     const StateId n = m_.num_states();
     // States grouped by component, in component order (counting sort).
     std::vector<StateId> start(components_.count + 1, 0);
@@ -287,14 +165,14 @@ class GainEvidence {
     std::vector<StateId> fill(start.begin(), start.end() - 1);
     for (StateId s = 0; s < n; ++s) order[fill[components_.of[s]]++] = s;
     // Edges only reach components with smaller numbers, finished before this one.
-    const auto edges = AllActionEdges(m_);
     std::vector<double> best(components_.count, -kInf);
     for (int32_t k = 0; k < components_.count; ++k) {
       for (StateId i = start[k]; i < start[k + 1]; ++i) {
         const StateId s = order[i];
         best[k] = std::max(best[k], sign * d[s]);
-        const auto [begin, end] = edges(s);
-        for (int64_t e = begin; e < end; ++e) {
+        // Every row of s: a state's rows, and so their entries, are contiguous.
+        const int64_t end = m_.entry_begin(m_.row_end(s));
+        for (int64_t e = m_.entry_begin(m_.row_begin(s)); e < end; ++e) {
           best[k] = std::max(best[k], best[components_.of[m_.entry_next(e)]]);
         }
       }
@@ -305,25 +183,111 @@ class GainEvidence {
   }
 
   const Model& m_;
-  Components components_;  // Of the all-actions graph; computed on first use.
+  internal::Components components_;  // Of the all-actions graph; computed on first use.
 };
 
 // ---------------------------------------------------------------------------------------
-// Completing a solution from a bias vector.
+// Completing a solution.
 
-// Fills q, best_row, optimal_row, action_gap, tied_states, the bracket, gain, tie tolerance
-// and loss bound from h (already 0 at the reference state), then the chain structure of
-// best_row. The bracket is widened by a rounding allowance so that it holds in floating
-// point too.
+double SupAbs(std::span<const double> x) {
+  double out = 0.0;
+  for (double v : x) out = std::max(out, std::fabs(v));
+  return out;
+}
+
+// The slack under which two values of sum p g count as equal: rounding in the evaluated
+// gains, with room to spare, plus twice the evaluation's error bound when that is finite
+// (differences below it could be the solver's, not the model's).
+double GainSlack(const AverageEvaluation& eval) {
+  const double error = std::isfinite(eval.gain_error) ? eval.gain_error : 0.0;
+  return 1e-11 * std::max(1.0, SupAbs(eval.gain)) + 2.0 * error;
+}
+
+// Fills best_row, optimal_row, action_gap and tied_states from out.q, the per-state best q
+// `best` and out.tie_tolerance. Only rows with eligible[r] != 0 take part (an empty
+// `eligible` admits every row); best_row[s] is the first of them within `pick` of the best.
+// Returns how far the picks trail the best q.
+template <bool kMaximize>
+double SelectRows(const Model& m, std::span<const double> best, std::span<const uint8_t> eligible,
+                  double pick, int threads, AverageRewardSolution& out) {
+  const StateId n = m.num_states();
+  out.best_row.assign(n, -1);
+  out.optimal_row.assign(m.num_rows(), 0);
+  out.action_gap.assign(n, std::numeric_limits<double>::quiet_NaN());
+  int64_t tied = 0;
+  double pick_slack = 0.0;
+#pragma omp parallel for num_threads(threads) reduction(+ : tied) reduction(max : pick_slack) \
+    schedule(static, 2048)
+  for (StateId s = 0; s < n; ++s) {
+    // A few units in the last place of q, so that rounding cannot split a tie.
+    const double state_rounding = 1e-12 * std::max(1.0, std::fabs(best[s]));
+    int count = 0;
+    int taking_part = 0;
+    bool have_second = false;
+    bool skipped_best = false;
+    double second = 0.0;
+    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+      if (!eligible.empty() && eligible[r] == 0) continue;
+      ++taking_part;
+      const double behind = std::fabs(out.q[r] - best[s]);
+      out.optimal_row[r] = behind <= out.tie_tolerance + state_rounding ? 1 : 0;
+      count += out.optimal_row[r];
+      if (out.best_row[s] < 0 && behind <= pick + state_rounding) {
+        out.best_row[s] = r;
+        pick_slack = std::max(pick_slack, behind);
+      }
+      if (!skipped_best && out.q[r] == best[s]) {
+        skipped_best = true;  // The best itself; the gap is to the best of the others.
+      } else if (!have_second || internal::Better<kMaximize>(out.q[r], second)) {
+        second = out.q[r];
+        have_second = true;
+      }
+    }
+    if (taking_part >= 2) out.action_gap[s] = std::fabs(best[s] - second);
+    if (count >= 2) ++tied;
+  }
+  out.tied_states = tied;
+  return pick_slack;
+}
+
+// Sets recurrent_classes, multichain_suspected and chain_structure_note from best_row.
+void DescribeChain(const Model& m, double tolerance, AverageRewardSolution& out) {
+  ChainStructure chain = AnalyseChain(m, out.best_row);
+  out.recurrent_classes = std::move(chain.classes);
+  out.multichain_suspected = out.recurrent_classes.size() >= 2;
+  out.chain_structure_note.clear();
+  if (!out.multichain_suspected) return;
+  out.chain_structure_note =
+      "The chosen policy has " + std::to_string(out.recurrent_classes.size()) +
+      " recurrent classes: " + DescribeClasses(m, out.recurrent_classes) + ". ";
+  const double width = out.gain_upper - out.gain_lower;
+  if (out.multichain_gain) {
+    const auto [low, high] = std::minmax_element(out.state_gain.begin(), out.state_gain.end());
+    out.chain_structure_note += "The optimal gain differs between states, from " + Number(*low) +
+                                " to " + Number(*high) +
+                                " per step: read each state's own gain (state_gain); the single "
+                                "gain is only the middle of that range.";
+  } else if (width <= tolerance) {
+    out.chain_structure_note += "Their optimal gains agree within the gain bracket (width " +
+                                Number(width) + "), so the single gain holds for every state.";
+  } else {
+    out.chain_structure_note +=
+        "The solve stopped with a gain bracket of width " + Number(width) +
+        ", so the optimal gain may differ between these classes and the single gain may "
+        "be wrong for some states.";
+  }
+}
+
+// The solution when one gain describes every state: fills q, the optimal sets, the bracket,
+// gain, state_gain, tie tolerance and loss bound from h (already 0 at the reference state),
+// then the chain structure of best_row. The bracket is widened by a rounding allowance so
+// that it holds in floating point too.
 template <bool kMaximize>
 void FinishSolution(const Model& m, std::vector<double> h, const AverageRewardOptions& options,
                     AverageRewardSolution& out) {
   const StateId n = m.num_states();
   const int threads = internal::ThreadCount(options.threads);
   out.q.assign(m.num_rows(), 0.0);
-  out.best_row.assign(n, -1);
-  out.optimal_row.assign(m.num_rows(), 0);
-  out.action_gap.assign(n, std::numeric_limits<double>::quiet_NaN());
   std::vector<double> best(n, 0.0);
   double lower = kInf;
   double upper = -kInf;
@@ -351,65 +315,20 @@ void FinishSolution(const Model& m, std::vector<double> h, const AverageRewardOp
   out.gain_upper = upper + rounding;
   out.gain = 0.5 * (out.gain_lower + out.gain_upper);
   const double width = out.gain_upper - out.gain_lower;
-  const double pick = options.tie_tolerance;
   out.tie_tolerance = options.tie_tolerance + width;
-  int64_t tied = 0;
-  double pick_slack = 0.0;
-#pragma omp parallel for num_threads(threads) reduction(+ : tied) reduction(max : pick_slack) \
-    schedule(static, 2048)
-  for (StateId s = 0; s < n; ++s) {
-    const RowId begin = m.row_begin(s);
-    const RowId end = m.row_end(s);
-    if (begin == end) continue;
-    const double state_rounding = 1e-12 * std::max(1.0, std::fabs(best[s]));
-    int count = 0;
-    bool have_second = false;
-    bool skipped_best = false;
-    double second = 0.0;
-    for (RowId r = begin; r < end; ++r) {
-      const double behind = std::fabs(out.q[r] - best[s]);
-      out.optimal_row[r] = behind <= out.tie_tolerance + state_rounding ? 1 : 0;
-      count += out.optimal_row[r];
-      if (out.best_row[s] < 0 && behind <= pick + state_rounding) {
-        out.best_row[s] = r;
-        pick_slack = std::max(pick_slack, behind);
-      }
-      if (!skipped_best && out.q[r] == best[s]) {
-        skipped_best = true;  // The best itself; the gap is to the best of the others.
-      } else if (!have_second || internal::Better<kMaximize>(out.q[r], second)) {
-        second = out.q[r];
-        have_second = true;
-      }
-    }
-    if (end - begin >= 2) out.action_gap[s] = std::fabs(best[s] - second);
-    if (count >= 2) ++tied;
-  }
-  out.tied_states = tied;
+  const double pick_slack = SelectRows<kMaximize>(m, best, {}, options.tie_tolerance, threads, out);
   // The pick trails the best q by pick_slack: its gain is at least gain_lower - pick_slack
   // (header comment), while g* <= gain_upper.
   out.policy_loss_bound = width + pick_slack;
   out.reference_state = options.reference_state;
   out.bias = std::move(h);
+  out.state_gain.assign(n, out.gain);
+  out.multichain_gain = false;
+  // g* and best q - h(s) lie in the bracket, and the gain is its midpoint.
+  out.optimality_residual = 0.5 * width;
+  out.state_gain_error = 0.5 * width;
   ++out.sweeps;
-
-  ChainStructure chain = AnalyseChain(m, out.best_row);
-  out.recurrent_classes = std::move(chain.classes);
-  out.multichain_suspected = out.recurrent_classes.size() >= 2;
-  out.chain_structure_note.clear();
-  if (out.multichain_suspected) {
-    out.chain_structure_note =
-        "The chosen policy has " + std::to_string(out.recurrent_classes.size()) +
-        " recurrent classes: " + DescribeClasses(m, out.recurrent_classes) + ". ";
-    if (width <= options.tolerance) {
-      out.chain_structure_note += "Their optimal gains agree within the gain bracket (width " +
-                                  Number(width) + "), so the single gain holds for every state.";
-    } else {
-      out.chain_structure_note +=
-          "The solve stopped with a gain bracket of width " + Number(width) +
-          ", so the optimal gain may differ between these classes and the single gain may "
-          "be wrong for some states.";
-    }
-  }
+  DescribeChain(m, options.tolerance, out);
 }
 
 void Finish(const Model& m, std::vector<double> h, const AverageRewardOptions& options,
@@ -423,226 +342,170 @@ void Finish(const Model& m, std::vector<double> h, const AverageRewardOptions& o
       out.gain_upper - out.gain_lower <= options.tolerance ? SolveOutcome::kConverged : out.outcome;
 }
 
+// ---------------------------------------------------------------------------------------
+// Completing a solution whose gain differs between states.
+
+struct MultichainRows {
+  std::vector<uint8_t> keeps_gain;  // Per row: |sum p g - g(s)| <= the keep tolerance.
+  std::vector<double> best;         // Per state: the best q over the rows that keep the gain.
+  double gain_residual = 0.0;       // max_s |best_a sum p g - g(s)|.
+  double bias_residual = 0.0;       // max_s |best[s] - g(s) - h(s)|.
+};
+
+// Fills q = r + P h and classifies the rows by the two multichain optimality equations
+// (Puterman 1994, sec. 9.1, from memory): which keep the gain, and the best q among those.
+template <bool kMaximize>
+MultichainRows ClassifyRows(const Model& m, std::span<const double> g, std::span<const double> h,
+                            double keep_tolerance, int threads, std::vector<double>& q) {
+  const StateId n = m.num_states();
+  MultichainRows out;
+  out.keeps_gain.assign(m.num_rows(), 0);
+  out.best.assign(n, 0.0);
+  q.assign(m.num_rows(), 0.0);
+  uint8_t* keeps = out.keeps_gain.data();
+  double gain_residual = 0.0;
+  double bias_residual = 0.0;
+  // clang-format off
+#pragma omp parallel for num_threads(threads) reduction(max : gain_residual, bias_residual) \
+    schedule(static, 2048)
+  // clang-format on
+  for (StateId s = 0; s < n; ++s) {
+    const RowId begin = m.row_begin(s);
+    const RowId end = m.row_end(s);
+    if (begin == end) continue;
+    double best_gain = 0.0;
+    bool any = false;
+    for (RowId r = begin; r < end; ++r) {
+      const double expected = RowExpectation(m, r, g.data());
+      if (r == begin || internal::Better<kMaximize>(expected, best_gain)) best_gain = expected;
+      keeps[r] = std::fabs(expected - g[s]) <= keep_tolerance ? 1 : 0;
+      any = any || keeps[r] != 0;
+      q[r] = m.row_reward(r) + RowExpectation(m, r, h.data());
+    }
+    if (!any) {  // Only possible in a run stopped early: then the best sum p g decides.
+      for (RowId r = begin; r < end; ++r) {
+        keeps[r] = std::fabs(RowExpectation(m, r, g.data()) - best_gain) <= keep_tolerance;
+      }
+    }
+    bool first = true;
+    double best = 0.0;
+    for (RowId r = begin; r < end; ++r) {
+      if (keeps[r] != 0 && (first || internal::Better<kMaximize>(q[r], best))) best = q[r];
+      first = first && keeps[r] == 0;
+    }
+    out.best[s] = best;
+    gain_residual = std::max(gain_residual, std::fabs(best_gain - g[s]));
+    bias_residual = std::max(bias_residual, std::fabs(best - g[s] - h[s]));
+  }
+  out.gain_residual = gain_residual;
+  out.bias_residual = bias_residual;
+  return out;
+}
+
+// The header's bracket, which holds for any vector v, taken at v = h and at v = h + M g and
+// intersected. With M large enough that no row losing gain has the best
+// r + P v - v (M >= (r + P h - h - g) / (g - P g) over those rows), r + P v - v at the rows
+// that keep the gain is r + P h - h, so d(s) -> g*(s) and the bracket tends to
+// [min g*, max g*]. Each end is widened by a rounding allowance.
+template <bool kMaximize>
+Bracket CertifiedBracket(const Model& m, std::span<const double> g, std::span<const double> h,
+                         double keep_tolerance, int threads) {
+  const StateId n = m.num_states();
+  const double sign = kMaximize ? 1.0 : -1.0;
+  double max_reward = 0.0;
+  double big_m = 0.0;
+  // clang-format off
+#pragma omp parallel for num_threads(threads) reduction(max : big_m, max_reward) \
+    schedule(static, 2048)
+  // clang-format on
+  for (StateId s = 0; s < n; ++s) {
+    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+      max_reward = std::max(max_reward, std::fabs(m.row_reward(r)));
+      const double drop = sign * (g[s] - RowExpectation(m, r, g.data()));
+      if (!(drop > keep_tolerance)) continue;
+      const double excess = sign * (m.row_reward(r) + RowExpectation(m, r, h.data()) - h[s] - g[s]);
+      big_m = std::max(big_m, excess / drop);
+    }
+  }
+  std::vector<double> d(n);
+  auto bracket_at = [&](const std::vector<double>& v) {
+    Bracket b = Residuals<kMaximize>(m, 1.0, v.data(), d.data(), nullptr, threads);
+    const double rounding = 1e-15 * (1.0 + max_reward + 2.0 * SupAbs(v));
+    return Bracket{b.lower - rounding, b.upper + rounding};
+  };
+  std::vector<double> v(h.begin(), h.end());
+  Bracket out = bracket_at(v);
+  if (big_m > 0.0) {
+    for (StateId s = 0; s < n; ++s) v[s] = h[s] + big_m * g[s];
+    const Bracket at_u = bracket_at(v);
+    out = Bracket{std::max(out.lower, at_u.lower), std::min(out.upper, at_u.upper)};
+  }
+  return out;
+}
+
+// The solution when the gain g of policy iteration's last evaluated policy `policy` differs
+// between states: state_gain = g, the optimal sets by both optimality equations, the bracket
+// [min g, max g] joined with CertifiedBracket, and the loss of the best_row policy, which is
+// evaluated when it differs from `policy`. kConverged iff `stable` and both the residual of
+// the equations and the evaluation's error bound are within the tolerance.
+template <bool kMaximize>
+Status FinishMultichain(const Model& m, const AverageEvaluation& eval,
+                        std::span<const RowId> policy, bool stable, double target,
+                        const CancelToken* cancel, const AverageRewardOptions& options,
+                        AverageRewardSolution& out) {
+  const int threads = internal::ThreadCount(options.threads);
+  const std::vector<double>& g = eval.gain;
+  std::vector<double> h = eval.bias;
+  const double shift = h[options.reference_state];
+  for (double& x : h) x -= shift;
+  const double keep_tolerance = options.tie_tolerance + GainSlack(eval);
+  const MultichainRows rows = ClassifyRows<kMaximize>(m, g, h, keep_tolerance, threads, out.q);
+  const double rounding = 1e-15 * std::max({1.0, SupAbs(out.q), SupAbs(h), SupAbs(g)});
+  out.optimality_residual = std::max(rows.gain_residual, rows.bias_residual) + rounding;
+  out.state_gain_error = eval.gain_error + rounding;
+  out.tie_tolerance = options.tie_tolerance + 2.0 * out.optimality_residual;
+  // The picks' own slack shows up in the evaluation of the best_row policy below.
+  SelectRows<kMaximize>(m, rows.best, rows.keeps_gain, options.tie_tolerance, threads, out);
+  const auto [low, high] = std::minmax_element(g.begin(), g.end());
+  const Bracket certified = CertifiedBracket<kMaximize>(m, g, h, keep_tolerance, threads);
+  out.gain_lower = std::min(*low, certified.lower);
+  out.gain_upper = std::max(*high, certified.upper);
+  out.gain = 0.5 * (out.gain_lower + out.gain_upper);
+  out.sweeps += 4;  // ClassifyRows, then M and two brackets in CertifiedBracket.
+  out.state_gain = g;
+  out.multichain_gain = true;
+  out.reference_state = options.reference_state;
+  out.bias = std::move(h);
+
+  double loss = 0.0;
+  if (!std::equal(policy.begin(), policy.end(), out.best_row.begin())) {
+    AverageEvaluation picked;
+    const Status status = internal::EvaluateAverage(m, out.best_row, target, cancel, eval, picked);
+    if (status.ok()) {
+      const double sign = kMaximize ? 1.0 : -1.0;
+      for (size_t s = 0; s < g.size(); ++s) loss = std::max(loss, sign * (g[s] - picked.gain[s]));
+    } else if (status.code() == StatusCode::kCancelled) {
+      loss = std::numeric_limits<double>::quiet_NaN();
+    } else {
+      return status;
+    }
+    ++out.sweeps;
+  }
+  out.policy_loss_bound = loss + out.optimality_residual;
+  if (stable && out.optimality_residual <= options.tolerance &&
+      out.state_gain_error <= options.tolerance) {
+    out.outcome = SolveOutcome::kConverged;
+  }
+  DescribeChain(m, options.tolerance, out);
+  return Status::Ok();
+}
+
 // The run limits in the form RunControl reads.
 SolveOptions RunLimits(const AverageRewardOptions& options) {
   SolveOptions run;
   run.max_iterations = options.max_iterations;
   run.time_limit_seconds = options.time_limit_seconds;
   return run;
-}
-
-// ---------------------------------------------------------------------------------------
-// Sparse linear solves (as solver/evaluate.cc: LU for small systems, BiCGSTAB beyond).
-
-using Vector = Eigen::VectorXd;
-using RowMajorMatrix = Eigen::SparseMatrix<double, Eigen::RowMajor>;
-using Triplets = std::vector<Eigen::Triplet<double>>;
-
-class SparseSolver {
- public:
-  SparseSolver(Eigen::Index size, const Triplets& triplets) : a_(size, size) {
-    a_.setFromTriplets(triplets.begin(), triplets.end());
-    a_.makeCompressed();
-    direct_ = size <= EvaluateOptions().direct_max_states;
-  }
-  SparseSolver(const SparseSolver&) = delete;
-  SparseSolver& operator=(const SparseSolver&) = delete;
-
-  Status Prepare() {
-    if (direct_) return Factorize();
-    krylov_.compute(a_);
-    return Status::Ok();
-  }
-
-  // x = A^-1 b. The direct solver adds a step of iterative refinement; the iterative one
-  // starts from x if it has the right size (a warm start) and aims at sup-norm residual
-  // `target` (or the rounding floor of x, if larger).
-  Status Solve(const Vector& b, double target, const CancelToken* cancel, Vector& x) {
-    if (!direct_) {
-      bool reached = false;
-      MDP_RETURN_IF_ERROR(Krylov(b, target, cancel, x, reached));
-      if (reached) return Status::Ok();
-      // BiCGSTAB can break down or stall on strongly non-normal systems, e.g. a long chain
-      // of states that each step one state on: fall back to LU for this and later solves.
-      direct_ = true;
-      MDP_RETURN_IF_ERROR(Factorize());
-    }
-    x = lu_.solve(b);
-    x += lu_.solve(Vector(b - a_ * x));
-    if (!x.allFinite()) return InternalError("sparse LU produced non-finite values");
-    return Status::Ok();
-  }
-
- private:
-  Status Factorize() {
-    const Eigen::SparseMatrix<double> col_major = a_;
-    lu_.analyzePattern(col_major);
-    lu_.factorize(col_major);
-    if (lu_.info() != Eigen::Success) return InternalError("sparse LU factorisation failed");
-    return Status::Ok();
-  }
-
-  // Refinement rounds: each solves for the correction against the true residual, so drift
-  // in BiCGSTAB's recursive residual cannot hide error. Sets `reached`.
-  Status Krylov(const Vector& b, double target, const CancelToken* cancel, Vector& x,
-                bool& reached) {
-    if (x.size() != b.size() || !x.allFinite()) x = Vector::Zero(b.size());
-    constexpr int64_t kMaxIterations = 100000;
-    int64_t spent = 0;
-    for (int round = 0;; ++round) {
-      if (cancel != nullptr && cancel->cancelled()) {
-        return Status(StatusCode::kCancelled, "cancelled during policy evaluation");
-      }
-      const Vector residual = b - a_ * x;
-      const double aim = std::max(target, 1e-13 * x.lpNorm<Eigen::Infinity>());
-      reached = residual.allFinite() && residual.lpNorm<Eigen::Infinity>() <= aim;
-      if (reached || round == 6 || spent >= kMaxIterations || !residual.allFinite()) break;
-      krylov_.setTolerance(std::max(1e-16, std::min(0.5, 0.5 * aim / residual.norm())));
-      krylov_.setMaxIterations(kMaxIterations - spent);
-      const Vector correction = krylov_.solveWithGuess(residual, Vector::Zero(b.size()));
-      spent += krylov_.iterations();
-      if (!correction.allFinite()) break;
-      x += correction;
-    }
-    return Status::Ok();
-  }
-
-  RowMajorMatrix a_;
-  bool direct_ = true;
-  Eigen::SparseLU<Eigen::SparseMatrix<double>> lu_;
-  Eigen::BiCGSTAB<RowMajorMatrix, Eigen::DiagonalPreconditioner<double>> krylov_;
-};
-
-// ---------------------------------------------------------------------------------------
-// Policy evaluation, one recurrent class at a time.
-
-struct AverageEvaluation {
-  ChainStructure chain;
-  std::vector<double> class_gain;  // Per recurrent class.
-  std::vector<double> gain;        // Per state.
-  std::vector<double> bias;        // Per state; 0 at the smallest state of each class.
-};
-
-// On a recurrent class C with smallest state c0: g + h(s) - sum_{s' in C} p h(s') = r(s) for
-// s in C and h(c0) = 0. Unknown 0 is g (h(c0) is known), unknown i > 0 is h(C[i]); the
-// matrix is nonsingular because the class is irreducible.
-// `previous` (may be empty) is the last policy's evaluation, a warm start.
-Status EvaluateClass(const Model& m, std::span<const RowId> rows, std::span<const StateId> cls,
-                     double target, const CancelToken* cancel, const AverageEvaluation& previous,
-                     std::vector<int32_t>& local, AverageEvaluation& out, double& class_gain) {
-  if (cls.size() == 1) {  // An absorbing state: it earns its own reward for ever.
-    const StateId s = cls[0];
-    class_gain = rows[s] < 0 ? 0.0 : m.row_reward(rows[s]);
-    out.bias[s] = 0.0;
-    return Status::Ok();
-  }
-  const Eigen::Index size = static_cast<Eigen::Index>(cls.size());
-  for (Eigen::Index i = 0; i < size; ++i) local[cls[i]] = static_cast<int32_t>(i);
-  Triplets triplets;
-  Vector b(size);
-  for (Eigen::Index i = 0; i < size; ++i) {
-    const RowId r = rows[cls[i]];
-    triplets.emplace_back(i, 0, 1.0);
-    if (i > 0) triplets.emplace_back(i, i, 1.0);
-    for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
-      const int32_t j = local[m.entry_next(e)];
-      if (j > 0) triplets.emplace_back(i, j, -m.entry_probability(e));
-    }
-    b[i] = m.row_reward(r);
-  }
-  SparseSolver solver(size, triplets);
-  MDP_RETURN_IF_ERROR(solver.Prepare());
-  Vector y;
-  if (!previous.bias.empty()) {
-    y.resize(size);
-    y[0] = previous.gain[cls[0]];
-    for (Eigen::Index i = 1; i < size; ++i) y[i] = previous.bias[cls[i]] - previous.bias[cls[0]];
-  }
-  MDP_RETURN_IF_ERROR(solver.Solve(b, target, cancel, y));
-  class_gain = y[0];
-  out.bias[cls[0]] = 0.0;
-  for (Eigen::Index i = 1; i < size; ++i) out.bias[cls[i]] = y[i];
-  return Status::Ok();
-}
-
-// Transient states T: (I - P_TT) g_T = P_TR g_R, then
-// (I - P_TT) h_T = r_T - g_T + P_TR h_R; I - P_TT is nonsingular because the chain leaves T.
-Status EvaluateTransient(const Model& m, std::span<const RowId> rows, double target,
-                         const CancelToken* cancel, const AverageEvaluation& previous,
-                         std::vector<int32_t>& local, AverageEvaluation& out) {
-  std::vector<StateId> transient;
-  for (StateId s = 0; s < m.num_states(); ++s) {
-    if (out.chain.class_of[s] < 0) {
-      local[s] = static_cast<int32_t>(transient.size());
-      transient.push_back(s);
-    }
-  }
-  if (transient.empty()) return Status::Ok();
-  const Eigen::Index size = static_cast<Eigen::Index>(transient.size());
-  Triplets triplets;
-  Vector to_classes_gain = Vector::Zero(size);
-  Vector to_classes_bias = Vector::Zero(size);
-  for (Eigen::Index i = 0; i < size; ++i) {
-    const RowId r = rows[transient[i]];  // Terminal states are classes, so r >= 0.
-    triplets.emplace_back(i, i, 1.0);
-    for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
-      const StateId t = m.entry_next(e);
-      const double p = m.entry_probability(e);
-      if (out.chain.class_of[t] < 0) {
-        triplets.emplace_back(i, local[t], -p);
-      } else {
-        to_classes_gain[i] += p * out.gain[t];
-        to_classes_bias[i] += p * out.bias[t];
-      }
-    }
-  }
-  SparseSolver solver(size, triplets);
-  MDP_RETURN_IF_ERROR(solver.Prepare());
-  Vector g_t;
-  Vector h_t;
-  if (!previous.bias.empty()) {
-    g_t.resize(size);
-    h_t.resize(size);
-    for (Eigen::Index i = 0; i < size; ++i) {
-      g_t[i] = previous.gain[transient[i]];
-      h_t[i] = previous.bias[transient[i]];
-    }
-  }
-  if (out.chain.classes.size() == 1) {
-    g_t = Vector::Constant(size, out.class_gain[0]);  // Absorbed into the one class surely.
-  } else {
-    MDP_RETURN_IF_ERROR(solver.Solve(to_classes_gain, target, cancel, g_t));
-  }
-  Vector b(size);
-  for (Eigen::Index i = 0; i < size; ++i) {
-    b[i] = m.row_reward(rows[transient[i]]) - g_t[i] + to_classes_bias[i];
-  }
-  MDP_RETURN_IF_ERROR(solver.Solve(b, target, cancel, h_t));
-  for (Eigen::Index i = 0; i < size; ++i) {
-    out.gain[transient[i]] = g_t[i];
-    out.bias[transient[i]] = h_t[i];
-  }
-  return Status::Ok();
-}
-
-// Solves (I - P) g = 0, g + (I - P) h = r for the policy `rows`, with h = 0 at the smallest
-// state of each recurrent class (which fixes the solution; Puterman 1994, sec. 8.2 and 9.2,
-// from memory).
-Status EvaluateAverage(const Model& m, std::span<const RowId> rows, double target,
-                       const CancelToken* cancel, const AverageEvaluation& previous,
-                       AverageEvaluation& out) {
-  const StateId n = m.num_states();
-  out.chain = AnalyseChain(m, rows);
-  out.class_gain.assign(out.chain.classes.size(), 0.0);
-  out.gain.assign(n, 0.0);
-  out.bias.assign(n, 0.0);
-  std::vector<int32_t> local(n, -1);
-  for (size_t k = 0; k < out.chain.classes.size(); ++k) {
-    MDP_RETURN_IF_ERROR(EvaluateClass(m, rows, out.chain.classes[k], target, cancel, previous,
-                                      local, out, out.class_gain[k]));
-    for (StateId s : out.chain.classes[k]) out.gain[s] = out.class_gain[k];
-  }
-  return EvaluateTransient(m, rows, target, cancel, previous, local, out);
 }
 
 // ---------------------------------------------------------------------------------------
@@ -716,10 +579,9 @@ int64_t ImproveBias(const Model& m, const double* g, const double* h, double gai
   return changed;
 }
 
-double SupAbs(const std::vector<double>& x) {
-  double out = 0.0;
-  for (double v : x) out = std::max(out, std::fabs(v));
-  return out;
+double GainSpread(const std::vector<double>& g) {
+  const auto [low, high] = std::minmax_element(g.begin(), g.end());
+  return *high - *low;
 }
 
 template <bool kMaximize>
@@ -743,20 +605,22 @@ Result<AverageRewardSolution> PolicyIterationT(const Model& m, const AverageRewa
   std::vector<double> d(n, 0.0);
   ImproveBias<kMaximize>(m, zeros.data(), zeros.data(), 0.0, 0.0, rows.data(), threads);
   ++out.sweeps;
-  AverageEvaluation eval;  // Empty until the first evaluation.
+  AverageEvaluation eval;        // Empty until the first evaluation.
+  std::vector<RowId> evaluated;  // The policy `eval` belongs to.
   std::optional<SolveOutcome> stop;
   bool stable = false;
   for (;;) {
     AverageEvaluation next;
-    const Status status = EvaluateAverage(m, rows, target, cancel, eval, next);
+    const Status status = internal::EvaluateAverage(m, rows, target, cancel, eval, next);
     if (!status.ok()) {
       if (status.code() != StatusCode::kCancelled) return status;
       stop = SolveOutcome::kCancelled;
       break;
     }
     eval = std::move(next);
+    evaluated = rows;
     ++out.sweeps;
-    const double gain_slack = 1e-11 * std::max(1.0, SupAbs(eval.gain));
+    const double gain_slack = GainSlack(eval);
     const double slack = 1e-11 * std::max(reward_scale, SupAbs(eval.bias));
     int64_t changed = ImproveGain<kMaximize>(m, eval.gain.data(), gain_slack, rows.data(), threads);
     if (changed == 0) {
@@ -775,34 +639,20 @@ Result<AverageRewardSolution> PolicyIterationT(const Model& m, const AverageRewa
                          "improve");
     if (stop) break;
   }
-  // A stable policy is optimal (Puterman 1994, sec. 9.2, from memory), so recurrent classes
-  // with different gains mean the optimal gain differs between states.
-  if (stable && eval.class_gain.size() >= 2) {
-    const auto [low, high] = std::minmax_element(eval.class_gain.begin(), eval.class_gain.end());
-    if (*high - *low > options.tolerance) {
-      std::string message =
-          "the optimal policy found is multichain and its recurrent classes have different "
-          "gains per step, so no single gain describes the model:";
-      for (size_t k = 0; k < eval.chain.classes.size() && k < 5; ++k) {
-        message += (k == 0 ? " " : "; ") + DescribeStates(m, eval.chain.classes[k]) + " has gain " +
-                   Number(eval.class_gain[k]);
-      }
-      if (eval.chain.classes.size() > 5) {
-        message += "; and " + std::to_string(eval.chain.classes.size() - 5) + " more classes";
-      }
-      return FailedPreconditionError(
-          message +
-          ". Solve the classes as separate models, or make every state reach one "
-          "class.");
-    }
-  }
-  std::vector<double> h = eval.bias.empty() ? zeros : std::move(eval.bias);
-  if (n > 0) {
-    const double shift = h[options.reference_state];
-    for (double& x : h) x -= shift;
-  }
+  // A stable policy is gain-optimal from every state (Puterman 1994, sec. 9.2, from memory):
+  // if its gain differs between states, so does the optimal gain.
   out.outcome = stop.value_or(SolveOutcome::kStalled);
-  Finish(m, std::move(h), options, out);
+  if (!eval.gain.empty() && GainSpread(eval.gain) > options.tolerance) {
+    MDP_RETURN_IF_ERROR(
+        FinishMultichain<kMaximize>(m, eval, evaluated, stable, target, cancel, options, out));
+  } else {
+    std::vector<double> h = eval.bias.empty() ? zeros : std::move(eval.bias);
+    if (n > 0) {
+      const double shift = h[options.reference_state];
+      for (double& x : h) x -= shift;
+    }
+    Finish(m, std::move(h), options, out);
+  }
   out.solve_seconds = control.elapsed_seconds();
   return out;
 }

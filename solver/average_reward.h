@@ -2,7 +2,7 @@
 // relative value iteration or by policy iteration, with the chain-structure analysis both
 // use. Pure functions of (model, options): thread-safe on immutable models, no global state;
 // results are plain values the caller owns. The model's discount is ignored, and a terminal
-// state counts as absorbing with reward 0 per step.
+// state counts as absorbing with reward 0 per step (so its gain is 0).
 //
 // The criterion. The gain of a stationary policy pi from state s is
 //   g^pi(s) = lim_N (1/N) E[sum_{t<N} r(S_t, A_t) | S_0 = s];
@@ -11,6 +11,12 @@
 //   g + h(s) = best_a q(s, a),   q(s, a) = r(s, a) + sum_s' p(s' | s, a) h(s')        (OE)
 // has solutions (g*, h); h is a bias, or relative value, vector ("best" is max or min).
 // Puterman 1994, Markov Decision Processes, ch. 8 (from memory for section numbers).
+// In general g* may differ between states, and (g*, h) solve the multichain optimality
+// equations (Puterman 1994, ch. 9, from memory)
+//   best_a sum_s' p(s' | s, a) g(s') = g(s),                                          (ME1)
+//   best_{a in K(s)} q(s, a) = g(s) + h(s),   K(s) = {a : sum_s' p(s' | s, a) g(s') = g(s)},  (ME2)
+// where K(s) is the set of actions that keep the gain. (ME1)-(ME2) reduce to (OE) when g is
+// constant (every action keeps a constant gain).
 //
 // The gain bracket. For any vector v let d(s) = best_a [r(s, a) + sum p v] - v(s), with
 // d(s) = 0 at terminal states. Then, in every finite model (unichain or not),
@@ -22,7 +28,7 @@
 // some deterministic stationary policy is gain-optimal (Puterman 1994, ch. 9, from memory).
 // For unichain models this is the bound Puterman gives for (relative) value iteration
 // (sec. 8.5, from memory). The bracket's width is at least max g* - min g*, so it can shrink
-// to 0 only when g* is constant. Reported: gain = the bracket's midpoint, so
+// to 0 only when g* is constant. When it does, gain = the bracket's midpoint, and
 // |gain - g*(s)| <= (gain_upper - gain_lower) / 2 for every s.
 //
 // The greedy policy. The same argument bounds what a policy picking from q loses: if at every
@@ -31,10 +37,12 @@
 //
 // Chain structure. A policy's recurrent classes are the closed strongly connected components
 // of its transition graph (no edge leaves them; a terminal state is a class by itself). With
-// two or more classes the model is multichain and the gain may differ between states. The
-// solvers return kFailedPrecondition, naming the classes, when they can show that it does;
-// multichain models whose optimal gain is the same everywhere are solved normally, with
-// multichain_suspected set and the classes listed. A per-state gain is not computed.
+// two or more classes the model is multichain and the gain may differ between states.
+// Policy iteration then returns the optimal gain of each state (state_gain) with a bias
+// solving (ME1)-(ME2). Relative value iteration needs one gain for all states: it returns
+// kFailedPrecondition, naming the classes, when it can show that the gain differs, and solves
+// multichain models whose optimal gain is the same everywhere normally. Both set
+// multichain_suspected and list the classes of the chosen policy.
 #ifndef MDP_SOLVER_AVERAGE_REWARD_H_
 #define MDP_SOLVER_AVERAGE_REWARD_H_
 
@@ -105,37 +113,92 @@ Status CheckAverageRewardOptions(const Model& m, const AverageRewardOptions& opt
 struct AverageRewardSolution {
   AverageRewardMethod method = AverageRewardMethod::kPolicyIteration;
   AverageRewardOptions options;
-  SolveOutcome outcome = SolveOutcome::kConverged;  // kConverged iff width <= tolerance.
+  // kConverged iff gain_upper - gain_lower <= options.tolerance; for a multichain_gain
+  // solution, iff policy iteration ended at a stable policy and optimality_residual and
+  // state_gain_error are both <= options.tolerance.
+  SolveOutcome outcome = SolveOutcome::kConverged;
   int64_t iterations = 0;  // Relative value iteration: sweeps; policy iteration: improvements.
   int64_t sweeps = 0;      // Full passes over the model, including the final one.
   double solve_seconds = 0.0;
 
-  // See the header comment: gain_lower <= g*(s) <= gain_upper for every s, in any model;
-  // gain is the midpoint.
+  // The optimal gain, in reward units per step. state_gain is the answer in every model; gain
+  // and its bracket summarise it.
+  // One gain for all states (multichain_gain false): gain_lower <= g*(s) <= gain_upper for
+  // every s (header comment), gain is the midpoint, and every state_gain[s] equals gain.
+  // Gain differing between states (multichain_gain true; policy iteration only):
+  //   gain_lower = min(min_s state_gain[s], L),   gain_upper = max(max_s state_gain[s], U),
+  // where [L, U] is the header's bracket at v = bias intersected with the one at
+  // v = bias + M state_gain, M the smallest value at which no row that loses gain has
+  // r + P v - v above state_gain[s] (solver/average_reward.cc). So gain_lower <= g*(s) <=
+  // gain_upper for every s still, and on convergence the pair is [min_s g*(s), max_s g*(s)]
+  // up to the evaluation's rounding; gain is their midpoint, no state's gain in particular.
   double gain = 0.0;
   double gain_lower = 0.0;
   double gain_upper = 0.0;
+  // Per state: the optimal gain g*(s) (0 at terminal states). One gain for all states: every
+  // entry is `gain`. Otherwise: the gain g^pi of the last evaluated policy pi, computed by
+  // sparse linear solves to within state_gain_error. kConverged then means pi is stable
+  // under both improvement steps, which makes it gain-optimal from every state (Puterman
+  // 1994, sec. 9.2, from memory), so g^pi = g*; a run stopped early reports a policy's gain,
+  // so g*(s) >= state_gain[s] - state_gain_error (kMinimize: <= ... +) in any case.
+  std::vector<double> state_gain;
+  // True iff max_s state_gain[s] - min_s state_gain[s] > options.tolerance: the optimal gain
+  // differs between states. Only policy iteration returns such solutions.
+  bool multichain_gain = false;
+  // A bound on |state_gain[s] - g^pi(s)| for every s. One gain for all states: (gain_upper -
+  // gain_lower) / 2, which bounds |gain - g*(s)|. Otherwise, for the evaluated policy pi:
+  // on a recurrent class C, g^pi = pi_C (r + P h - h) differs from the computed class gain
+  // by at most max_C |r + P h - h - g|; on the transient states add the gain system's
+  // residual times the expected time to absorption (bounded from a solve of its own), plus
+  // a rounding allowance. The solves aim at residuals that keep it near options.tolerance /
+  // 100 (the transient gains' aim is divided by the absorption time, LU taking over when
+  // that is below the iterative solver's rounding floor).
+  double state_gain_error = 0.0;
+  // Residual of (ME1)-(ME2) at (state_gain, bias): the larger of
+  // max_s |best_a sum p state_gain - state_gain[s]| and
+  // max_s |best q over the gain-keeping rows of s - state_gain[s] - bias[s]| over non-terminal
+  // s, plus a rounding allowance. It measures how well the equations hold, not the distance
+  // to g* (a slowly mixing chain can amplify it). One gain for all states: (gain_upper -
+  // gain_lower) / 2, which bounds the residual of (OE) at (gain, bias).
+  double optimality_residual = 0.0;
 
-  // A bias: h with best_a q(s, a) - h(s) in [gain_lower, gain_upper] for every non-terminal
-  // s, so it solves (OE) up to the bracket width; bias[reference_state] = 0. (OE) says
-  // nothing about a terminal state's own bias. When (OE) has solutions that differ by more
-  // than a constant (e.g. several optimal policies with different recurrent classes) the two
-  // methods may return different ones.
+  // A bias. One gain for all states: h with best_a q(s, a) - h(s) in [gain_lower, gain_upper]
+  // for every non-terminal s, so it solves (OE) up to the bracket width. Gain differing
+  // between states: h solving (ME2) with g = state_gain up to optimality_residual.
+  // bias[reference_state] = 0 in both cases. (OE) and (ME2) say nothing about a terminal
+  // state's own bias. When the equations have solutions that differ by more than a constant
+  // (e.g. several optimal policies with different recurrent classes) the two methods may
+  // return different ones.
   StateId reference_state = 0;
   std::vector<double> bias;  // Per state.
   std::vector<double> q;     // Per row: r(s, a) + sum p h (relative action values).
-  // Per state: the first row (document order) whose q is within options.tie_tolerance of the
-  // best q; -1 for terminal states.
+  // A row keeps the gain iff |sum p state_gain - state_gain[s]| <= options.tie_tolerance +
+  // 1e-11 max(1, max_s |state_gain[s]|) + 2 state_gain_error (if no row of s does, which only
+  // a run stopped early can show: the rows within that of the best sum p state_gain). One
+  // gain for all states: every row keeps it, and all rows take part below.
+  // Per state: the first row (document order) that keeps the gain and whose q is within
+  // options.tie_tolerance of the best q among the rows that keep the gain; -1 for terminal
+  // states.
   std::vector<RowId> best_row;
-  std::vector<uint8_t> optimal_row;  // Per row: 1 iff q is within tie_tolerance of the best.
-  std::vector<double> action_gap;    // Per state: |best q - second best q|; NaN with < 2 rows.
-  int64_t tied_states = 0;           // States whose optimal set has two or more rows.
-  // options.tie_tolerance + (gain_upper - gain_lower): a policy taking only rows in the
-  // optimal sets has gain within 2 (gain_upper - gain_lower) + options.tie_tolerance of g*
-  // (plus rounding, 1e-12 max(1, |best q|)), by the argument of the header comment.
+  // Per row: 1 iff the row keeps the gain and its q is within tie_tolerance (below) of the
+  // best q among the rows of its state that keep the gain.
+  std::vector<uint8_t> optimal_row;
+  // Per state: |best q - second best q| among the rows that keep the gain; NaN with fewer
+  // than 2 such rows.
+  std::vector<double> action_gap;
+  int64_t tied_states = 0;  // States whose optimal set has two or more rows.
+  // options.tie_tolerance + 2 optimality_residual (with one gain for all states this is
+  // options.tie_tolerance + (gain_upper - gain_lower)). With one gain: a policy taking only
+  // rows in the optimal sets has gain within 2 (gain_upper - gain_lower) +
+  // options.tie_tolerance of g* (plus rounding, 1e-12 max(1, |best q|)), by the argument of
+  // the header comment.
   double tie_tolerance = 0.0;
-  // g* - g^pi(s) <= policy_loss_bound for every s, pi = the best_row policy (kMinimize:
-  // g^pi(s) - g*(s)). Equals the bracket width plus the pick's slack.
+  // pi = the best_row policy. One gain for all states: g* - g^pi(s) <= policy_loss_bound for
+  // every s (kMinimize: g^pi(s) - g*(s)); the bracket width plus the pick's slack. Gain
+  // differing between states: max_s (state_gain[s] - g^pi(s)) (kMinimize: the reverse) by an
+  // exact evaluation of pi (skipped, giving 0, when pi is the evaluated policy), plus
+  // optimality_residual: an estimate as good as the evaluation, not a certificate; NaN if
+  // cancelled during that evaluation.
   double policy_loss_bound = 0.0;
 
   // Chain structure of the best_row policy.
@@ -149,27 +212,33 @@ struct AverageRewardSolution {
 // is at most options.tolerance, or at a limit, on cancel, or when the width stalls.
 // With aperiodicity > 0 it converges on unichain models (Puterman 1994, sec. 8.5, from
 // memory); with 0 it may stall on periodic chains, the bracket still valid.
-// Returns kInvalidArgument for bad options and kFailedPrecondition when it finds the
-// optimal gain differs between states (see the .cc for the test used).
+// Returns kInvalidArgument for bad options and kFailedPrecondition, naming the classes and
+// pointing to policy iteration, when it finds the optimal gain differs between states (see
+// the .cc for the test used). A returned solution has multichain_gain false.
 // `progress` and `cancel` may be null; progress is called once per iteration from this thread.
 Result<AverageRewardSolution> RelativeValueIteration(const Model& m,
                                                      const AverageRewardOptions& options,
                                                      const ProgressFn* progress,
                                                      const CancelToken* cancel);
 
-// Policy iteration for the average criterion. Each policy is evaluated exactly, one
-// recurrent class at a time: g + h(s) = r_pi(s) + sum P_pi h on the class with h = 0 at its
-// smallest state (a sparse system in which g takes that state's unknown), then the transient
-// states (sparse LU up to a few thousand states, BiCGSTAB beyond). Improvement first seeks a
-// better gain (best_a sum p g) and, when no state finds one, a better q among the actions
-// that keep the gain, keeping the current action unless another beats it by more than a
-// small slack: Howard's method, in its multichain form (Puterman 1994, sec. 9.2, from
-// memory), which reduces to the unichain method when every policy has one class.
-// Returns kInvalidArgument for bad options; kFailedPrecondition, naming the classes and
-// their gains, if the final policy's recurrent classes earn different gains;
-// kResourceExhausted if memory runs out; kInternal if a linear solve fails. A run stopped by
-// a limit or cancel returns the last evaluated policy's bias, with a valid bracket.
-// options.aperiodicity is not used. `progress` (may be null) is called once per improvement.
+// Policy iteration for the average criterion, unichain or multichain. Each policy is
+// evaluated exactly, one recurrent class at a time: g + h(s) = r_pi(s) + sum P_pi h on the
+// class with h = 0 at its smallest state (a sparse system in which g takes that state's
+// unknown), then the transient states, whose gain is the absorption-weighted class gains
+// (sparse LU up to a few thousand states, BiCGSTAB beyond). Improvement first seeks a better
+// gain (best_a sum p g) and, when no state finds one, a better q among the actions that keep
+// the gain, keeping the current action unless another beats it by more than a small slack:
+// Howard's method, in its multichain form (Puterman 1994, sec. 9.2, from memory), which
+// reduces to the unichain method when every policy has one class. When the final gain is
+// the same in every state (within options.tolerance) the solution reads as for relative
+// value iteration and kConverged means the bracket is within options.tolerance; otherwise
+// multichain_gain is set, state_gain holds each state's optimal gain, and kConverged means
+// the policy is stable and optimality_residual and state_gain_error are within
+// options.tolerance.
+// Returns kInvalidArgument for bad options; kResourceExhausted if memory runs out; kInternal
+// if a linear solve fails. A run stopped by a limit or cancel returns the last evaluated
+// policy's gain and bias, with a valid bracket. options.aperiodicity is not used.
+// `progress` (may be null) is called once per improvement.
 Result<AverageRewardSolution> AverageRewardPolicyIteration(const Model& m,
                                                            const AverageRewardOptions& options,
                                                            const ProgressFn* progress,

@@ -44,6 +44,12 @@ bool SameSet(std::vector<std::string> x, std::vector<std::string> y) {
 
 double AbsDifference(const StateComparison& c) { return std::fabs(c.value_b - c.value_a); }
 
+// Sort key: NaN (a value undefined on a side) sorts after every number.
+double SortKey(const StateComparison& c) {
+  const double d = AbsDifference(c);
+  return std::isnan(d) ? -1.0 : d;
+}
+
 }  // namespace
 
 ComparisonReport CompareSolutions(const Model& a, const Solution& sa, const Model& b,
@@ -53,9 +59,19 @@ ComparisonReport CompareSolutions(const Model& a, const Solution& sa, const Mode
   r.same_discount = a.discount() == b.discount();
   r.states_a = a.num_states();
   r.states_b = b.num_states();
+  const Criterion& ca = a.criterion();
+  const Criterion& cb = b.criterion();
+  r.criterion_a = ca.kind;
+  r.criterion_b = cb.kind;
+  r.same_criterion = ca.kind == cb.kind && ca.horizon == cb.horizon &&
+                     (ca.kind == CriterionKind::kAverage || ca.kind == CriterionKind::kTotal ||
+                      ca.discount == cb.discount);
   r.value_margin = sa.value_error_bound + sb.value_error_bound + options.value_tolerance;
+  r.values_comparable = ca.kind == cb.kind && ca.kind != CriterionKind::kAverage &&
+                        std::isfinite(r.value_margin);
   std::vector<StateComparison> all_changes;
   double sum_abs = 0.0;
+  int64_t defined = 0;  // Common states with a value on both sides.
   for (StateId s = 0; s < a.num_states(); ++s) {
     std::optional<StateId> t = b.FindState(a.state_name(s));
     if (!t) {
@@ -65,9 +81,15 @@ ComparisonReport CompareSolutions(const Model& a, const Solution& sa, const Mode
     ++r.common_states;
     StateComparison c = Describe(a, sa, s, b, sb, *t);
     const double diff = AbsDifference(c);
-    sum_abs += diff;
-    r.max_abs_value_difference = std::max(r.max_abs_value_difference, diff);
-    if (diff > r.value_margin) ++r.value_changed_count;
+    const bool undefined_a = std::isnan(c.value_a), undefined_b = std::isnan(c.value_b);
+    if (!std::isnan(diff)) {
+      sum_abs += diff;
+      ++defined;
+      r.max_abs_value_difference = std::max(r.max_abs_value_difference, diff);
+    }
+    if (r.values_comparable && (undefined_a != undefined_b || diff > r.value_margin)) {
+      ++r.value_changed_count;
+    }
     if (AvailableNames(a, s) != AvailableNames(b, *t)) ++r.actions_changed_count;
     if (c.pick_a != c.pick_b) ++r.pick_changed_count;
     const bool set_changed = !SameSet(c.optimal_a, c.optimal_b);
@@ -79,9 +101,9 @@ ComparisonReport CompareSolutions(const Model& a, const Solution& sa, const Mode
     if (a.FindState(b.state_name(t))) continue;
     if (r.only_in_b_count++ < options.max_listed) r.only_in_b.push_back(b.state_name(t));
   }
-  if (r.common_states > 0) r.mean_abs_value_difference = sum_abs / double(r.common_states);
+  if (defined > 0) r.mean_abs_value_difference = sum_abs / double(defined);
   auto larger = [](const StateComparison& x, const StateComparison& y) {
-    return AbsDifference(x) > AbsDifference(y);
+    return SortKey(x) > SortKey(y);
   };
   std::stable_sort(r.optimal_set_changes.begin(), r.optimal_set_changes.end(), larger);
   if (static_cast<int64_t>(r.optimal_set_changes.size()) > options.max_listed) {

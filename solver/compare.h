@@ -6,6 +6,14 @@
 // A value difference counts as a change only beyond the two solutions' combined error bound
 // (value_error_bound of each) plus options.value_tolerance: smaller differences may be solve
 // error, not a change in the model.
+//
+// Two criteria of one model (say discounted against average, or two horizons) are compared
+// the same way for the decisions (optimal sets, picks); their values measure different
+// things, so values_comparable is false and no value change is counted (the differences are
+// still reported). Values are comparable only between solutions of the same criterion kind
+// with finite error bounds (not average: a bias is fixed only up to a constant). A value that
+// is undefined (total reward: a state that cannot reach a goal) on one side only counts as a
+// value change; states undefined on both sides are left out of the differences.
 #ifndef MDP_SOLVER_COMPARE_H_
 #define MDP_SOLVER_COMPARE_H_
 
@@ -37,6 +45,10 @@ struct StateComparison {
 struct ComparisonReport {
   bool same_objective = true;
   bool same_discount = true;
+  bool same_criterion = true;     // Same kind and parameters (discount, horizon, ...).
+  CriterionKind criterion_a = CriterionKind::kDiscounted;
+  CriterionKind criterion_b = CriterionKind::kDiscounted;
+  bool values_comparable = true;  // See the header comment.
   int64_t states_a = 0, states_b = 0, common_states = 0;
   std::vector<std::string> only_in_a;  // At most max_listed; counts below are complete.
   std::vector<std::string> only_in_b;

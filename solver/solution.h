@@ -74,8 +74,9 @@ struct Solution {
   //  - kAverage: `values` is a bias h (0 at average.reference_state) and
   //    q(s, a) = r(s, a) + sum p h - gain(s), so values(s) = best q(s, .) up to the gain
   //    bracket. value_error_bound and q_error_bound are NaN (a bias is unique only up to a
-  //    constant per recurrent class); residual is the bracket's width; policy_loss_bound is
-  //    a bound on the gain lost per step (see average_reward.h).
+  //    constant per recurrent class); residual is the bracket's width, or with differing
+  //    gains the optimality residual; policy_loss_bound is a bound on the gain lost per step
+  //    (see average_reward.h).
   //  - kFiniteHorizon: every per-state field is stage 0 (the whole horizon ahead); the table
   //    of all stages is stage_values. Backward induction is exact up to rounding: the
   //    bounds are 0.
@@ -89,7 +90,9 @@ struct Solution {
     double gain_lower = 0.0;  // gain_lower <= g*(s) <= gain_upper for every state s.
     double gain_upper = 0.0;
     StateId reference_state = 0;
-    std::vector<double> state_gain;  // Per state; empty unless computed.
+    // Per state, only when the optimal gain differs between states (multichain models
+    // solved by policy iteration); empty means `gain` is every state's gain.
+    std::vector<double> state_gain;
     bool multichain = false;         // The best policy has two or more recurrent classes.
     std::vector<std::vector<StateId>> recurrent_classes;  // Of the best policy.
     std::string note;                // Plain words about the chain structure; may be empty.

@@ -7,10 +7,7 @@
 #include <string>
 
 #include "solver/policy_iteration.h"
-#if __has_include("solver/total_reward.h")  // TEMPORARY until the SSP solver lands.
 #include "solver/total_reward.h"
-#define MDP_HAVE_TOTAL 1
-#endif
 #include "solver/value_iteration.h"
 
 namespace mdp {
@@ -85,7 +82,9 @@ Result<Solution> SolveAverage(const Model& m, const SolveOptions& options,
   s.iterations = a.iterations;
   s.sweeps = a.sweeps;
   s.solve_seconds = a.solve_seconds;
-  s.residual = a.gain_upper - a.gain_lower;
+  // With one gain everywhere the bracket's width measures convergence; with gains that
+  // differ between states it is their spread, and the optimality residual is the measure.
+  s.residual = a.multichain_gain ? a.optimality_residual : a.gain_upper - a.gain_lower;
   s.value_error_bound = kNaN;
   s.q_error_bound = kNaN;
   s.policy_loss_bound = a.policy_loss_bound;
@@ -97,9 +96,12 @@ Result<Solution> SolveAverage(const Model& m, const SolveOptions& options,
   s.average.multichain = a.multichain_suspected;
   s.average.recurrent_classes = std::move(a.recurrent_classes);
   s.average.note = std::move(a.chain_structure_note);
+  // Per-state gains are kept only when they differ; otherwise `gain` is every state's.
+  if (a.multichain_gain) s.average.state_gain = std::move(a.state_gain);
   s.q = std::move(a.q);
   for (StateId st = 0; st < m.num_states(); ++st) {
-    for (RowId row = m.row_begin(st); row < m.row_end(st); ++row) s.q[row] -= a.gain;
+    const double g = s.average.state_gain.empty() ? a.gain : s.average.state_gain[st];
+    for (RowId row = m.row_begin(st); row < m.row_end(st); ++row) s.q[row] -= g;
   }
   s.values = std::move(a.bias);
   s.best_row = std::move(a.best_row);
@@ -140,7 +142,6 @@ Result<Solution> SolveFiniteHorizon(const Model& m, const SolveOptions& options,
   return s;
 }
 
-#ifdef MDP_HAVE_TOTAL
 Result<Solution> SolveTotal(const Model& m, const SolveOptions& options,
                             const ProgressFn* progress, const CancelToken* cancel) {
   TotalRewardOptions o;
@@ -179,11 +180,6 @@ Result<Solution> SolveTotal(const Model& m, const SolveOptions& options,
   return s;
 }
 
-#else
-Result<Solution> SolveTotal(const Model&, const SolveOptions&, const ProgressFn*, const CancelToken*) {
-  return InvalidArgumentError("total criterion not built");
-}
-#endif
 
 void FillStage(const Model& m, const std::vector<double>& table, Solution& s) {
   const StateId n = m.num_states();

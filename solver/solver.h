@@ -16,9 +16,7 @@
 #include "solver/simulate.h"
 #include "solver/solution.h"
 #include "solver/status.h"
-#if __has_include("solver/total_reward.h")
 #include "solver/total_reward.h"
-#endif
 #include "solver/validate.h"
 #include "solver/verify.h"
 

@@ -25,7 +25,12 @@ Starts `mdpserve serve` processes on 127.0.0.1 with ephemeral ports (--listen 12
   (f) bearer token on (401 with WWW-Authenticate without or with a wrong token, 200 with the
       right one, /healthz and /readyz open) and off (no header needed);
   (g) /metrics: request counters and duration histograms per route equal to the requests
-      this test made, queue and cache gauges, the job duration histogram after solves.
+      this test made, queue and cache gauges, the job duration histogram after solves;
+  (h) the other criteria, on small models whose answers are derived by hand in their
+      docstrings: finite-horizon queries by stage and periods remaining (batch, explain,
+      tables), the average criterion's gain, total cost to a goal with unsafe actions and a
+      state that cannot reach it, and the solves that must fail (a reward loop avoiding the
+      goal; a method of another criterion).
 Every JSON body received is validated against the OpenAPI response schema of its operation
 and status (Draft 2020-12; the api-schema/*.schema.json files are resolved by their $id).
 
@@ -1451,6 +1456,179 @@ def scenario_g(api, server, m):
 
 # --------------------------------------------------------------------------------------------
 
+# --------------------------------------------------------------------------------------------
+# (h) criteria other than discounting: answers checked against values derived by hand below
+
+
+def criterion_model(name, objective, criterion, actions, states):
+    return {"format": "mdpserve/model@1", "name": name, "objective": objective,
+            "criterion": criterion, "actions": actions, "states": states}
+
+
+def saver_model():
+    """Finite horizon H = 6, undiscounted. Poor: consume (+1, stay) or invest (-4, become
+    rich); rich: collect (+3, stay). With k periods to go V_k(rich) = 3k and V_k(poor) =
+    max(1 + V_{k-1}(poor), -4 + 3(k-1)): 1, 2, 3, 5, 8, 11 for k = 1..6, investing iff
+    k >= 4 (k = 4: 5 > 4; k = 3: 3 > 2)."""
+    return criterion_model("Saver", "maximize", {"kind": "finite_horizon", "horizon": 6},
+                           ["consume", "invest", "collect"], [
+        {"name": "poor", "actions": [
+            {"action": "consume", "reward": 1, "outcomes": [{"next": "poor", "probability": 1}]},
+            {"action": "invest", "reward": -4, "outcomes": [{"next": "rich", "probability": 1}]}]},
+        {"name": "rich", "actions": [
+            {"action": "collect", "reward": 3, "outcomes": [{"next": "rich", "probability": 1}]}]}])
+
+
+def cycle_model():
+    """Average reward. a: stay (+1, stay) or go (0, to b); b: work (+3, back to a). Staying
+    earns 1 per step, the cycle (0 + 3) / 2 = 1.5: g* = 1.5 with go at a."""
+    return criterion_model("Cycle", "maximize", {"kind": "average"}, ["stay", "go", "work"], [
+        {"name": "a", "actions": [
+            {"action": "stay", "reward": 1, "outcomes": [{"next": "a", "probability": 1}]},
+            {"action": "go", "outcomes": [{"next": "b", "probability": 1}]}]},
+        {"name": "b", "actions": [
+            {"action": "work", "reward": 3, "outcomes": [{"next": "a", "probability": 1}]}]}])
+
+
+def drone_model():
+    """Total cost to a dock. From cell c_i (i = 0..3) "fly" costs 1 and advances w.p. 0.8
+    (stays w.p. 0.2): 1 / 0.8 = 1.25 expected steps per cell, so from c_i the cost and the
+    expected steps are both 1.25 (4 - i). At c0 "dash" costs 0.5 and reaches the dock or the
+    pit with probability 1/2 each; the pit has only "wait" (cost 0, stays): it cannot reach the
+    dock, so dash is unsafe and never the answer however cheap."""
+    cells = []
+    for i in range(4):
+        nxt = "c%d" % (i + 1) if i < 3 else "dock"
+        acts = [{"action": "fly", "reward": 1, "outcomes": [
+            {"next": nxt, "probability": 0.8}, {"next": "c%d" % i, "probability": 0.2}]}]
+        if i == 0:
+            acts.append({"action": "dash", "reward": 0.5, "outcomes": [
+                {"next": "dock", "probability": 0.5}, {"next": "pit", "probability": 0.5}]})
+        cells.append({"name": "c%d" % i, "actions": acts})
+    cells.append({"name": "pit", "actions": [
+        {"action": "wait", "outcomes": [{"next": "pit", "probability": 1}]}]})
+    cells.append({"name": "dock", "terminal": True})
+    return criterion_model("Drone", "minimize", {"kind": "total"}, ["fly", "dash", "wait"], cells)
+
+
+def answer(client, model_id, state, label, expect=200, **query):
+    q = {"state": state}
+    q.update({k: str(v) for k, v in query.items()})
+    resp = client.call("GET", "/v1/models/{id}/policy", {"id": model_id}, query=q, expect=expect,
+                       name=label)
+    return resp.json() if resp.status == 200 else resp
+
+
+def scenario_h(api, server):
+    client = Client(api, server)
+    ids = {}
+    for label, doc in (("saver", saver_model()), ("cycle", cycle_model()),
+                       ("drone", drone_model())):
+        ids[label] = upload(client, doc, 201, "h: upload %s" % label)
+        _, sid = solve(client, ids[label], name="h: " + label)
+        ids[label + "_solution"] = sid
+    saver = ids["saver"]
+    k_poor = {1: 1, 2: 2, 3: 3, 4: 5, 5: 8, 6: 11}
+    for stage in range(6):
+        k = 6 - stage
+        a = answer(client, saver, "poor", "h: saver poor at stage %d" % stage, stage=stage)
+        R.check("h: saver stage %d: %s, value %d, %d periods remaining" %
+                (stage, "invest" if k >= 4 else "consume", k_poor[k], k),
+                isinstance(a, dict) and a["action"] == ("invest" if k >= 4 else "consume") and
+                close(a["value"], k_poor[k]) and a["stage"] == stage and
+                a["periods_remaining"] == k, str(a)[:300])
+    a = answer(client, saver, "poor", "h: saver without stage")
+    R.check("h: saver without stage is stage 0", isinstance(a, dict) and a["stage"] == 0 and
+            a["action"] == "invest" and close(a["value"], 11) and close(a["action_gap"], 2))
+    a = answer(client, saver, "poor", "h: saver by periods_remaining", periods_remaining=3)
+    R.check("h: periods_remaining 3 is stage 3", isinstance(a, dict) and a["stage"] == 3 and
+            a["action"] == "consume")
+    for label, query in (("stage 6 (= horizon)", {"stage": 6}), ("stage -1", {"stage": -1}),
+                         ("stage abc", {"stage": "abc"}), ("periods_remaining 0",
+                                                          {"periods_remaining": 0}),
+                         ("both stage and periods_remaining", {"stage": 1,
+                                                               "periods_remaining": 5})):
+        resp = answer(client, saver, "poor", "h: saver " + label, expect=400, **query)
+    resp = client.call("POST", "/v1/models/{id}/policy/batch", {"id": saver},
+                       body={"states": ["poor", "rich"], "stage": 5}, expect=200,
+                       name="h: saver batch at stage 5")
+    if resp.status == 200:
+        got = resp.json()["answers"]
+        R.check("h: batch at stage 5: consume (1), collect (3)",
+                got[0]["action"] == "consume" and close(got[0]["value"], 1) and
+                got[1]["action"] == "collect" and close(got[1]["value"], 3))
+    resp = client.call("GET", "/v1/models/{id}/policy/explain", {"id": saver},
+                       query={"state": "poor", "stage": "2"}, expect=200,
+                       name="h: saver explain at stage 2")
+    if resp.status == 200:
+        q = {x["action"]: x["q"] for x in resp.json()["actions"]}
+        # Four periods to go: invest = -4 + V_3(rich) = -4 + 9; consume = 1 + V_3(poor) = 4.
+        R.check("h: explain at stage 2: q(invest) 5, q(consume) 4",
+                close(q.get("invest"), 5) and close(q.get("consume"), 4), str(q))
+    resp = client.call("GET", "/v1/models/{id}/solutions/{sid}/tables",
+                       {"id": saver, "sid": ids["saver_solution"]}, query={"stage": "3"},
+                       expect=200, name="h: saver tables at stage 3")
+    if resp.status == 200:
+        doc = resp.json()
+        poor = [x for x in doc["states"] if x["state"] == "poor"][0]
+        R.check("h: tables at stage 3: consume, value 3, block says stage 3",
+                poor["action"] == "consume" and close(poor["value"], 3) and
+                doc["finite_horizon"] == {"horizon": 6, "stage": 3, "periods_remaining": 3},
+                str(doc.get("finite_horizon")))
+
+    cycle = ids["cycle"]
+    a = answer(client, cycle, "a", "h: cycle at a")
+    R.check("h: average criterion: go at a, gain 1.5", isinstance(a, dict) and
+            a["action"] == "go" and close(a["gain"], 1.5), str(a)[:300])
+    answer(client, cycle, "a", "h: stage on an average model", expect=400, stage=0)
+    resp = client.call("GET", "/v1/models/{id}/solutions/{sid}",
+                       {"id": cycle, "sid": ids["cycle_solution"]}, expect=200,
+                       name="h: cycle solution report")
+    if resp.status == 200:
+        av = resp.json().get("average", {})
+        R.check("h: cycle report brackets the gain 1.5",
+                av.get("gain_lower", 9) <= 1.5 + 1e-9 <= av.get("gain_upper", -9) + 2e-9 and
+                close(av.get("gain"), 1.5), str(av))
+
+    drone = ids["drone"]
+    for i in range(4):
+        a = answer(client, drone, "c%d" % i, "h: drone at c%d" % i)
+        want = 1.25 * (4 - i)
+        R.check("h: drone c%d: fly, cost %.2f, %.2f expected steps" % (i, want, want),
+                isinstance(a, dict) and a["action"] == "fly" and close(a["value"], want) and
+                close(a["expected_steps"], want) and a["reaches_goal"] is True and
+                a["optimal_actions"] == ["fly"], str(a)[:300])
+    a = answer(client, drone, "c0", "h: drone dash is unsafe")
+    R.check("h: unsafe dash has no Q", isinstance(a, dict) and a["q"].get("dash", 0) is None,
+            str(a)[:300])
+    a = answer(client, drone, "pit", "h: drone pit")
+    R.check("h: pit cannot reach the dock: no action, no value", isinstance(a, dict) and
+            a["reaches_goal"] is False and a["action"] is None and a["value"] is None and
+            a["optimal_actions"] == [], str(a)[:300])
+    # A loop that earns reward while avoiding the goal makes the maximum total unbounded.
+    looping = criterion_model("Looping", "maximize", {"kind": "total"}, ["spin", "leave"], [
+        {"name": "wheel", "actions": [
+            {"action": "spin", "reward": 2, "outcomes": [{"next": "wheel", "probability": 1}]},
+            {"action": "leave", "outcomes": [{"next": "exit", "probability": 1}]}]},
+        {"name": "exit", "terminal": True}])
+    loop_id = upload(client, looping, 201, "h: upload looping")
+    resp = client.call("POST", "/v1/jobs", body={"model_id": loop_id}, expect=202,
+                       name="h: looping: start job")
+    if resp.status == 202:
+        view = wait_job(client, resp.json()["id"], ("succeeded", "failed", "cancelled"))
+        R.check("h: looping: job fails naming the loop", view is not None and
+                view["status"] == "failed" and "wheel" in (view.get("error") or ""),
+                str(view)[:400])
+    resp = client.call("POST", "/v1/jobs", body={"model_id": cycle, "options": {
+        "method": "value_iteration"}}, expect=202, name="h: cycle with value_iteration")
+    if resp.status == 202:
+        view = wait_job(client, resp.json()["id"], ("succeeded", "failed", "cancelled"))
+        R.check("h: a method of another criterion fails naming the ones that apply",
+                view is not None and view["status"] == "failed" and
+                "relative_value_iteration" in (view.get("error") or ""), str(view)[:400])
+
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--mdpserve", required=True, help="path to the mdpserve binary")
@@ -1498,6 +1676,7 @@ def main():
                 f.write(token + "\n")
             token_server = server("token", ["--memory-store", "--token-file", token_file])
             scenario_f(api, token_server, token)
+            scenario_h(api, server("criteria", ["--memory-store"]))
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback
             traceback.print_exc()

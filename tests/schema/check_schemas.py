@@ -7,7 +7,8 @@ Without --mdpserve it checks:
   (a) every api-schema/*.schema.json is a valid JSON Schema 2020-12 document, with the
       expected $id, a title and a description on every property;
   (b) every api-schema/examples/*.json validates against model.schema.json and obeys the
-      cross-reference rules that the schema cannot express (a small reference check here);
+      cross-reference rules that the schema cannot express (a small reference check here,
+      criterion rules included);
   (c) a table of deliberately bad model documents is REJECTED by model.schema.json, with an
       error located at or under the expected JSON Pointer; a table of unusual but valid models
       is accepted; models that only the decoder can reject (cross-references) are accepted by
@@ -20,18 +21,30 @@ With --mdpserve it also runs the CLI:
       documents; `evaluate EXAMPLE --policy TMP` (exit 0) an evaluation document; `validate
       EXAMPLE` (exit 0) an errors document without errors; `simulate EXAMPLE --solution TMP
       --start-distribution START` (exit 0) a simulation document whose mean agrees with the
-      exact V^pi of `evaluate` within its 99.9% interval, reproduced exactly by a rerun. Every bad model must be refused by
-      `validate` (non-zero exit, errors document with an error at the expected pointer) and by
-      `solve` (non-zero exit, `POINTER: message` lines on stderr); valid and warning-only
-      models must be accepted by `validate` (exit 0, no errors).
+      exact V^pi of `evaluate` within its 99.9% interval, reproduced exactly by a rerun
+      (verify, evaluate and simulate for discounted examples only: they evaluate discounted
+      values). For the examples of the other criteria the solution document is also checked
+      against the reference solvers of scripts/make_examples.py (plain Python): finite
+      horizon, values and Q of stage 0 and of `solve --stage 3` against backward induction;
+      average, the gain bracket and the bias against relative value iteration, a
+      `relative_value_iteration` solve too, and `--method value_iteration` refused (exit 2)
+      naming the methods that apply; total, values, unsafe (null) Q, the goal-reaching set
+      and the expected steps of the chosen policy. A total-reward model with a loop that
+      earns reward must be refused at solve time (exit 2, the loop named), its cost-minimising
+      twin solved; `--stage` on a model of another criterion refused. Every bad model must be
+      refused by `validate` (non-zero exit, errors document with an error at the expected
+      pointer) and by `solve` (non-zero exit, `POINTER: message` lines on stderr); valid and
+      warning-only models must be accepted by `validate` (exit 0, no errors).
 
 Prints one line per check and ends with `N passed, M failed`; exits 1 when anything failed.
-Uses only the standard library and jsonschema.
+Uses only the standard library, jsonschema and the reference solvers of
+scripts/make_examples.py.
 """
 
 import argparse
 import copy
 import glob
+import importlib.util
 import json
 import math
 import os
@@ -56,6 +69,8 @@ EXPECTED_TIES = {
     "pump-maintenance.json": {"failed_peak": {"service", "replace"},
                               "failed_off": {"service", "replace"}},
     "warehouse-robot.json": {"r0c2": {"west", "east"}},
+    "drone-delivery.json": {"r2c3": {"south", "west"}, "r3c3": {"south", "west"},
+                            "r3c4": {"south", "west"}},
 }
 
 
@@ -190,6 +205,31 @@ def cross_reference_problems(doc):
                 problems.append((p + "/reward", "not finite"))
             if abs(total - 1.0) > 1e-6:
                 problems.append((p + "/outcomes", "probabilities sum to %r" % total))
+    problems.extend(criterion_problems(doc, seen))
+    return problems
+
+
+def criterion_problems(doc, names):
+    """The criterion rules the schema cannot express (see model.schema.json)."""
+    problems = []
+    c = doc.get("criterion", {})
+    states = doc.get("states", [])
+    terminal = {s.get("name") for s in states if s.get("terminal", False)}
+    if c.get("kind") == "finite_horizon":
+        h = c.get("horizon")
+        if isinstance(h, (int, float)) and (h + 1) * len(states) > 2 ** 28:
+            problems.append(("/criterion/horizon", "(horizon + 1) x states over 2^28"))
+        values = c.get("terminal_values", {})
+        for name, v in (values.items() if isinstance(values, dict) else []):
+            p = "/criterion/terminal_values/" + pointer_of([name])[1:]
+            if name not in names:
+                problems.append((p, "terminal value for an unknown state"))
+            elif isinstance(v, (int, float)) and not math.isfinite(v):
+                problems.append((p, "terminal value not finite"))
+            elif v != 0 and name in terminal:
+                problems.append((p, "non-zero terminal value at a terminal state"))
+    if c.get("kind") == "total" and states and not terminal:
+        problems.append(("/criterion", "total criterion without a terminal (goal) state"))
     return problems
 
 
@@ -266,6 +306,28 @@ def _del(path):
     return change
 
 
+def fh(**members):
+    """A finite-horizon criterion: horizon 4 unless given, plus `members`."""
+    c = {"kind": "finite_horizon", "horizon": 4}
+    c.update(members)
+    return c
+
+
+def _without_goal(doc):
+    """No terminal state: c loops on itself."""
+    doc["states"][2] = {"name": "c", "actions": [
+        {"action": "stay", "outcomes": [{"next": "c", "probability": 1.0}]}]}
+
+
+def _many_states(count):
+    """BASE_MODEL with `count` extra states x0, x1, ... that each lead to c."""
+    def change(doc):
+        for i in range(count):
+            doc["states"].append({"name": "x%d" % i, "actions": [
+                {"action": "go", "outcomes": [{"next": "c", "probability": 1.0}]}]})
+    return change
+
+
 def _rename_probability(doc):
     o = doc["states"][0]["actions"][0]["outcomes"][0]
     o["probabilty"] = o.pop("probability")
@@ -288,8 +350,36 @@ SCHEMA_BAD = [
      "/criterion"),
     ("average criterion with a discount",
      variant(_set(["criterion"], {"kind": "average", "discount": 0.9})), "/criterion"),
+    ("total criterion with a horizon",
+     variant(_set(["criterion"], {"kind": "total", "horizon": 10})), "/criterion"),
+    ("total criterion with a discount",
+     variant(_set(["criterion"], {"kind": "total", "discount": 0.9})), "/criterion"),
+    ("criterion kind Average (capitalised)", variant(_set(["criterion"], {"kind": "Average"})),
+     "/criterion"),
     ("finite_horizon without horizon",
      variant(_set(["criterion"], {"kind": "finite_horizon"})), "/criterion"),
+    ("finite_horizon horizon 0", variant(_set(["criterion"], fh(horizon=0))),
+     "/criterion/horizon"),
+    ("finite_horizon horizon 2.5", variant(_set(["criterion"], fh(horizon=2.5))),
+     "/criterion/horizon"),
+    ("finite_horizon horizon 1000001", variant(_set(["criterion"], fh(horizon=1000001))),
+     "/criterion/horizon"),
+    ("finite_horizon horizon as string", variant(_set(["criterion"], fh(horizon="12"))),
+     "/criterion/horizon"),
+    ("finite_horizon discount 1.5", variant(_set(["criterion"], fh(discount=1.5))),
+     "/criterion/discount"),
+    ("finite_horizon discount -0.5", variant(_set(["criterion"], fh(discount=-0.5))),
+     "/criterion/discount"),
+    ("finite_horizon terminal_values as array",
+     variant(_set(["criterion"], fh(terminal_values=[1.0, 2.0]))), "/criterion/terminal_values"),
+    ("finite_horizon terminal value as string",
+     variant(_set(["criterion"], fh(terminal_values={"a": "3"}))),
+     "/criterion/terminal_values/a"),
+    ("finite_horizon terminal value null",
+     variant(_set(["criterion"], fh(terminal_values={"b": None}))),
+     "/criterion/terminal_values/b"),
+    ("finite_horizon with an unknown member (salvage)",
+     variant(_set(["criterion"], fh(salvage={"a": 1.0}))), "/criterion"),
     ("criterion without kind", variant(_set(["criterion"], {"discount": 0.9})), "/criterion"),
     ("discounted criterion with extra field",
      variant(_set(["criterion", "horizon"], 5)), "/criterion"),
@@ -378,6 +468,17 @@ SCHEMA_GOOD = [
                                   .replace('"go"', '"go (fast), then \\"stop\\""')))),
     ("state name of 256 characters",
      variant(lambda d: json.loads(json.dumps(d).replace('"b"', json.dumps("b" * 256))))),
+    ("average criterion", variant(_set(["criterion"], {"kind": "average"}))),
+    ("total criterion (c is the goal)", variant(_set(["criterion"], {"kind": "total"}))),
+    ("finite_horizon with the horizon only", variant(_set(["criterion"], fh(horizon=12)))),
+    ("finite_horizon horizon 12.0 (zero fraction)",
+     variant(_set(["criterion"], fh(horizon=12.0)))),
+    ("finite_horizon with discount and terminal values",
+     variant(_set(["criterion"], fh(discount=0.95, terminal_values={"a": 2.5, "b": -1})))),
+    ("finite_horizon at its limits (horizon 1000000, discount 1, no terminal values)",
+     variant(_set(["criterion"], fh(horizon=1000000, discount=1, terminal_values={})))),
+    ("finite_horizon discount 0, horizon 1, terminal value 0 at the terminal state",
+     variant(_set(["criterion"], fh(horizon=1, discount=0, terminal_values={"c": 0})))),
 ]
 
 # (label, JSON text, expected pointer): models the schema accepts (or cannot parse) but the
@@ -409,6 +510,23 @@ DECODER_BAD = [
     ("duplicate key in an object",
      json.dumps(BASE_MODEL).replace('"name": "a", ', '"name": "a", "name": "a2", ', 1),
      "/states/0"),
+    ("terminal value for an unknown state",
+     json.dumps(variant(_set(["criterion"], fh(terminal_values={"a": 1.0, "zz": 2.0})))),
+     "/criterion/terminal_values/zz"),
+    ("non-zero terminal value at a terminal state",
+     json.dumps(variant(_set(["criterion"], fh(terminal_values={"c": 5.0})))),
+     "/criterion/terminal_values/c"),
+    ("terminal value 1e999 (overflows)",
+     json.dumps(variant(_set(["criterion"], fh(terminal_values={"a": 123.5})))).replace(
+         "123.5", "1e999"), "/criterion/terminal_values/a"),
+    ("total criterion without any terminal state",
+     json.dumps(variant(lambda d: (_without_goal(d), d["criterion"].clear(),
+                                   d["criterion"].update(kind="total")) and None)),
+     "/criterion"),
+    ("finite_horizon: (horizon + 1) x states over 2^28 (1000000 periods, 269 states)",
+     json.dumps(variant(lambda d: (_many_states(266)(d),
+                                   d.update(criterion=fh(horizon=1000000))) and None)),
+     "/criterion/horizon"),
     ("malformed JSON (trailing comma)", json.dumps(BASE_MODEL)[:-1] + ",}", ""),
     ("malformed JSON (truncated)", json.dumps(BASE_MODEL)[:40], ""),
     ("empty input", "", ""),
@@ -457,6 +575,64 @@ def sample_solution():
              "optimal_actions": [], "action_gap": None, "q": {}},
         ],
     }
+
+
+def sample_average_solution():
+    """An average-reward solution: values are biases (0 at the reference state)."""
+    doc = sample_solution()
+    doc.update(criterion={"kind": "average"}, method="relative_value_iteration",
+               residual=2e-9, value_error_bound=None, q_error_bound=None,
+               policy_loss_bound=4e-9)
+    doc["average"] = {"gain": 1.25, "gain_lower": 1.249999999, "gain_upper": 1.250000001,
+                      "gain_error_bound": 1e-9, "reference_state": "a", "multichain": True,
+                      "recurrent_class_count": 2,
+                      "recurrent_classes": [{"states": ["a", "b"], "size": 2},
+                                            {"states": ["c"], "size": 1}],
+                      "note": "two recurrent classes",
+                      "state_gains": {"a": 1.25, "b": 1.25, "c": 0.0}}
+    doc["values"] = {"a": 0.0, "b": -0.5, "c": 0.0}
+    for e, v in zip(doc["states"], (0.0, -0.5, 0.0)):
+        e["value"] = v
+        e["gain"] = 0.0 if e["terminal"] else 1.25
+    return doc
+
+
+def sample_finite_horizon_solution():
+    doc = sample_solution()
+    doc.update(criterion={"kind": "finite_horizon", "discount": 1.0, "horizon": 6,
+                          "terminal_values": {"b": 2.0}},
+               method="backward_induction", iterations=6, sweeps=7, residual=0.0,
+               value_error_bound=0.0, q_error_bound=0.0, policy_loss_bound=3e-9)
+    doc["finite_horizon"] = {"horizon": 6, "stage": 3, "periods_remaining": 3}
+    return doc
+
+
+def sample_total_solution():
+    """A total-reward solution in which b cannot reach the goal c with certainty."""
+    doc = sample_solution()
+    doc.update(criterion={"kind": "total"}, method="policy_iteration", tied_states=0,
+               smallest_gaps=[])
+    doc["values"] = {"a": 3.0, "b": None, "c": 0.0}
+    doc["policy"] = {"a": "go"}
+    doc["states"] = [
+        {"state": "a", "terminal": False, "value": 3.0, "action": "go",
+         "optimal_actions": ["go"], "action_gap": None, "q": {"stay": None, "go": 3.0},
+         "reaches_goal": True, "expected_steps": 1.0},
+        {"state": "b", "terminal": False, "value": None, "action": None,
+         "optimal_actions": [], "action_gap": None, "q": {"stay": None, "go": None},
+         "reaches_goal": False, "expected_steps": None},
+        {"state": "c", "terminal": True, "value": 0.0, "action": None,
+         "optimal_actions": [], "action_gap": None, "q": {}, "reaches_goal": True,
+         "expected_steps": 0.0}]
+    doc["total"] = {"goal_states": 1, "states_not_reaching_goal": 1,
+                    "not_reaching_goal": ["b"], "max_expected_steps": 1.0}
+    return doc
+
+
+def edited(doc, change):
+    doc = copy.deepcopy(doc)
+    change(doc)
+    return doc
 
 
 def sample_verification(kind):
@@ -543,6 +719,54 @@ OTHER_DOCS = [
      sample_state_changed(action_gap="inf"), False),
     ("solution with wrong format", "solution.schema.json",
      changed(sample_solution(), "format", "mdpserve/values@1"), False),
+    ("discounted solution with a null value", "solution.schema.json",
+     edited(sample_solution(), lambda d: d["values"].update(b=None)), False),
+    ("discounted solution with an average block", "solution.schema.json",
+     changed(sample_solution(), "average", sample_average_solution()["average"]), False),
+    ("average solution", "solution.schema.json", sample_average_solution(), True),
+    ("average solution, summary, without state gains", "solution.schema.json",
+     edited(sample_average_solution(),
+            lambda d: (d.pop("states"), d["average"].pop("state_gains"))), True),
+    ("average solution without its average block", "solution.schema.json",
+     dropped(sample_average_solution(), "average"), False),
+    ("average solution with a null bias", "solution.schema.json",
+     edited(sample_average_solution(), lambda d: d["states"][1].update(value=None)), False),
+    ("average solution with a string gain", "solution.schema.json",
+     edited(sample_average_solution(), lambda d: d["average"].update(gain="1.25")), False),
+    ("average solution without reference_state", "solution.schema.json",
+     edited(sample_average_solution(), lambda d: d["average"].pop("reference_state")), False),
+    ("average solution listing 101 recurrent classes", "solution.schema.json",
+     edited(sample_average_solution(), lambda d: d["average"].update(
+         recurrent_classes=[{"states": ["a"], "size": 1}] * 101)), False),
+    ("average solution with a finite_horizon block",
+     "solution.schema.json",
+     changed(sample_average_solution(), "finite_horizon",
+             sample_finite_horizon_solution()["finite_horizon"]), False),
+    ("finite-horizon solution", "solution.schema.json", sample_finite_horizon_solution(), True),
+    ("finite-horizon solution without its block", "solution.schema.json",
+     dropped(sample_finite_horizon_solution(), "finite_horizon"), False),
+    ("finite-horizon solution at stage -1", "solution.schema.json",
+     edited(sample_finite_horizon_solution(),
+            lambda d: d["finite_horizon"].update(stage=-1)), False),
+    ("finite-horizon solution with periods_remaining 0", "solution.schema.json",
+     edited(sample_finite_horizon_solution(),
+            lambda d: d["finite_horizon"].update(periods_remaining=0)), False),
+    ("finite-horizon solution echoing a criterion without horizon", "solution.schema.json",
+     edited(sample_finite_horizon_solution(), lambda d: d["criterion"].pop("horizon")), False),
+    ("total solution with null values and q", "solution.schema.json", sample_total_solution(),
+     True),
+    ("total solution without its block", "solution.schema.json",
+     dropped(sample_total_solution(), "total"), False),
+    ("total solution without reaches_goal in a state", "solution.schema.json",
+     edited(sample_total_solution(), lambda d: d["states"][0].pop("reaches_goal")), False),
+    ("total solution with a negative expected step count", "solution.schema.json",
+     edited(sample_total_solution(), lambda d: d["states"][0].update(expected_steps=-1)),
+     False),
+    ("total solution listing 101 states not reaching a goal", "solution.schema.json",
+     edited(sample_total_solution(),
+            lambda d: d["total"].update(not_reaching_goal=["b"] * 101)), False),
+    ("total solution with goal_states 0", "solution.schema.json",
+     edited(sample_total_solution(), lambda d: d["total"].update(goal_states=0)), False),
     ("verification of values", "verification.schema.json", sample_verification("values"), True),
     ("verification of a policy", "verification.schema.json", sample_verification("policy"),
      True),
@@ -833,19 +1057,32 @@ def check_solution_content(rep, label, model, sol, ties):
         problems.append("model.reward_unit %r" % m.get("reward_unit"))
     if sol["objective"] != model["objective"]:
         problems.append("objective %r" % sol["objective"])
-    if sol["criterion"] != model["criterion"]:
+    if sol["criterion"] != echoed_criterion(model["criterion"]):
         problems.append("criterion %r" % sol["criterion"])
+    kind = model["criterion"]["kind"]
+    for block in ("average", "finite_horizon", "total"):
+        if (block in sol) != (block == kind):
+            problems.append("block %r %s" % (block, "present" if block in sol else "missing"))
     missing = [s for s in nonterminal if s not in sol["values"]]
     if missing:
         problems.append("values lack %s" % missing[:3])
     stray = [s for s in sol["values"] if s not in available]
     if stray:
         problems.append("values name unknown states %s" % stray[:3])
+    # Total reward: states that cannot reach a goal with certainty have no value and no pick.
+    stuck = {s for s, v in sol["values"].items() if v is None}
+    if stuck and kind != "total":
+        problems.append("null values %s under the %s criterion" % (sorted(stuck)[:3], kind))
+    listed = sol.get("total", {}).get("not_reaching_goal", [])
+    if kind == "total" and sorted(stuck) != sorted(listed):
+        problems.append("null values %s but not_reaching_goal %s"
+                        % (sorted(stuck)[:3], listed[:3]))
+    # (An average-reward bias says nothing about a terminal state itself.)
     nonzero = [s for s in terminal if sol["values"].get(s, 0.0) != 0.0]
-    if nonzero:
+    if nonzero and kind != "average":
         problems.append("terminal states with non-zero value %s" % nonzero[:3])
-    if set(sol["policy"]) != set(nonterminal):
-        problems.append("policy keys differ from the non-terminal states")
+    if set(sol["policy"]) != set(nonterminal) - stuck:
+        problems.append("policy keys differ from the non-terminal states that have a value")
     bad = [s for s, a in sol["policy"].items() if a not in available.get(s, [])]
     if bad:
         problems.append("policy picks unavailable actions in %s" % bad[:3])
@@ -869,20 +1106,36 @@ def check_solution_content(rep, label, model, sol, ties):
         if e["terminal"] != (name in terminal):
             detail.append("%s: terminal %r" % (name, e["terminal"]))
         if name in terminal:
-            if e["action"] is not None or e["optimal_actions"] or e["q"] or e["value"] != 0:
+            if e["action"] is not None or e["optimal_actions"] or e["q"] or \
+                    (e["value"] != 0 and kind != "average"):
                 detail.append("%s: terminal entry not empty" % name)
             continue
         if set(e["q"]) != set(available[name]):
             detail.append("%s: q keys %s" % (name, sorted(e["q"])))
+        if kind == "total":
+            if e["reaches_goal"] != (name not in stuck):
+                detail.append("%s: reaches_goal %r" % (name, e["reaches_goal"]))
+            if (e["expected_steps"] is None) != (name in stuck):
+                detail.append("%s: expected_steps %r" % (name, e["expected_steps"]))
+        if name in stuck:
+            if e["action"] is not None or e["optimal_actions"] or e["value"] is not None or \
+                    any(q is not None for q in e["q"].values()) or e["action_gap"] is not None:
+                detail.append("%s: entry of a state that cannot reach a goal not empty" % name)
+            continue
+        with_q = [a for a, q in e["q"].items() if q is not None]  # total: safe actions
         if e["action"] != sol["policy"].get(name):
             detail.append("%s: action differs from policy" % name)
         if e["action"] not in e["optimal_actions"]:
             detail.append("%s: action not among optimal_actions" % name)
         if not set(e["optimal_actions"]) <= set(available[name]):
             detail.append("%s: optimal_actions not available" % name)
-        if (e["action_gap"] is None) != (len(available[name]) < 2):
+        if not set(e["optimal_actions"]) <= set(with_q):
+            detail.append("%s: an optimal action has a null q" % name)
+        if (e["action_gap"] is None) != (len(with_q) < 2) and \
+                not (kind == "average" and sol["average"]["multichain"]):
+            # (A multichain average solution compares only the actions that keep the gain.)
             detail.append("%s: action_gap %r with %d actions"
-                          % (name, e["action_gap"], len(available[name])))
+                          % (name, e["action_gap"], len(with_q)))
         if e["value"] != sol["values"].get(name):
             detail.append("%s: value differs from values" % name)
         if len(e["optimal_actions"]) > 1:
@@ -896,6 +1149,201 @@ def check_solution_content(rep, label, model, sol, ties):
         got = set(e["optimal_actions"]) if e else set()
         rep.check("%s reports the tie in %s" % (label, state), actions <= got,
                   "optimal_actions %s, expected %s among them" % (sorted(got), sorted(actions)))
+
+
+def echoed_criterion(criterion):
+    """The criterion as a solution echoes it: a finite horizon's default discount written out,
+    zero terminal values left out."""
+    c = dict(criterion)
+    if c["kind"] == "finite_horizon":
+        c.setdefault("discount", 1.0)
+        values = {k: v for k, v in c.pop("terminal_values", {}).items() if v != 0}
+        if values:
+            c["terminal_values"] = values
+    return c
+
+
+def close(a, b, tol=1e-9):
+    """a and b agree within tol, relative to their size; None only with None."""
+    if a is None or b is None:
+        return a is None and b is None
+    return abs(a - b) <= tol * (1.0 + abs(b))
+
+
+def reference_solvers(root):
+    """scripts/make_examples.py, whose plain-Python solvers serve as references."""
+    spec = importlib.util.spec_from_file_location(
+        "make_examples", os.path.join(root, "scripts", "make_examples.py"))
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def solve_to_document(rep, schemas, binary, root, tmp, path, extra, label):
+    """Runs `solve PATH EXTRA --out TMP`; returns the schema-valid document or None."""
+    out = os.path.join(tmp, "%s.%d.solution.json" % (os.path.basename(path), len(extra)))
+    rc, _, err = run([binary, "solve", path] + extra + ["--out", out], root)
+    if not rep.check("%s exits 0" % label, rc == 0, "exit %r; %s" % (rc, short(err))):
+        return None
+    with open(out, encoding="utf-8") as fh:
+        return validated_output(rep, schemas, label, "solution.schema.json", fh.read())
+
+
+def check_stage(rep, label, model, sol, V, Q, stage):
+    """A finite-horizon solution document at `stage` against backward induction."""
+    horizon = model["criterion"]["horizon"]
+    problems = []
+    want = {"horizon": horizon, "stage": stage, "periods_remaining": horizon - stage}
+    if sol["finite_horizon"] != want:
+        problems.append("finite_horizon %r, expected %r" % (sol["finite_horizon"], want))
+    if sol["method"] != "backward_induction" or sol["value_error_bound"] != 0 or \
+            sol["residual"] != 0:
+        problems.append("method %r, residual %r, value_error_bound %r"
+                        % (sol["method"], sol["residual"], sol["value_error_bound"]))
+    sign = 1.0 if model["objective"] == "maximize" else -1.0
+    for name, v in sol["values"].items():
+        if not close(v, V[stage][name]):
+            problems.append("V_%d(%s) %r, reference %r" % (stage, name, v, V[stage][name]))
+    for e in sol.get("states", []):
+        for a, q in e["q"].items():
+            if not close(q, Q[stage][e["state"]][a]):
+                problems.append("Q_%d(%s, %s) %r, reference %r"
+                                % (stage, e["state"], a, q, Q[stage][e["state"]][a]))
+    for name, a in sol["policy"].items():
+        best = max(sign * q for q in Q[stage][name].values())
+        if sign * Q[stage][name][a] < best - 1e-9 * (1 + abs(best)):
+            problems.append("stage %d picks %s in %s, not optimal" % (stage, a, name))
+    rep.check("%s agrees with backward induction at stage %d" % (label, stage), not problems,
+              "; ".join(problems[:4]))
+
+
+def check_average(rep, label, model, sol, reference):
+    """An average-reward solution document against relative value iteration (unichain)."""
+    lo, hi, h, q = reference
+    a = sol["average"]
+    problems = []
+    if not (a["gain_lower"] - 1e-9 <= hi and lo <= a["gain_upper"] + 1e-9):
+        problems.append("bracket [%r, %r] misses the reference [%r, %r]"
+                        % (a["gain_lower"], a["gain_upper"], lo, hi))
+    if not a["gain_lower"] <= a["gain"] <= a["gain_upper"] or \
+            not close(a["gain_error_bound"], (a["gain_upper"] - a["gain_lower"]) / 2, 1e-6):
+        problems.append("gain %r, error bound %r" % (a["gain"], a["gain_error_bound"]))
+    if sol["outcome"] == "converged" and \
+            a["gain_upper"] - a["gain_lower"] > sol["options"]["tolerance"]:
+        problems.append("converged with a bracket wider than the tolerance")
+    if sol["value_error_bound"] is not None or sol["q_error_bound"] is not None:
+        problems.append("value/q error bounds %r, %r, expected null"
+                        % (sol["value_error_bound"], sol["q_error_bound"]))
+    if a["reference_state"] != model["states"][0]["name"] or \
+            sol["values"][a["reference_state"]] != 0:
+        problems.append("reference state %r" % a["reference_state"])
+    if a["recurrent_class_count"] != len(a["recurrent_classes"]) or \
+            a["multichain"] != (a["recurrent_class_count"] >= 2) or \
+            any(c["size"] != len(c["states"]) for c in a["recurrent_classes"]):
+        problems.append("recurrent classes %r" % a["recurrent_classes"][:3])
+    for name, v in sol["values"].items():
+        if not close(v, h[name], 1e-6):
+            problems.append("bias %s %r, reference %r" % (name, v, h[name]))
+    for e in sol.get("states", []):
+        for act, value in e["q"].items():
+            if not close(value, q[e["state"]][act], 1e-6):
+                problems.append("q(%s, %s) %r, reference %r"
+                                % (e["state"], act, value, q[e["state"]][act]))
+    rep.check("%s agrees with relative value iteration" % label, not problems,
+              "; ".join(problems[:4]), info="gain %.10g" % a["gain"])
+
+
+def check_total(rep, label, model, sol, ref):
+    """A total-reward solution document against value iteration over the safe actions."""
+    V, Q, _ = ref.total_reward(model)
+    problems = []
+    for name, v in sol["values"].items():
+        if not close(v, V[name]):
+            problems.append("V(%s) %r, reference %r" % (name, v, V[name]))
+    for e in sol.get("states", []):
+        for a, q in e["q"].items():
+            if not close(q, Q[e["state"]][a]):
+                problems.append("q(%s, %s) %r, reference %r" % (e["state"], a, q,
+                                                                Q[e["state"]][a]))
+    states = [s["name"] for s in model["states"]]
+    stuck = [n for n in states if V[n] is None]
+    want = {"goal_states": sum(1 for s in model["states"] if s.get("terminal", False)),
+            "states_not_reaching_goal": len(stuck), "not_reaching_goal": stuck[:100]}
+    got = {k: sol["total"][k] for k in want}
+    if got != want:
+        problems.append("total %r, expected %r" % (got, want))
+    steps = ref.expected_steps(model, sol["policy"])
+    for e in sol.get("states", []):
+        if not close(e["expected_steps"], steps[e["state"]]):
+            problems.append("expected_steps(%s) %r, reference %r"
+                            % (e["state"], e["expected_steps"], steps[e["state"]]))
+    finite = [x for x in steps.values() if x is not None]
+    if not close(sol["total"]["max_expected_steps"], max(finite)):
+        problems.append("max_expected_steps %r, reference %r"
+                        % (sol["total"]["max_expected_steps"], max(finite)))
+    rep.check("%s agrees with the reference total reward, unsafe actions and steps" % label,
+              not problems, "; ".join(problems[:4]),
+              info="%d states without a value" % len(stuck))
+
+
+def check_cli_criterion(rep, schemas, binary, root, tmp, path, model, sol):
+    """The solution of an example of the average, finite_horizon or total criterion against
+    the reference solvers, and the criterion's own CLI runs."""
+    name = os.path.basename(path)
+    ref = reference_solvers(root)
+    kind = model["criterion"]["kind"]
+    if kind == "finite_horizon":
+        V, Q = ref.backward_induction(model)
+        check_stage(rep, "solve %s" % name, model, sol, V, Q, 0)
+        label = "solve %s --stage 3" % name
+        doc = solve_to_document(rep, schemas, binary, root, tmp, path, ["--stage", "3"], label)
+        if doc is not None:
+            check_solution_content(rep, label, model, doc, {})
+            check_stage(rep, label, model, doc, V, Q, 3)
+    elif kind == "average":
+        reference = ref.relative_value_iteration(model)
+        check_average(rep, "solve %s" % name, model, sol, reference)
+        label = "solve %s --method relative_value_iteration" % name
+        doc = solve_to_document(rep, schemas, binary, root, tmp, path,
+                                ["--method", "relative_value_iteration"], label)
+        if doc is not None:
+            rep.check("%s reports its method" % label,
+                      doc["method"] == "relative_value_iteration", repr(doc["method"]))
+            check_solution_content(rep, label, model, doc, {})
+            check_average(rep, label, model, doc, reference)
+        rc, _, err = run([binary, "solve", path, "--method", "value_iteration"], root)
+        rep.check("solve %s --method value_iteration is refused (exit 2) naming the methods "
+                  "that apply" % name,
+                  rc == 2 and "does not apply to the average criterion" in err and
+                  "relative_value_iteration" in err and "policy_iteration" in err,
+                  "exit %r; %s" % (rc, short(err)))
+        rc, _, err = run([binary, "solve", path, "--stage", "3"], root)
+        rep.check("solve %s --stage 3 is refused (exit 2): not a finite horizon" % name,
+                  rc == 2 and "finite-horizon" in err, "exit %r; %s" % (rc, short(err)))
+    elif kind == "total":
+        check_total(rep, "solve %s" % name, model, sol, ref)
+
+
+def check_cli_unbounded_total(rep, schemas, binary, root, tmp):
+    """BASE_MODEL under the total criterion: the loop a <-> b earns reward, so maximising is
+    refused at solve time naming the loop, while minimising (the rewards become costs, the
+    loop a cost) is solved."""
+    doc = variant(_set(["criterion"], {"kind": "total"}))
+    path = os.path.join(tmp, "unbounded-total.json")
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh)
+    rc, _, err = run([binary, "solve", path], root)
+    rep.check("solve refuses a total-reward model whose loop earns reward (exit 2, loop named)",
+              rc == 2 and "unbounded" in err and '"a": "stay"' in err and '"b": "stay"' in err,
+              "exit %r; %s" % (rc, short(err)))
+    doc["objective"] = "minimize"
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh)
+    label = "solve of its cost-minimising twin"
+    sol = solve_to_document(rep, schemas, binary, root, tmp, path, [], label)
+    if sol is not None:
+        check_solution_content(rep, label, doc, sol, {})
+        check_total(rep, label, doc, sol, reference_solvers(root))
 
 
 def check_cli_example(rep, schemas, binary, root, tmp, path):
@@ -929,6 +1377,10 @@ def check_cli_example(rep, schemas, binary, root, tmp, path):
     if sol is None:
         return
     check_solution_content(rep, "solve %s" % label, model, sol, EXPECTED_TIES.get(name, {}))
+    if model["criterion"]["kind"] != "discounted":
+        # verify, evaluate and simulate work with discounted values: not run on the others.
+        check_cli_criterion(rep, schemas, binary, root, tmp, path, model, sol)
+        return
 
     for kind in ("values", "policy"):
         rc, out, err = run([binary, "verify", path, "--" + kind, sol_path], root)
@@ -1115,6 +1567,7 @@ def main():
                     for path in sorted(glob.glob(os.path.join(root, "api-schema", "examples",
                                                               "*.json"))):
                         check_cli_example(rep, schemas, binary, root, tmp, path)
+                    check_cli_unbounded_total(rep, schemas, binary, root, tmp)
                     check_cli_refusals(rep, schemas, binary, root, tmp)
 
     print("%d passed, %d failed" % (rep.passed, rep.failed))
