@@ -207,6 +207,11 @@ Result<SolveStart> PlanningService::StartSolve(const std::string& model_id,
   MDP_RETURN_IF_ERROR(CheckSolveOptions(options));
   Result<ModelRecord> model = store_.GetModel(model_id, false);
   if (!model.ok()) return model.status();
+  // A model still in the cache (as after its upload) tells its criterion for free: refuse a
+  // method that does not apply now rather than in a failed job.
+  if (auto cached = cache_.GetModel(model_id)) {
+    MDP_RETURN_IF_ERROR(CheckMethod(cached->criterion().kind, options.method));
+  }
   const std::string options_json = CanonicalSolveOptions(options);
   const std::string solution_id = SolutionIdFor(model_id, options_json);
   SolveStart start;

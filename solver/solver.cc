@@ -212,6 +212,14 @@ void FillStage(const Model& m, const std::vector<double>& table, Solution& s) {
 
 }  // namespace
 
+Status CheckMethod(CriterionKind kind, Method method) {
+  method = ResolveMethod(kind, method);
+  if (Applies(kind, method)) return Status::Ok();
+  return InvalidArgumentError("method '" + std::string(MethodName(method)) +
+                              "' does not apply to the " + std::string(CriterionKindName(kind)) +
+                              " criterion; use " + MethodsFor(kind));
+}
+
 Solution SolutionAtStage(const Model& m, const Solution& solution, int64_t stage) {
   Solution out;
   out.criterion = solution.criterion;
@@ -239,12 +247,7 @@ Result<Solution> Solve(const Model& m, const SolveOptions& requested, const Prog
   const CriterionKind kind = m.criterion().kind;
   SolveOptions options = requested;
   options.method = ResolveMethod(kind, requested.method);
-  if (!Applies(kind, options.method)) {
-    return InvalidArgumentError("method '" + std::string(MethodName(options.method)) +
-                                "' does not apply to the " +
-                                std::string(CriterionKindName(kind)) +
-                                " criterion; use " + MethodsFor(kind));
-  }
+  MDP_RETURN_IF_ERROR(CheckMethod(kind, options.method));
   // The one place where allocation failure inside the solver becomes a Status.
   try {
     switch (kind) {

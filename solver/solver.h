@@ -35,6 +35,10 @@ namespace mdp {
 Result<Solution> Solve(const Model& m, const SolveOptions& options,
                        const ProgressFn* progress = nullptr, const CancelToken* cancel = nullptr);
 
+// OK iff `method` (after kAuto is resolved) is one of the criterion's methods; else
+// kInvalidArgument naming the methods that apply. Solve() calls it first.
+Status CheckMethod(CriterionKind criterion, Method method);
+
 // Finite horizon: the decision at `stage` (0 <= stage < solution.horizon; stage t has
 // horizon - t periods to go) in state `s`, from a Solution that Solve() made for `m`.
 StageDecision DecideAtStage(const Model& m, const Solution& solution, int64_t stage, StateId s);
