@@ -208,9 +208,25 @@ int RunVerify(const VerifyArgs& args, std::ostream& out, std::ostream& err) {
       PrintIssues(err, path, values.errors, "");
       return kExitBadInput;
     }
-    ValuesReport report = VerifyValues(*model, values.value, args.options);
-    (void)Emit(EncodeValuesReport(*model, report), "", out);
-    return report.pass ? kExitOk : kExitVerdictFailed;
+    // Total reward and finite horizon measure the candidate against a fresh solve.
+    const CriterionKind kind = model->criterion().kind;
+    Result<ValuesReport> report = ValuesReport{};
+    if (kind == CriterionKind::kTotal || kind == CriterionKind::kFiniteHorizon) {
+      Result<Solution> reference = ReferenceSolution(*model);
+      if (!reference.ok()) {
+        err << "mdpserve: " << reference.status().message() << "\n";
+        return kExitBadInput;
+      }
+      report = VerifyValues(*model, values.value, *reference, args.options);
+    } else {
+      report = VerifyValues(*model, values.value, args.options);
+    }
+    if (!report.ok()) {
+      err << "mdpserve: " << report.status().message() << "\n";
+      return kExitBadInput;
+    }
+    (void)Emit(EncodeValuesReport(*model, *report), "", out);
+    return report->pass ? kExitOk : kExitVerdictFailed;
   }
   Decoded<Policy> policy = DecodePolicy(*model, *text);
   if (!policy.ok()) {
@@ -255,6 +271,15 @@ int RunEvaluate(const EvaluateArgs& args, std::ostream& out, std::ostream& err) 
   }
   EvaluateOptions options;
   options.solver = *linear;
+  if (model->criterion().kind != CriterionKind::kDiscounted) {
+    Result<CriterionValues> values = EvaluateUnderCriterion(*model, policy.value, options);
+    if (!values.ok()) {
+      err << "mdpserve: " << values.status().message() << "\n";
+      return kExitBadInput;
+    }
+    (void)Emit(EncodeCriterionEvaluation(*model, *values), "", out);
+    return kExitOk;
+  }
   Result<PolicyValues> values = EvaluatePolicy(*model, policy.value, options);
   if (!values.ok()) {
     err << "mdpserve: " << values.status().message() << "\n";
@@ -298,19 +323,11 @@ struct SimulateArgs {
   bool progress = false;
 };
 
-// The policy to simulate: from --policy or --solution, else the greedy policy of a fresh
-// policy-iteration solve. Nullopt (after printing why) iff none can be had.
+// The policy to simulate from --policy or --solution (one of them is given). Nullopt (after
+// printing why) iff it cannot be read.
 std::optional<Policy> PolicyToSimulate(const Model& m, const SimulateArgs& args,
                                        std::ostream& err) {
   const std::string& path = args.policy.empty() ? args.solution : args.policy;
-  if (path.empty()) {
-    Result<Solution> solution = Solve(m, SolveOptions{});
-    if (!solution.ok()) {
-      err << "mdpserve: " << solution.status().message() << "\n";
-      return std::nullopt;
-    }
-    return GreedyPolicy(m, *solution);
-  }
   Result<std::string> text = ReadWholeFile(path);
   if (!text.ok()) {
     err << "mdpserve: " << text.status().message() << "\n";
@@ -372,6 +389,13 @@ ProgressFn ProgressLines(int64_t episodes, std::ostream& err) {
 void WarnAboutTruncation(const SimulationReport& r, int64_t max_steps, std::ostream& err) {
   const double half_width = std::isnan(r.ci_high) ? 0.0 : 0.5 * (r.ci_high - r.ci_low);
   if (r.truncated_episodes == 0 || r.truncation_bias_bound <= 0.1 * half_width) return;
+  if (std::isinf(r.truncation_bias_bound)) {  // Total reward: no geometric tail bound.
+    err << "mdpserve: warning: " << r.truncated_episodes << " of " << r.episodes
+        << " episodes had not reached a goal after --max-steps " << max_steps
+        << "; the mean leaves out what they would still collect, by an amount no bound "
+           "covers; raise --max-steps\n";
+    return;
+  }
   err << "mdpserve: warning: " << r.truncated_episodes << " of " << r.episodes
       << " episodes were cut at --max-steps " << max_steps << "; the mean may be off by up to "
       << r.truncation_bias_bound << " (truncation_bias_bound); raise --max-steps\n";
@@ -380,14 +404,28 @@ void WarnAboutTruncation(const SimulationReport& r, int64_t max_steps, std::ostr
 int RunSimulate(const SimulateArgs& args, std::ostream& out, std::ostream& err) {
   std::optional<Model> model = LoadModel(args.model, err, true);
   if (!model) return kExitBadInput;
-  std::optional<Policy> policy = PolicyToSimulate(*model, args, err);
+  // Without a policy file, a fresh solve's own decisions (per stage for a finite horizon).
+  std::optional<Policy> policy;
+  std::optional<Solution> solved;
+  if (args.policy.empty() && args.solution.empty()) {
+    Result<Solution> solution = Solve(*model, SolveOptions{});
+    if (!solution.ok()) {
+      err << "mdpserve: " << solution.status().message() << "\n";
+      return kExitBadInput;
+    }
+    solved = std::move(*solution);
+  } else {
+    policy = PolicyToSimulate(*model, args, err);
+    if (!policy) return kExitBadInput;
+  }
   SimulateOptions options = args.options;
-  if (!policy || !StartDistribution(*model, args, options.start, err)) return kExitBadInput;
+  if (!StartDistribution(*model, args, options.start, err)) return kExitBadInput;
   ProgressFn progress;
   if (args.progress || (&err == &std::cerr && ::isatty(STDERR_FILENO) == 1)) {
     progress = ProgressLines(options.episodes, err);
   }
-  Result<SimulationReport> report = Simulate(*model, *policy, options, &progress);
+  Result<SimulationReport> report = solved ? Simulate(*model, *solved, options, &progress)
+                                           : Simulate(*model, *policy, options, &progress);
   if (!report.ok()) {
     err << "mdpserve: " << report.status().message() << "\n";
     return kExitBadInput;
@@ -408,7 +446,8 @@ CLI::App* AddSimulateCommand(CLI::App& app, SimulateArgs& a) {
   cmd->add_option("MODEL", a.model, "model document (JSON)")->required();
   CLI::Option* policy = cmd->add_option("--policy", a.policy, "policy or solution document");
   cmd->add_option("--solution", a.solution,
-                  "solution document whose policy to simulate (default: solve the model)")
+                  "solution document whose policy to simulate (default: solve the model and "
+                  "follow its decisions, stage by stage for a finite horizon)")
       ->excludes(policy);
   CLI::Option* start = cmd->add_option(
       "--start", a.start, "start state(s), equally likely (default: the model's first state)");
@@ -418,7 +457,7 @@ CLI::App* AddSimulateCommand(CLI::App& app, SimulateArgs& a) {
   cmd->add_option("--episodes", a.options.episodes, "episodes to run")
       ->capture_default_str()
       ->check(CLI::Range(int64_t{1}, int64_t{100000000}));
-  cmd->add_option("--max-steps", a.options.max_steps, "steps after which an episode is cut")
+  cmd->add_option("--max-steps", a.options.max_steps, "steps after which an episode is cut (average reward: the steps averaged over; ignored for a finite horizon, whose episodes last the horizon)")
       ->capture_default_str()
       ->check(CLI::Range(int64_t{1}, int64_t{1000000000}));
   cmd->add_option("--seed", a.options.seed, "seed of the random stream")->capture_default_str();

@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <limits>
 #include <numeric>
 #include <string>
 
@@ -264,28 +265,44 @@ Json EncodeValuesReport(const Model& m, const ValuesReport& report) {
   Json worst = Json::array();
   for (const StateResidual& w : report.worst) {
     worst.push_back({{"state", m.state_name(w.state)},
-                     {"residual", w.residual},
-                     {"candidate", w.candidate},
-                     {"backup", w.backup}});
+                     {"residual", NumberOrNull(w.residual)},
+                     {"candidate", NumberOrNull(w.candidate)},
+                     {"backup", NumberOrNull(w.backup)}});
   }
-  return {{"format", "mdpserve/verification@1"},
-          {"kind", "values"},
-          {"verdict", report.pass ? "pass" : "fail"},
-          {"tolerance", report.tolerance},
-          {"max_residual", report.max_residual},
-          {"value_error_bound", report.value_error_bound},
-          {"greedy_policy_loss_bound", report.greedy_policy_loss_bound},
-          {"worst_states", std::move(worst)},
-          {"residuals", StateMap(m, report.residuals)}};
+  Json out = {{"format", "mdpserve/verification@1"},
+              {"kind", "values"},
+              {"criterion", CriterionKindName(report.criterion)},
+              {"verdict", report.pass ? "pass" : "fail"},
+              {"tolerance", report.tolerance},
+              {"max_residual", NumberOrNull(report.max_residual)},
+              {"value_error_bound", NumberOrNull(report.value_error_bound)},
+              {"greedy_policy_loss_bound", NumberOrNull(report.greedy_policy_loss_bound)},
+              {"worst_states", std::move(worst)},
+              {"residuals", StateMap(m, report.residuals)}};
+  switch (report.criterion) {
+    case CriterionKind::kAverage:
+      out["gain_lower"] = NumberOrNull(report.gain_lower);
+      out["gain_upper"] = NumberOrNull(report.gain_upper);
+      break;
+    case CriterionKind::kTotal:
+      out["states_not_reaching_goal"] = report.states_not_reaching_goal;
+      [[fallthrough]];
+    case CriterionKind::kFiniteHorizon:
+      out["reference_distance"] = NumberOrNull(report.reference_distance);
+      out["reference_error_bound"] = NumberOrNull(report.reference_error_bound);
+      break;
+    case CriterionKind::kDiscounted: break;
+  }
+  return out;
 }
 
 Json EncodePolicyReport(const Model& m, const PolicyReport& report) {
   Json worst = Json::array();
   for (const StateLoss& w : report.worst) {
     worst.push_back({{"state", m.state_name(w.state)},
-                     {"loss", w.loss},
-                     {"value", w.value},
-                     {"optimal_value", w.optimal_value}});
+                     {"loss", NumberOrNull(w.loss)},
+                     {"value", NumberOrNull(w.value)},
+                     {"optimal_value", NumberOrNull(w.optimal_value)}});
   }
   Json suboptimal = Json::array();
   for (const SuboptimalChoice& c : report.suboptimal) {
@@ -297,13 +314,20 @@ Json EncodePolicyReport(const Model& m, const PolicyReport& report) {
                           {"chosen", std::move(chosen)},
                           {"optimal_actions", std::move(optimal)}});
   }
+  Json improper = Json::array();
+  for (size_t i = 0; i < report.improper_states.size() && i < kListedNames; ++i) {
+    improper.push_back(m.state_name(report.improper_states[i]));
+  }
   return {{"format", "mdpserve/verification@1"},
           {"kind", "policy"},
+          {"criterion", CriterionKindName(report.criterion)},
           {"verdict", report.pass ? "pass" : "fail"},
           {"tolerance", report.tolerance},
-          {"max_loss", report.max_loss},
-          {"evaluation_error_bound", report.evaluation_error_bound},
-          {"optimal_value_error_bound", report.optimal_value_error_bound},
+          {"max_loss", NumberOrNull(report.max_loss)},
+          {"evaluation_error_bound", NumberOrNull(report.evaluation_error_bound)},
+          {"optimal_value_error_bound", NumberOrNull(report.optimal_value_error_bound)},
+          {"improper_states", std::move(improper)},
+          {"improper_count", report.improper_count},
           {"linear_solver", LinearSolverName(report.solver_used)},
           {"worst_states", std::move(worst)},
           {"suboptimal_states", std::move(suboptimal)},
@@ -319,6 +343,32 @@ Json EncodeEvaluation(const Model& m, const PolicyValues& values) {
           {"value_error_bound", values.value_error_bound},
           {"iterations", values.iterations},
           {"values", StateMap(m, values.values)}};
+}
+
+Json EncodeCriterionEvaluation(const Model& m, const CriterionValues& v) {
+  Json out = {{"format", "mdpserve/evaluation@1"},
+              {"criterion", CriterionKindName(v.criterion)},
+              {"linear_solver", LinearSolverName(v.solver_used)},
+              {"residual", NumberOrNull(v.residual)},
+              {"value_error_bound", NumberOrNull(v.value_error_bound)},
+              {"iterations", 0},
+              {"values", StateMap(m, v.values)}};
+  if (v.criterion == CriterionKind::kAverage) {
+    out["gains"] = StateMap(m, v.gains);
+    out["gain_error_bound"] = NumberOrNull(v.gain_error_bound);
+    Json classes = Json::array();
+    for (size_t i = 0; i < v.recurrent_classes.size() && i < kListedNames; ++i) {
+      classes.push_back({{"states", NameList(m, v.recurrent_classes[i])},
+                         {"size", v.recurrent_classes[i].size()}});
+    }
+    out["recurrent_classes"] = std::move(classes);
+  }
+  if (v.criterion == CriterionKind::kTotal) {
+    out["expected_steps"] = StateMap(m, v.expected_steps);
+    out["improper_states"] = NameList(m, v.improper_states);
+    out["improper_count"] = v.improper_states.size();
+  }
+  return out;
 }
 
 Json EncodeComparison(const ComparisonReport& r) {
@@ -405,6 +455,21 @@ Json StartMap(const Model& m, const std::vector<StartWeight>& start) {
 
 }  // namespace
 
+namespace {
+
+// What one simulated episode's return adds up, per criterion.
+std::string_view ReturnKind(CriterionKind kind) {
+  switch (kind) {
+    case CriterionKind::kDiscounted: return "discounted_sum";
+    case CriterionKind::kAverage: return "reward_per_step";
+    case CriterionKind::kFiniteHorizon: return "horizon_sum";
+    case CriterionKind::kTotal: return "total_until_goal";
+  }
+  return "discounted_sum";
+}
+
+}  // namespace
+
 Json EncodeSimulation(const Model& m, const SimulateOptions& options,
                       const SimulationReport& r, int listed_states) {
   Json levels = Json::array();
@@ -437,8 +502,9 @@ Json EncodeSimulation(const Model& m, const SimulateOptions& options,
           {"return", ret},
           {"episode_length", {{"mean", NumberOrNull(r.mean_length)},
                               {"truncated_episodes", r.truncated_episodes}}},
-          {"truncation_bound", r.truncation_bound},
-          {"truncation_bias_bound", r.truncation_bias_bound},
+          {"return_kind", ReturnKind(m.criterion().kind)},
+          {"truncation_bound", NumberOrNull(r.truncation_bound)},
+          {"truncation_bias_bound", NumberOrNull(r.truncation_bias_bound)},
           {"visits", VisitSummary(m, r, listed_states)},
           {"simulate_seconds", r.elapsed_seconds}};
 }
@@ -471,6 +537,9 @@ Decoded<std::vector<double>> DecodeValues(const Model& m, std::string_view text)
     std::optional<StateId> s = m.FindState(it.key());
     if (!s) {
       AddError(out.errors, ptr, "the model has no state '" + it.key() + "'");
+    } else if (it->is_null() && m.criterion().kind == CriterionKind::kTotal) {
+      // Total reward: null marks a state that cannot reach a goal (no value), as solutions do.
+      out.value[*s] = std::numeric_limits<double>::quiet_NaN();
     } else if (!it->is_number() || !std::isfinite(it->get<double>())) {
       AddError(out.errors, ptr, "value must be a finite number");
     } else if (m.terminal(*s) && it->get<double>() != 0.0) {
@@ -502,7 +571,18 @@ Decoded<Policy> DecodePolicy(const Model& m, std::string_view text) {
     }
     ReadPolicyEntry(m, *s, *it, ptr, out.value, out.errors);
   }
-  CheckCoverage(m, *map, "policy", out.errors);
+  if (m.criterion().kind == CriterionKind::kTotal) {
+    // Solutions leave out states that cannot reach a goal (no action is better there); a
+    // state left out chooses uniformly among its actions, and verification reports it if
+    // that fails to reach a goal where the optimum does.
+    for (StateId st = 0; st < m.num_states(); ++st) {
+      if (m.terminal(st) || map->contains(m.state_name(st))) continue;
+      const double share = 1.0 / static_cast<double>(m.row_end(st) - m.row_begin(st));
+      for (RowId r = m.row_begin(st); r < m.row_end(st); ++r) out.value.row_probability[r] = share;
+    }
+  } else {
+    CheckCoverage(m, *map, "policy", out.errors);
+  }
   if (out.errors.empty()) {
     Status status = CheckPolicy(m, out.value);
     if (!status.ok()) AddError(out.errors, "/policy", status.message());

@@ -24,6 +24,8 @@ Json EncodeSolution(const Model& m, const Solution& solution, SolutionDetail det
 Json EncodeValuesReport(const Model& m, const ValuesReport& report);
 Json EncodePolicyReport(const Model& m, const PolicyReport& report);
 Json EncodeEvaluation(const Model& m, const PolicyValues& values);
+// The evaluation document under the model's criterion (criterion_eval.h).
+Json EncodeCriterionEvaluation(const Model& m, const CriterionValues& values);
 Json EncodeComparison(const ComparisonReport& report);
 // The simulation document (api-schema/simulation.schema.json). Lists the `listed_states` most
 // visited states (most visits first, ties in model order) and the frequency of the rest.

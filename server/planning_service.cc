@@ -404,17 +404,17 @@ Status PlanningService::RunSimulation(ActiveJob& job) {
   if (!model.ok()) return model.status();
   Decoded<SimulateRequest> request = DecodeSimulateRequest(**model, job.record.request_json);
   if (!request.ok()) return InvalidArgumentError(request.errors.front().message);
-  Policy policy;
-  if (request.value.policy) {
-    policy = *request.value.policy;
-  } else {
+  ProgressFn progress = ProgressInto(job);
+  Result<SimulationReport> report = [&]() -> Result<SimulationReport> {
+    if (request.value.policy) {
+      return Simulate(**model, *request.value.policy, request.value.options, &progress,
+                      &job.cancel);
+    }
+    // The solution itself, so a finite-horizon run follows its per-stage decisions.
     Result<Plan> plan = GetPlan(job.record.model_id, request.value.solution_id);
     if (!plan.ok()) return plan.status();
-    policy = GreedyPolicy(**model, *plan->solution);
-  }
-  ProgressFn progress = ProgressInto(job);
-  Result<SimulationReport> report =
-      Simulate(**model, policy, request.value.options, &progress, &job.cancel);
+    return Simulate(**model, *plan->solution, request.value.options, &progress, &job.cancel);
+  }();
   if (!report.ok()) return report.status();
   if (report->outcome == SimulationOutcome::kCancelled) {
     return Status(StatusCode::kCancelled, "cancelled");
@@ -594,9 +594,20 @@ Result<VerifyStart> PlanningService::VerifyNow(const std::string& model_id,
       out.errors = std::move(values.errors);
       return out;
     }
-    const ValuesReport report = VerifyValues(m, values.value, verify);
-    out.passed = report.pass;
-    out.report_json = EncodeValuesReport(m, report).dump();
+    // Under total reward and a finite horizon the candidate is measured against a solution
+    // (its goal-reaching states, its exact stage-0 values); see solver/verify.h.
+    const CriterionKind kind = m.criterion().kind;
+    Result<ValuesReport> report = ValuesReport{};
+    if (kind == CriterionKind::kTotal || kind == CriterionKind::kFiniteHorizon) {
+      Result<Plan> plan = GetPlan(model_id, request->solution_id);
+      if (!plan.ok()) return plan.status();
+      report = VerifyValues(m, values.value, *plan->solution, verify);
+    } else {
+      report = VerifyValues(m, values.value, verify);
+    }
+    if (!report.ok()) return report.status();
+    out.passed = report->pass;
+    out.report_json = EncodeValuesReport(m, *report).dump();
     return out;
   }
   Decoded<Policy> policy = DecodePolicy(m, body);

@@ -9,10 +9,13 @@
 #include <string>
 #include <unordered_map>
 
+#include "solver/solver.h"
+
 namespace mdp {
 namespace {
 
 constexpr double kNaN = std::numeric_limits<double>::quiet_NaN();
+constexpr double kInf = std::numeric_limits<double>::infinity();
 // Rows with at most this many entries are sampled by a linear scan (faster than a search for
 // short rows, and needs no memory); longer rows get a cumulative array, built on first use.
 constexpr int64_t kLinearScanEntries = 16;
@@ -38,8 +41,10 @@ int64_t SearchCumulative(const double* cumulative, int64_t begin, int64_t end, d
 // rows the episodes actually reach, so memory follows the rows used.
 class Sampler {
  public:
-  Sampler(const Model& m, const Policy& policy, const std::vector<StartWeight>& start)
-      : m_(m), fixed_row_(m.num_states(), -1), row_cumulative_(m.num_rows(), 0.0) {
+  // `staged` (may be null): a finite-horizon Solution whose stage decisions replace `policy`.
+  Sampler(const Model& m, const Policy& policy, const Solution* staged,
+          const std::vector<StartWeight>& start)
+      : m_(m), staged_(staged), fixed_row_(m.num_states(), -1), row_cumulative_(m.num_rows(), 0.0) {
     for (StateId s = 0; s < m.num_states(); ++s) PreparePolicy(s, policy);
     double sum = 0.0;
     for (const StartWeight& w : start) {
@@ -56,8 +61,9 @@ class Sampler {
                                           static_cast<int64_t>(start_states_.size()), u)];
   }
 
-  // REQUIRES: s is not terminal.
-  RowId Action(StateId s, std::mt19937_64& rng) const {
+  // The row taken in state s, `stage` steps into the episode. REQUIRES: s is not terminal.
+  RowId Action(StateId s, int64_t stage, std::mt19937_64& rng) const {
+    if (staged_ != nullptr) return DecideAtStage(m_, *staged_, stage, s).pick;
     if (fixed_row_[s] >= 0) return fixed_row_[s];
     return SearchCumulative(row_cumulative_.data(), m_.row_begin(s), m_.row_end(s), Uniform(rng));
   }
@@ -118,6 +124,7 @@ class Sampler {
   }
 
   const Model& m_;
+  const Solution* staged_;
   std::vector<RowId> fixed_row_;        // Per state: the only row with mass, or -1.
   std::vector<double> row_cumulative_;  // Per row, for states with two or more rows in use.
   std::vector<StateId> start_states_;
@@ -134,29 +141,53 @@ struct Tally {
   int64_t truncated = 0;
 };
 
+// How an episode's return is formed under the model's criterion (header comment).
+struct EpisodeRule {
+  double discount = 1.0;  // Weight factor per step.
+  int64_t steps = 0;      // Step cap.
+  bool cut_is_truncation = true;  // Stopping at the cap in a non-terminal state is a cut.
+  const std::vector<double>* end_values = nullptr;  // kFiniteHorizon V_H, added times g^H.
+  double divide_by = 0.0;  // kAverage: N, the return is per step; 0 = none.
+};
+
+EpisodeRule RuleFor(const Model& m, const SimulateOptions& options) {
+  const Criterion& c = m.criterion();
+  switch (c.kind) {
+    case CriterionKind::kDiscounted: return {m.discount(), options.max_steps, true, nullptr, 0.0};
+    case CriterionKind::kTotal: return {1.0, options.max_steps, true, nullptr, 0.0};
+    case CriterionKind::kFiniteHorizon:
+      return {c.discount, c.horizon, false,
+              c.terminal_values.empty() ? nullptr : &c.terminal_values, 0.0};
+    case CriterionKind::kAverage:
+      return {1.0, options.max_steps, false, nullptr, static_cast<double>(options.max_steps)};
+  }
+  return {};
+}
+
 // Runs one episode; false iff `cancel` fired during it. The steps of an interrupted episode
 // stay in the visits and total_steps (so the frequencies still sum to 1) but it adds no return.
-bool RunEpisode(const Model& m, Sampler& sampler, const SimulateOptions& options,
+bool RunEpisode(const Model& m, Sampler& sampler, const EpisodeRule& rule,
                 const CancelToken* cancel, std::mt19937_64& rng, Tally& tally) {
-  const double g = m.discount();
   StateId s = sampler.Start(rng);
   double ret = 0.0, weight = 1.0;
   int64_t steps = 0;
-  for (; steps < options.max_steps && !m.terminal(s); ++steps) {
+  for (; steps < rule.steps && !m.terminal(s); ++steps) {
     if (steps % kCancelPollSteps == kCancelPollSteps - 1 && cancel != nullptr &&
         cancel->cancelled()) {
       return false;
     }
     ++tally.visits[s];
     ++tally.total_steps;
-    const RowId r = sampler.Action(s, rng);
+    const RowId r = sampler.Action(s, steps, rng);
     ret += weight * m.row_reward(r);
-    weight *= g;
+    weight *= rule.discount;
     s = sampler.Next(r, rng);
   }
+  if (rule.end_values != nullptr && !m.terminal(s)) ret += weight * (*rule.end_values)[s];
+  if (rule.divide_by > 0.0) ret /= rule.divide_by;
   tally.returns.push_back(ret);
   tally.episode_steps += steps;
-  if (!m.terminal(s)) ++tally.truncated;
+  if (rule.cut_is_truncation && !m.terminal(s)) ++tally.truncated;
   return true;
 }
 
@@ -277,30 +308,58 @@ Status CheckSimulateOptions(const Model& m, const SimulateOptions& o) {
   return Status::Ok();
 }
 
-Result<SimulationReport> Simulate(const Model& m, const Policy& policy,
-                                  const SimulateOptions& options, const ProgressFn* progress,
-                                  const CancelToken* cancel) {
-  MDP_RETURN_IF_ERROR(CheckPolicy(m, policy));
-  MDP_RETURN_IF_ERROR(CheckSimulateOptions(m, options));
+namespace {
+
+// The truncation fields of `report` (header comment), once tally.truncated is in it.
+void SetTruncation(const Model& m, const Policy& policy, const SimulateOptions& options,
+                   SimulationReport& report) {
+  const double cut = static_cast<double>(report.truncated_episodes);
+  switch (m.criterion().kind) {
+    case CriterionKind::kDiscounted:
+      report.truncation_bound = TruncationBound(m, policy, options.max_steps);
+      if (report.episodes > 0) {
+        report.truncation_bias_bound =
+            report.truncation_bound * cut / static_cast<double>(report.episodes);
+      }
+      return;
+    case CriterionKind::kTotal:
+      report.truncation_bound = kInf;
+      report.truncation_bias_bound = cut > 0.0 ? kInf : 0.0;
+      return;
+    case CriterionKind::kFiniteHorizon:
+      report.truncation_bound = report.truncation_bias_bound = 0.0;
+      return;
+    case CriterionKind::kAverage:
+      report.truncation_bound = report.truncation_bias_bound = kNaN;
+      return;
+  }
+}
+
+// Simulate() for a checked policy, with `staged` (may be null) as in Sampler.
+Result<SimulationReport> SimulateWith(const Model& m, const Policy& policy, const Solution* staged,
+                                      const SimulateOptions& options, const ProgressFn* progress,
+                                      const CancelToken* cancel) {
   const auto start_time = std::chrono::steady_clock::now();
   auto elapsed = [&] {
     return std::chrono::duration<double>(std::chrono::steady_clock::now() - start_time).count();
   };
   // The one place where allocation failure inside the simulation becomes a Status.
   try {
-    Sampler sampler(m, policy, options.start);
+    Sampler sampler(m, policy, staged, options.start);
+    const EpisodeRule rule = RuleFor(m, options);
     std::mt19937_64 rng(options.seed);
     Tally tally;
     tally.returns.reserve(static_cast<size_t>(options.episodes));
     tally.visits.assign(m.num_states(), 0);
     SimulationReport report;
+    report.criterion = m.criterion().kind;
     const int64_t report_every = std::max<int64_t>(1, options.episodes / 100);
     for (int64_t done = 0; done < options.episodes;) {
       if (done % report_every == 0 && cancel != nullptr && cancel->cancelled()) {
         report.outcome = SimulationOutcome::kCancelled;
         break;
       }
-      if (!RunEpisode(m, sampler, options, cancel, rng, tally)) {
+      if (!RunEpisode(m, sampler, rule, cancel, rng, tally)) {
         report.outcome = SimulationOutcome::kCancelled;
         break;
       }
@@ -312,12 +371,7 @@ Result<SimulationReport> Simulate(const Model& m, const Policy& policy,
     }
     Summarise(options, tally, report);
     report.truncated_episodes = tally.truncated;
-    report.truncation_bound = TruncationBound(m, policy, options.max_steps);
-    if (report.episodes > 0) {
-      report.truncation_bias_bound = report.truncation_bound *
-                                     static_cast<double>(report.truncated_episodes) /
-                                     static_cast<double>(report.episodes);
-    }
+    SetTruncation(m, policy, options, report);
     report.total_steps = tally.total_steps;
     report.visit_frequency.assign(m.num_states(), 0.0);
     for (StateId s = 0; s < m.num_states() && tally.total_steps > 0; ++s) {
@@ -329,6 +383,55 @@ Result<SimulationReport> Simulate(const Model& m, const Policy& policy,
   } catch (const std::bad_alloc&) {
     return ResourceExhaustedError("out of memory during simulation");
   }
+}
+
+// OK iff `solution` is a Solution of `m` that Simulate can follow from `start`.
+Status CheckSimulatedSolution(const Model& m, const Solution& solution,
+                              const std::vector<StartWeight>& start) {
+  const size_t n = static_cast<size_t>(m.num_states());
+  if (solution.criterion != m.criterion().kind || solution.best_row.size() != n) {
+    return InvalidArgumentError("the solution does not match the model");
+  }
+  if (m.criterion().kind == CriterionKind::kFiniteHorizon &&
+      (solution.horizon != m.criterion().horizon ||
+       solution.stage_values.size() != static_cast<size_t>(solution.horizon + 1) * n)) {
+    return InvalidArgumentError("the solution does not hold the decisions of every stage");
+  }
+  for (const StartWeight& w : start) {
+    if (w.state >= 0 && static_cast<size_t>(w.state) < n && !m.terminal(w.state) &&
+        solution.best_row[w.state] < 0 && w.probability > 0.0) {
+      return InvalidArgumentError("start: the solution has no decision in state '" +
+                                  m.state_name(w.state) +
+                                  "' (it cannot reach a goal with probability 1)");
+    }
+  }
+  return Status::Ok();
+}
+
+}  // namespace
+
+Result<SimulationReport> Simulate(const Model& m, const Policy& policy,
+                                  const SimulateOptions& options, const ProgressFn* progress,
+                                  const CancelToken* cancel) {
+  MDP_RETURN_IF_ERROR(CheckPolicy(m, policy));
+  MDP_RETURN_IF_ERROR(CheckSimulateOptions(m, options));
+  return SimulateWith(m, policy, nullptr, options, progress, cancel);
+}
+
+Result<SimulationReport> Simulate(const Model& m, const Solution& solution,
+                                  const SimulateOptions& options, const ProgressFn* progress,
+                                  const CancelToken* cancel) {
+  MDP_RETURN_IF_ERROR(CheckSimulateOptions(m, options));
+  MDP_RETURN_IF_ERROR(CheckSimulatedSolution(m, solution, options.start));
+  // States without a decision (kTotal: outside the goal-reaching set) take their first row;
+  // no episode reaches them, since the picks take only rows that stay in that set.
+  std::vector<RowId> rows = solution.best_row;
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (rows[s] < 0 && !m.terminal(s)) rows[s] = m.row_begin(s);
+  }
+  const Solution* staged =
+      m.criterion().kind == CriterionKind::kFiniteHorizon ? &solution : nullptr;
+  return SimulateWith(m, DeterministicPolicy(m, rows), staged, options, progress, cancel);
 }
 
 }  // namespace mdp

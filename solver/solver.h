@@ -6,6 +6,7 @@
 
 #include "solver/average_reward.h"
 #include "solver/compare.h"
+#include "solver/criterion_eval.h"
 #include "solver/evaluate.h"
 #include "solver/finite_horizon.h"
 #include "solver/model.h"

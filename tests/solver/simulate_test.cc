@@ -1,5 +1,6 @@
 // Tests solver/simulate.{h,cc}: Monte Carlo rollouts against exact policy evaluation and
-// closed forms, reproducibility by seed, visit frequencies, cancellation and option checks.
+// closed forms (under each criterion), reproducibility by seed, visit frequencies,
+// cancellation and option checks.
 // Every random draw is seeded, so each test is deterministic.
 #include "solver/simulate.h"
 
@@ -7,6 +8,7 @@
 
 #include <chrono>
 #include <cmath>
+#include <limits>
 #include <numeric>
 #include <random>
 #include <thread>
@@ -347,6 +349,233 @@ TEST(SimulateTest, StartingInATerminalStateEarnsNothing) {
   EXPECT_EQ(r->mean, 0.0);
   EXPECT_EQ(r->total_steps, 0);
   EXPECT_EQ(r->visit_frequency, (std::vector<double>{0.0, 0.0}));
+}
+
+// ---------------------------------------------------------------------------------------
+// Other criteria: the mean against closed forms derived here, inside the 99.9% interval.
+
+Model WithCriterion(const SpecWriter& w, Criterion c) {
+  ModelSpec spec = w.Spec();
+  spec.criterion = std::move(c);
+  return testing::MustBuild(spec);
+}
+
+Criterion Of(CriterionKind kind, double discount = 1.0, int64_t horizon = 0) {
+  Criterion c;
+  c.kind = kind;
+  c.discount = discount;
+  c.horizon = horizon;
+  return c;
+}
+
+void ExpectInside(const SimulationReport& r, double exact) {
+  EXPECT_GE(exact, r.ci_low) << "mean " << r.mean << " +- " << r.ci_high - r.mean;
+  EXPECT_LE(exact, r.ci_high) << "mean " << r.mean << " +- " << r.ci_high - r.mean;
+}
+
+// The fair walk on 0..n (goals 0 and n) earning 1 per step: the total is the expected
+// duration i (n - i) (D(i) = 1 + (D(i-1) + D(i+1)) / 2, D(0) = D(n) = 0; any probability
+// textbook). The spec's discount 0.5 must not be used.
+Model FairWalk(int n) {
+  ModelSpec spec;
+  spec.criterion = Of(CriterionKind::kTotal, 0.5);
+  spec.action_names = {"bet"};
+  for (int i = 0; i <= n; ++i) {
+    spec.AddState(std::to_string(i), i == 0 || i == n);
+    if (i == 0 || i == n) continue;
+    spec.AddStateAction(0, 1.0);
+    spec.AddOutcome(i - 1, 0.5);
+    spec.AddOutcome(i + 1, 0.5);
+  }
+  return testing::MustBuild(spec);
+}
+
+Policy OnlyRows(const Model& m) {
+  std::vector<RowId> rows(m.num_states(), -1);
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (!m.terminal(s)) rows[s] = m.row_begin(s);
+  }
+  return DeterministicPolicy(m, rows);
+}
+
+TEST(SimulateTest, TotalMeanIsTheFairWalkDuration) {
+  const int n = 8, i = 3;
+  const Model m = FairWalk(n);
+  SimulateOptions options = From(i, 20000, 11);
+  options.confidence = 0.999;
+  Result<SimulationReport> r = Simulate(m, OnlyRows(m), options);
+  ASSERT_OK(r);
+  EXPECT_EQ(r->criterion, CriterionKind::kTotal);
+  ExpectInside(*r, i * (n - i));
+  EXPECT_EQ(r->mean, r->mean_length);  // One unit of reward per step.
+  EXPECT_EQ(r->truncated_episodes, 0);
+  EXPECT_EQ(r->truncation_bound, std::numeric_limits<double>::infinity());
+  EXPECT_EQ(r->truncation_bias_bound, 0.0);
+  // Cut short, there is no bound on what was missed.
+  options.max_steps = 5;
+  r = Simulate(m, OnlyRows(m), options);
+  ASSERT_OK(r);
+  EXPECT_GT(r->truncated_episodes, 0);
+  EXPECT_EQ(r->truncation_bias_bound, std::numeric_limits<double>::infinity());
+  EXPECT_LE(r->max, 5.0);
+}
+
+// A -> B -> C -> end earning 1, 2, 3 under the total criterion: every episode earns 6 whatever
+// the spec's discount says.
+TEST(SimulateTest, TotalReturnIsUndiscounted) {
+  SpecWriter w(0.5, Objective::kMaximize);
+  w.States({"A", "B", "C", "end"}, {false, false, false, true});
+  w.Action("A", "go", {{"B", 1.0}}, 1.0);
+  w.Action("B", "go", {{"C", 1.0}}, 2.0);
+  w.Action("C", "go", {{"end", 1.0}}, 3.0);
+  const Model m = WithCriterion(w, Of(CriterionKind::kTotal, 0.5));
+  Result<SimulationReport> r = Simulate(m, OnlyRows(m), From(0, 50, 1));
+  ASSERT_OK(r);
+  EXPECT_EQ(r->mean, 6.0);
+  EXPECT_EQ(r->std_dev, 0.0);
+}
+
+// In A the policy plays "stay" (reward 1, back to A) w.p. q and "leave" (to the terminal
+// state, reward 0) w.p. 1 - q; B plays "idle" (reward 2, stays). Over H stages with discount g
+// and terminal values V_H = (3, -1): V_0(A) = q (1 - (gq)^H) / (1 - gq) + (gq)^H 3 and
+// V_0(B) = 2 (1 - g^H) / (1 - g) - g^H (unrolling V_t = r + g P V_{t+1}).
+TEST(SimulateTest, FiniteHorizonRunsTheHorizonAndAddsTheTerminalValue) {
+  const double g = 0.9, q = 0.6;
+  const int64_t horizon = 7;
+  SpecWriter w(0.5, Objective::kMaximize);
+  w.States({"A", "B", "end"}, {false, false, true});
+  w.Action("A", "stay", {{"A", 1.0}}, 1.0);
+  w.Action("A", "leave", {{"end", 1.0}}, 0.0);
+  w.Action("B", "idle", {{"B", 1.0}}, 2.0);
+  Criterion c = Of(CriterionKind::kFiniteHorizon, g, horizon);
+  c.terminal_values = {3.0, -1.0, 0.0};
+  const Model m = WithCriterion(w, c);
+  Policy p;
+  p.row_probability = {q, 1.0 - q, 1.0};
+  SimulateOptions options = From(0, 20000, 5);
+  options.confidence = 0.999;
+  options.max_steps = 2;  // Not used: the horizon decides.
+  Result<SimulationReport> a = Simulate(m, p, options);
+  ASSERT_OK(a);
+  EXPECT_EQ(a->criterion, CriterionKind::kFiniteHorizon);
+  const double gqh = std::pow(g * q, horizon);
+  ExpectInside(*a, q * (1 - gqh) / (1 - g * q) + gqh * 3.0);
+  EXPECT_GT(a->mean_length, 2.0);
+  EXPECT_EQ(a->truncated_episodes, 0);
+  EXPECT_EQ(a->truncation_bound, 0.0);
+  Result<SimulationReport> b = Simulate(m, p, From(1, 10, 5));
+  ASSERT_OK(b);
+  const double gh = std::pow(g, horizon);
+  EXPECT_NEAR(b->mean, 2.0 * (1 - gh) / (1 - g) - gh, 1e-12);
+  EXPECT_EQ(b->std_dev, 0.0);
+  EXPECT_EQ(b->mean_length, 7.0);
+}
+
+// The machine of finite_horizon_test.cc, H = 3, from B. Its hand-derived table has
+// V*_0(B) = 4.5 with stage-dependent decisions: fix (-2, to G), run in G (4; G or B w.p. 1/2),
+// then run (4 in G, 1 in B): returns 6 or 3, each w.p. 1/2. The stationary stage-0 picks (fix
+// in B at every stage) earn -2 + 4 + 4 = 6 or -2 + 4 - 2 = 0: mean 3.
+TEST(SimulateTest, FiniteHorizonSolutionFollowsItsStageDecisions) {
+  SpecWriter w(0.5, Objective::kMaximize);
+  w.States({"G", "B"}, {});
+  w.Action("G", "run", {{"G", 0.5, 4}, {"B", 0.5, 4}});
+  w.Action("B", "run", {{"B", 1.0, 1}});
+  w.Action("B", "fix", {{"G", 1.0, -2}});
+  const Model m = WithCriterion(w, Of(CriterionKind::kFiniteHorizon, 1.0, 3));
+  const Solution s = testing::MustSolve(m, Method::kAuto);
+  SimulateOptions options = From(1, 20000, 8);
+  options.confidence = 0.999;
+  Result<SimulationReport> staged = Simulate(m, s, options);
+  ASSERT_OK(staged);
+  ExpectInside(*staged, 4.5);
+  EXPECT_EQ(staged->min, 3.0);
+  EXPECT_EQ(staged->max, 6.0);
+  Result<SimulationReport> stationary = Simulate(m, GreedyPolicy(m, s), options);
+  ASSERT_OK(stationary);
+  ExpectInside(*stationary, 3.0);
+  EXPECT_EQ(stationary->min, 0.0);
+  // A solution without its stage table cannot be followed.
+  EXPECT_EQ(Simulate(m, SolutionAtStage(m, s, 1), options).status().code(),
+            StatusCode::kInvalidArgument);
+}
+
+// The two-state chain A -> B w.p. p, B -> A w.p. q, earning ra and rb. Its stationary
+// distribution is (q, p) / (p + q) and its gain g = (q ra + p rb) / (p + q). From A,
+// P(S_t = A) = pi_A + (1 - pi_A) lambda^t with lambda = 1 - p - q, so
+// E[sum_{t<N} r_t] = N g + (ra - rb)(1 - pi_A)(1 - lambda^N) / (1 - lambda); from the stationary
+// distribution every step has mean g.
+TEST(SimulateTest, AverageMeanRewardPerStepEstimatesTheGain) {
+  const double p = 0.3, q = 0.1, ra = 4.0, rb = -2.0;
+  const int64_t steps = 200;
+  SpecWriter w(0.9, Objective::kMaximize);
+  w.States({"A", "B"}, {});
+  w.Action("A", "go", {{"A", 1 - p}, {"B", p}}, ra);
+  w.Action("B", "go", {{"A", q}, {"B", 1 - q}}, rb);
+  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const double gain = (q * ra + p * rb) / (p + q), pi_a = q / (p + q), lambda = 1 - p - q;
+  SimulateOptions options = From(0, 20000, 3);
+  options.max_steps = steps;
+  options.confidence = 0.999;
+  options.start = {{0, pi_a}, {1, 1 - pi_a}};
+  Result<SimulationReport> stationary = Simulate(m, OnlyRows(m), options);
+  ASSERT_OK(stationary);
+  EXPECT_EQ(stationary->criterion, CriterionKind::kAverage);
+  ExpectInside(*stationary, gain);
+  EXPECT_EQ(stationary->truncated_episodes, 0);
+  EXPECT_TRUE(std::isnan(stationary->truncation_bound));
+  options.start = {{0, 1.0}};
+  Result<SimulationReport> from_a = Simulate(m, OnlyRows(m), options);
+  ASSERT_OK(from_a);
+  const double n = static_cast<double>(steps);
+  ExpectInside(*from_a,
+               gain + (ra - rb) * (1 - pi_a) * (1 - std::pow(lambda, n)) / ((1 - lambda) * n));
+  EXPECT_EQ(from_a->mean_length, n);
+}
+
+// A terminal state is absorbing with reward 0: earning 5 once and ending gives 5 / N per step.
+TEST(SimulateTest, AverageCountsTheStepsAfterATerminalStateAsZero) {
+  SpecWriter w(0.9, Objective::kMaximize);
+  w.States({"A", "end"}, {false, true});
+  w.Action("A", "finish", {{"end", 1.0}}, 5.0);
+  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  SimulateOptions options = From(0, 10, 1);
+  options.max_steps = 10;
+  Result<SimulationReport> r = Simulate(m, OnlyRows(m), options);
+  ASSERT_OK(r);
+  EXPECT_EQ(r->mean, 0.5);
+  EXPECT_EQ(r->mean_length, 1.0);
+}
+
+// Simulating a discounted Solution is simulating its greedy policy, draw for draw.
+TEST(SimulateTest, DiscountedSolutionIsItsGreedyPolicy) {
+  testing::RandomModelOptions o;
+  o.states = 30;
+  const Model m = testing::MustBuild(testing::RandomSpec(12, o));
+  const Solution s = testing::MustSolve(m);
+  Result<SimulationReport> a = Simulate(m, s, From(0, 2000, 9));
+  Result<SimulationReport> b = Simulate(m, GreedyPolicy(m, s), From(0, 2000, 9));
+  ASSERT_OK(a);
+  ASSERT_OK(b);
+  EXPECT_EQ(a->mean, b->mean);
+  EXPECT_EQ(a->visits, b->visits);
+  EXPECT_EQ(a->truncation_bound, b->truncation_bound);
+}
+
+// A total-criterion Solution has no decision where a goal cannot be reached w.p. 1; starting
+// there is refused, while the states that reach a goal simulate normally.
+TEST(SimulateTest, TotalSolutionRefusesStartsThatCannotReachAGoal) {
+  SpecWriter w(0.5, Objective::kMaximize);
+  w.States({"A", "end", "trap"}, {false, true, false});
+  w.Action("A", "go", {{"end", 1.0}}, 2.0);
+  w.Action("trap", "spin", {{"trap", 1.0}}, 0.0);
+  const Model m = WithCriterion(w, Of(CriterionKind::kTotal));
+  Solution s;
+  s.criterion = CriterionKind::kTotal;
+  s.best_row = {0, -1, -1};  // By hand: A goes, trap has no proper decision.
+  EXPECT_EQ(Simulate(m, s, From(2, 10, 1)).status().code(), StatusCode::kInvalidArgument);
+  Result<SimulationReport> r = Simulate(m, s, From(0, 10, 1));
+  ASSERT_OK(r);
+  EXPECT_EQ(r->mean, 2.0);
 }
 
 }  // namespace
