@@ -1605,6 +1605,52 @@ def scenario_h(api, server):
     R.check("h: pit cannot reach the dock: no action, no value", isinstance(a, dict) and
             a["reaches_goal"] is False and a["action"] is None and a["value"] is None and
             a["optimal_actions"] == [], str(a)[:300])
+    # Verification under each criterion: a hand-written candidate and a wrong one.
+    verify = lambda mid, body, label: client.call(
+        "POST", "/v1/models/{id}/verify", {"id": mid}, body=body, expect=200, name=label)
+    resp = verify(saver, {"format": "mdpserve/values@1", "values": {"poor": 11, "rich": 18}},
+                  "h: saver: verify the derived stage-0 values")
+    R.check("h: saver: derived values pass", resp.status == 200 and
+            resp.json()["verdict"] == "pass" and resp.json()["criterion"] == "finite_horizon")
+    resp = verify(saver, {"format": "mdpserve/values@1", "values": {"poor": 10, "rich": 18}},
+                  "h: saver: verify values one short")
+    R.check("h: saver: a value one short fails at distance 1", resp.status == 200 and
+            resp.json()["verdict"] == "fail" and close(resp.json()["reference_distance"], 1))
+    # A bias for the cycle: h(a) = 0, h(b) = 1.5 gives T h - h = 1.5 in both states.
+    resp = verify(cycle, {"format": "mdpserve/values@1", "values": {"a": 0, "b": 1.5}},
+                  "h: cycle: verify a derived bias")
+    R.check("h: cycle: the bias brackets the gain at exactly 1.5", resp.status == 200 and
+            resp.json()["verdict"] == "pass" and close(resp.json()["gain_lower"], 1.5) and
+            close(resp.json()["gain_upper"], 1.5))
+    resp = verify(cycle, {"format": "mdpserve/policy@1", "policy": {"a": "stay", "b": "work"}},
+                  "h: cycle: verify staying")
+    R.check("h: cycle: staying loses 0.5 per step", resp.status == 200 and
+            resp.json()["verdict"] == "fail" and close(resp.json()["max_loss"], 0.5, 1e-7))
+    resp = verify(drone, {"format": "mdpserve/policy@1", "policy": {
+        "c0": "fly", "c1": "fly", "c2": "fly", "c3": "fly"}}, "h: drone: verify flying")
+    R.check("h: drone: flying everywhere passes (pit left out)", resp.status == 200 and
+            resp.json()["verdict"] == "pass" and resp.json()["improper_count"] == 0,
+            short(resp.body))
+    resp = verify(drone, {"format": "mdpserve/policy@1", "policy": {
+        "c0": "dash", "c1": "fly", "c2": "fly", "c3": "fly"}}, "h: drone: verify dashing")
+    R.check("h: drone: dashing at c0 fails: c0 is improper", resp.status == 200 and
+            resp.json()["verdict"] == "fail" and "c0" in resp.json()["improper_states"],
+            short(resp.body))
+    # Simulations follow each solution's own decisions.
+    for mid, start, episodes, exact, label in (
+            (saver, "poor", 200, 11.0, "saver"), (drone, "c0", 4000, 5.0, "drone")):
+        resp = client.call("POST", "/v1/models/{id}/simulations", {"id": mid}, body={
+            "start": {start: 1.0}, "episodes": episodes, "max_steps": 5000, "seed": 3,
+            "confidence": 0.999}, expect=202, name="h: %s: start a simulation" % label)
+        if resp.status != 202:
+            continue
+        job = wait_job(client, resp.json()["id"], ("succeeded", "failed", "cancelled"))
+        result = (job or {}).get("result") or {}
+        ci = result.get("return", {}).get("confidence_interval", {})
+        R.check("h: %s: simulated mean covers %g" % (label, exact),
+                job is not None and job["status"] == "succeeded" and
+                (ci.get("low") or 0) - 1e-9 <= exact <= (ci.get("high") or 0) + 1e-9,
+                short(json.dumps(result)))
     # A loop that earns reward while avoiding the goal makes the maximum total unbounded.
     looping = criterion_model("Looping", "maximize", {"kind": "total"}, ["spin", "leave"], [
         {"name": "wheel", "actions": [
