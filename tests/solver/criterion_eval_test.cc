@@ -22,19 +22,7 @@ namespace {
 
 using testing::SpecWriter;
 
-Model WithCriterion(const SpecWriter& w, Criterion c) {
-  ModelSpec spec = w.Spec();
-  spec.criterion = std::move(c);
-  return testing::MustBuild(spec);
-}
 
-Criterion Of(CriterionKind kind, double discount = 1.0, int64_t horizon = 0) {
-  Criterion c;
-  c.kind = kind;
-  c.discount = discount;
-  c.horizon = horizon;
-  return c;
-}
 
 CriterionValues MustEvaluate(const Model& m, const Policy& p, const EvaluateOptions& o = {}) {
   Result<CriterionValues> v = EvaluateUnderCriterion(m, p, o);
@@ -42,23 +30,6 @@ CriterionValues MustEvaluate(const Model& m, const Policy& p, const EvaluateOpti
   return v.ok() ? std::move(*v) : CriterionValues();
 }
 
-// A seeded stochastic policy: random weights over each state's rows, about a third of them 0.
-Policy RandomPolicy(const Model& m, uint64_t seed) {
-  std::mt19937_64 rng(seed);
-  Policy p;
-  p.row_probability.assign(m.num_rows(), 0.0);
-  for (StateId s = 0; s < m.num_states(); ++s) {
-    double sum = 0.0;
-    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-      const double w = rng() % 3 == 0 ? 0.0 : static_cast<double>(rng() % 1000 + 1);
-      p.row_probability[r] = w;
-      sum += w;
-    }
-    if (m.row_begin(s) < m.row_end(s) && sum == 0.0) p.row_probability[m.row_begin(s)] = sum = 1.0;
-    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) p.row_probability[r] /= sum;
-  }
-  return p;
-}
 
 // Dense P_pi and r_pi written out here from the model's rows (terminal rows stay 0 unless
 // `terminal_loops`).
@@ -94,9 +65,9 @@ TEST(CriterionEvalTest, FiniteHorizonStochasticPolicyIsAGeometricSum) {
   w.Action("A", "stay", {{"A", 1.0}}, 1.0);
   w.Action("A", "leave", {{"end", 1.0}}, 0.0);
   w.Action("B", "idle", {{"B", 1.0}}, 2.0);
-  Criterion c = Of(CriterionKind::kFiniteHorizon, g, horizon);
+  Criterion c = testing::CriterionOf(CriterionKind::kFiniteHorizon, g, horizon);
   c.terminal_values = {3.0, -1.0, 0.0};
-  const Model m = WithCriterion(w, c);
+  const Model m = testing::WithCriterion(w, c);
   Policy p;
   p.row_probability = {q, 1.0 - q, 1.0};
   const CriterionValues v = MustEvaluate(m, p);
@@ -115,14 +86,14 @@ TEST(CriterionEvalTest, FiniteHorizonMatchesTheDenseClosedForm) {
     testing::RandomModelOptions o;
     o.states = 25;
     ModelSpec spec = testing::RandomSpec(seed, o);
-    spec.criterion = Of(CriterionKind::kFiniteHorizon, 0.8, 12);
+    spec.criterion = testing::CriterionOf(CriterionKind::kFiniteHorizon, 0.8, 12);
     std::mt19937_64 rng(seed);
     spec.criterion.terminal_values.assign(spec.num_states(), 0.0);
     for (StateId s = 0; s < spec.num_states(); ++s) {
       if (!spec.terminal[s]) spec.criterion.terminal_values[s] = static_cast<double>(rng() % 7);
     }
     const Model m = testing::MustBuild(spec);
-    const Policy p = RandomPolicy(m, seed + 10);
+    const Policy p = testing::RandomPolicy(m, seed + 10);
     Eigen::MatrixXd big_p;
     Eigen::VectorXd r;
     DenseChain(m, p, false, big_p, r);
@@ -155,7 +126,7 @@ TEST(CriterionEvalTest, AverageTwoStateChainHasTheStationaryGainAndBias) {
   w.Action("A", "stay", {{"A", 1.0}}, ra);
   w.Action("A", "go", {{"B", 1.0}}, ra);
   w.Action("B", "back", {{"A", q}, {"B", 1.0 - q}}, rb);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   Policy pol;
   pol.row_probability = {1.0 - p, p, 1.0};
   const CriterionValues v = MustEvaluate(m, pol);
@@ -182,7 +153,7 @@ TEST(CriterionEvalTest, AverageMultichainGainsFollowTheAbsorptionProbabilities) 
   w.Action("T", "drift", {{"L", al}, {"R", be}, {"E", ep}, {"T", 1 - al - be - ep}}, c);
   w.Action("L", "loop", {{"L", 1.0}}, a);
   w.Action("R", "loop", {{"R", 1.0}}, b);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   const CriterionValues v =
       MustEvaluate(m, DeterministicPolicy(m, std::vector<RowId>{0, 1, 2, -1}));
   const double gt = (al * a + be * b) / (al + be + ep);
@@ -209,9 +180,9 @@ TEST(CriterionEvalTest, AverageMatchesTheDenseDeviationMatrix) {
     o.states = 30;
     o.terminal_fraction = seed % 2 == 0 ? 0.0 : 0.1;
     ModelSpec spec = testing::RandomSpec(seed, o);
-    spec.criterion = Of(CriterionKind::kAverage);
+    spec.criterion = testing::CriterionOf(CriterionKind::kAverage);
     const Model m = testing::MustBuild(spec);
-    const Policy p = RandomPolicy(m, seed + 30);
+    const Policy p = testing::RandomPolicy(m, seed + 30);
     Eigen::MatrixXd big_p;
     Eigen::VectorXd r;
     DenseChain(m, p, true, big_p, r);
@@ -247,7 +218,7 @@ TEST(CriterionEvalTest, AverageLargeDoublyStochasticChainHasClassMeanGains) {
     std::shuffle(perm.begin(), perm.end(), rng);
   }
   ModelSpec spec;
-  spec.criterion = Of(CriterionKind::kAverage);
+  spec.criterion = testing::CriterionOf(CriterionKind::kAverage);
   spec.action_names = {"go"};
   for (StateId s = 0; s < n; ++s) {
     spec.AddState("s" + std::to_string(s));
@@ -283,7 +254,7 @@ TEST(CriterionEvalTest, AverageLargeDoublyStochasticChainHasClassMeanGains) {
 TEST(CriterionEvalTest, AverageLargeRingWithATransientTail) {
   const StateId ring = 100000, tail = 50000;
   ModelSpec spec;
-  spec.criterion = Of(CriterionKind::kAverage);
+  spec.criterion = testing::CriterionOf(CriterionKind::kAverage);
   spec.action_names = {"walk"};
   for (StateId s = 0; s < ring + tail; ++s) {
     spec.AddState("s" + std::to_string(s));
@@ -315,7 +286,7 @@ TEST(CriterionEvalTest, AverageLargeRingWithATransientTail) {
 // Two more states: "door" moves to a goal or to "trap" w.p. 1/2 each, "trap" loops for ever.
 Model FairWalk(int n, int x) {
   ModelSpec spec;
-  spec.criterion = Of(CriterionKind::kTotal, 0.5);  // The discount must not be used.
+  spec.criterion = testing::CriterionOf(CriterionKind::kTotal, 0.5);  // The discount must not be used.
   spec.action_names = {"bet", "wait", "open", "spin"};
   for (int i = 0; i <= n; ++i) {
     spec.AddState(std::to_string(i), i == 0 || i == n);
@@ -386,7 +357,7 @@ TEST(CriterionEvalTest, TotalPolicyThatLoopsForeverIsImproper) {
 TEST(CriterionEvalTest, TotalLongLineHasLinearExpectedSteps) {
   const StateId n = 100000;
   ModelSpec spec;
-  spec.criterion = Of(CriterionKind::kTotal);
+  spec.criterion = testing::CriterionOf(CriterionKind::kTotal);
   spec.action_names = {"step"};
   for (StateId i = 0; i <= n; ++i) {
     spec.AddState("s" + std::to_string(i), i == n);
@@ -425,7 +396,7 @@ TEST(CriterionEvalTest, MalformedPolicyIsAnInvalidArgument) {
   SpecWriter w(0.75, Objective::kMaximize);
   w.States({"here"}, {false});
   w.Action("here", "stay", {{"here", 1.0}}, 1.0);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   Policy p;
   p.row_probability = {0.5};
   EXPECT_EQ(EvaluateUnderCriterion(m, p).status().code(), StatusCode::kInvalidArgument);
@@ -435,7 +406,7 @@ TEST(CriterionEvalTest, CancelledFiniteHorizonEvaluationSaysSo) {
   SpecWriter w(0.75, Objective::kMaximize);
   w.States({"here"}, {false});
   w.Action("here", "stay", {{"here", 1.0}}, 1.0);
-  const Model m = WithCriterion(w, Of(CriterionKind::kFiniteHorizon, 1.0, 1000));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kFiniteHorizon, 1.0, 1000));
   CancelToken cancel;
   cancel.Cancel();
   EXPECT_EQ(EvaluateUnderCriterion(m, DeterministicPolicy(m, std::vector<RowId>{0}), {}, &cancel)

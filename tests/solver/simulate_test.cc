@@ -22,23 +22,6 @@ namespace {
 
 using testing::SpecWriter;
 
-// A seeded stochastic policy: random weights over each state's rows, about a third of them 0.
-Policy RandomPolicy(const Model& m, uint64_t seed) {
-  std::mt19937_64 rng(seed);
-  Policy p;
-  p.row_probability.assign(m.num_rows(), 0.0);
-  for (StateId s = 0; s < m.num_states(); ++s) {
-    double sum = 0.0;
-    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-      const double w = rng() % 3 == 0 ? 0.0 : static_cast<double>(rng() % 1000 + 1);
-      p.row_probability[r] = w;
-      sum += w;
-    }
-    if (m.row_begin(s) < m.row_end(s) && sum == 0.0) p.row_probability[m.row_begin(s)] = sum = 1.0;
-    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) p.row_probability[r] /= sum;
-  }
-  return p;
-}
 
 double ExactValue(const Model& m, const Policy& policy, StateId s) {
   Result<PolicyValues> v = EvaluatePolicy(m, policy, EvaluateOptions{});
@@ -64,7 +47,7 @@ TEST(SimulateTest, MeanAgreesWithExactPolicyValueWithinTheInterval) {
     o.states = 30;
     o.discount = 0.9;
     const Model m = testing::MustBuild(testing::RandomSpec(seed, o));
-    const Policy policy = seed % 2 == 0 ? RandomPolicy(m, seed + 100)
+    const Policy policy = seed % 2 == 0 ? testing::RandomPolicy(m, seed + 100)
                                         : GreedyPolicy(m, testing::MustSolve(m));
     const double exact = ExactValue(m, policy, 0);
     SimulateOptions options = From(0, 20000, seed * 7919);
@@ -93,7 +76,7 @@ TEST(SimulateTest, StartDistributionMixesTheStartValues) {
   const Model m = testing::MustBuild(testing::RandomSpec(21, o));
   StateId other = 1;
   while (m.terminal(other)) ++other;
-  const Policy policy = RandomPolicy(m, 5);
+  const Policy policy = testing::RandomPolicy(m, 5);
   const double exact = 0.3 * ExactValue(m, policy, 0) + 0.7 * ExactValue(m, policy, other);
   SimulateOptions options;
   options.start = {{0, 0.3}, {other, 0.7}};
@@ -175,7 +158,7 @@ TEST(SimulateTest, SameSeedSameReportAndOtherSeedDiffers) {
   testing::RandomModelOptions o;
   o.states = 40;
   const Model m = testing::MustBuild(testing::RandomSpec(9, o));
-  const Policy policy = RandomPolicy(m, 9);
+  const Policy policy = testing::RandomPolicy(m, 9);
   Result<SimulationReport> a = Simulate(m, policy, From(0, 3000, 42));
   Result<SimulationReport> b = Simulate(m, policy, From(0, 3000, 42));
   Result<SimulationReport> c = Simulate(m, policy, From(0, 3000, 43));
@@ -230,7 +213,7 @@ TEST(SimulateTest, CancelFromProgressEndsWithACancelledReport) {
   testing::RandomModelOptions o;
   o.states = 40;
   const Model m = testing::MustBuild(testing::RandomSpec(4, o));
-  const Policy policy = RandomPolicy(m, 4);
+  const Policy policy = testing::RandomPolicy(m, 4);
   CancelToken cancel;
   std::vector<int64_t> seen;
   ProgressFn progress = [&](const Progress& p) {
@@ -252,7 +235,7 @@ TEST(SimulateTest, CancelledBeforeTheStartRunsNothing) {
   CancelToken cancel;
   cancel.Cancel();
   Result<SimulationReport> r =
-      Simulate(m, RandomPolicy(m, 1), From(0, 1000, 1), nullptr, &cancel);
+      Simulate(m, testing::RandomPolicy(m, 1), From(0, 1000, 1), nullptr, &cancel);
   ASSERT_OK(r);
   EXPECT_EQ(r->outcome, SimulationOutcome::kCancelled);
   EXPECT_EQ(r->episodes, 0);
@@ -354,19 +337,7 @@ TEST(SimulateTest, StartingInATerminalStateEarnsNothing) {
 // ---------------------------------------------------------------------------------------
 // Other criteria: the mean against closed forms derived here, inside the 99.9% interval.
 
-Model WithCriterion(const SpecWriter& w, Criterion c) {
-  ModelSpec spec = w.Spec();
-  spec.criterion = std::move(c);
-  return testing::MustBuild(spec);
-}
 
-Criterion Of(CriterionKind kind, double discount = 1.0, int64_t horizon = 0) {
-  Criterion c;
-  c.kind = kind;
-  c.discount = discount;
-  c.horizon = horizon;
-  return c;
-}
 
 void ExpectInside(const SimulationReport& r, double exact) {
   EXPECT_GE(exact, r.ci_low) << "mean " << r.mean << " +- " << r.ci_high - r.mean;
@@ -378,7 +349,7 @@ void ExpectInside(const SimulationReport& r, double exact) {
 // textbook). The spec's discount 0.5 must not be used.
 Model FairWalk(int n) {
   ModelSpec spec;
-  spec.criterion = Of(CriterionKind::kTotal, 0.5);
+  spec.criterion = testing::CriterionOf(CriterionKind::kTotal, 0.5);
   spec.action_names = {"bet"};
   for (int i = 0; i <= n; ++i) {
     spec.AddState(std::to_string(i), i == 0 || i == n);
@@ -428,7 +399,7 @@ TEST(SimulateTest, TotalReturnIsUndiscounted) {
   w.Action("A", "go", {{"B", 1.0}}, 1.0);
   w.Action("B", "go", {{"C", 1.0}}, 2.0);
   w.Action("C", "go", {{"end", 1.0}}, 3.0);
-  const Model m = WithCriterion(w, Of(CriterionKind::kTotal, 0.5));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kTotal, 0.5));
   Result<SimulationReport> r = Simulate(m, OnlyRows(m), From(0, 50, 1));
   ASSERT_OK(r);
   EXPECT_EQ(r->mean, 6.0);
@@ -447,9 +418,9 @@ TEST(SimulateTest, FiniteHorizonRunsTheHorizonAndAddsTheTerminalValue) {
   w.Action("A", "stay", {{"A", 1.0}}, 1.0);
   w.Action("A", "leave", {{"end", 1.0}}, 0.0);
   w.Action("B", "idle", {{"B", 1.0}}, 2.0);
-  Criterion c = Of(CriterionKind::kFiniteHorizon, g, horizon);
+  Criterion c = testing::CriterionOf(CriterionKind::kFiniteHorizon, g, horizon);
   c.terminal_values = {3.0, -1.0, 0.0};
-  const Model m = WithCriterion(w, c);
+  const Model m = testing::WithCriterion(w, c);
   Policy p;
   p.row_probability = {q, 1.0 - q, 1.0};
   SimulateOptions options = From(0, 20000, 5);
@@ -481,7 +452,7 @@ TEST(SimulateTest, FiniteHorizonSolutionFollowsItsStageDecisions) {
   w.Action("G", "run", {{"G", 0.5, 4}, {"B", 0.5, 4}});
   w.Action("B", "run", {{"B", 1.0, 1}});
   w.Action("B", "fix", {{"G", 1.0, -2}});
-  const Model m = WithCriterion(w, Of(CriterionKind::kFiniteHorizon, 1.0, 3));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kFiniteHorizon, 1.0, 3));
   const Solution s = testing::MustSolve(m, Method::kAuto);
   SimulateOptions options = From(1, 20000, 8);
   options.confidence = 0.999;
@@ -511,7 +482,7 @@ TEST(SimulateTest, AverageMeanRewardPerStepEstimatesTheGain) {
   w.States({"A", "B"}, {});
   w.Action("A", "go", {{"A", 1 - p}, {"B", p}}, ra);
   w.Action("B", "go", {{"A", q}, {"B", 1 - q}}, rb);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   const double gain = (q * ra + p * rb) / (p + q), pi_a = q / (p + q), lambda = 1 - p - q;
   SimulateOptions options = From(0, 20000, 3);
   options.max_steps = steps;
@@ -537,7 +508,7 @@ TEST(SimulateTest, AverageCountsTheStepsAfterATerminalStateAsZero) {
   SpecWriter w(0.9, Objective::kMaximize);
   w.States({"A", "end"}, {false, true});
   w.Action("A", "finish", {{"end", 1.0}}, 5.0);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   SimulateOptions options = From(0, 10, 1);
   options.max_steps = 10;
   Result<SimulationReport> r = Simulate(m, OnlyRows(m), options);
@@ -568,7 +539,7 @@ TEST(SimulateTest, TotalSolutionRefusesStartsThatCannotReachAGoal) {
   w.States({"A", "end", "trap"}, {false, true, false});
   w.Action("A", "go", {{"end", 1.0}}, 2.0);
   w.Action("trap", "spin", {{"trap", 1.0}}, 0.0);
-  const Model m = WithCriterion(w, Of(CriterionKind::kTotal));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kTotal));
   Solution s;
   s.criterion = CriterionKind::kTotal;
   s.best_row = {0, -1, -1};  // By hand: A goes, trap has no proper decision.

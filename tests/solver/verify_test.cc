@@ -125,19 +125,7 @@ TEST(VerifyPolicyTest, MinimizeLossIsPolicyCostAboveOptimum) {
 // Other criteria. References with closed-form optima are written out by hand (HandReference),
 // so these tests depend on no solver but the evaluation under test.
 
-Model WithCriterion(const SpecWriter& w, Criterion c) {
-  ModelSpec spec = w.Spec();
-  spec.criterion = std::move(c);
-  return testing::MustBuild(spec);
-}
 
-Criterion Of(CriterionKind kind, double discount = 1.0, int64_t horizon = 0) {
-  Criterion c;
-  c.kind = kind;
-  c.discount = discount;
-  c.horizon = horizon;
-  return c;
-}
 
 // A reference solution holding the given optimal values and optimal rows, exact (bounds 0).
 Solution HandReference(const Model& m, std::vector<double> values,
@@ -168,7 +156,7 @@ Model Machine() {
   w.Action("G", "run", {{"G", 0.5, 4}, {"B", 0.5, 4}});
   w.Action("B", "run", {{"B", 1.0, 1}});
   w.Action("B", "fix", {{"G", 1.0, -2}});
-  return WithCriterion(w, Of(CriterionKind::kFiniteHorizon, 1.0, 3));
+  return testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kFiniteHorizon, 1.0, 3));
 }
 
 TEST(VerifyPolicyTest, FiniteHorizonStationaryCandidatesAgainstTheStageZeroOptimum) {
@@ -230,9 +218,9 @@ TEST(VerifyValuesTest, FiniteHorizonInductionUsesTheDiscountAndTerminalValues) {
   SpecWriter w(0.9, Objective::kMaximize);
   w.States({"A", "end"}, {false, true});
   w.Action("A", "stay", {{"A", q}, {"end", 1 - q}}, 1.0);
-  Criterion c = Of(CriterionKind::kFiniteHorizon, g, 6);
+  Criterion c = testing::CriterionOf(CriterionKind::kFiniteHorizon, g, 6);
   c.terminal_values = {5.0, 0.0};
-  const Model m = WithCriterion(w, c);
+  const Model m = testing::WithCriterion(w, c);
   const double x = std::pow(g * q, 6);
   const std::vector<double> exact = {(1 - x) / (1 - g * q) + 5 * x, 0.0};
   VerifyOptions options;
@@ -255,7 +243,7 @@ Model TwoRooms() {
   w.Action("A", "go", {{"B", 1.0}}, 0.0);
   w.Action("B", "stay", {{"B", 1.0}}, 3.0);
   w.Action("B", "back", {{"A", 1.0}}, 0.0);
-  return WithCriterion(w, Of(CriterionKind::kAverage));
+  return testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
 }
 
 Solution OneGainReference(const Model& m, double gain, std::vector<uint8_t> optimal_row) {
@@ -303,7 +291,7 @@ TEST(VerifyPolicyTest, AverageMultichainReferenceUsesPerStateGains) {
   w.Action("T", "right", {{"R", 1.0}});
   w.Action("L", "loop", {{"L", 1.0}}, 1.0);
   w.Action("R", "loop", {{"R", 1.0}}, 2.0);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   Solution s = HandReference(m, {0.0, 0.0, 0.0}, {0, 1, 1, 1});
   s.average.state_gain = {2.0, 1.0, 2.0};
   s.average.gain = 1.5;
@@ -352,7 +340,7 @@ TEST(VerifyValuesTest, AverageBiasGivesTheGainBracket) {
   w.States({"A", "B"}, {});
   w.Action("A", "go", {{"A", 1 - p}, {"B", p}}, ra);
   w.Action("B", "back", {{"A", q}, {"B", 1 - q}}, rb);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   const double gain = (q * ra + p * rb) / (p + q);
   std::vector<double> h = {(ra - rb) / (p + q), 0.0};
   VerifyOptions options;
@@ -381,7 +369,7 @@ TEST(VerifyValuesTest, AverageTerminalStateIsASelfLoopWithRewardZero) {
   SpecWriter w(0.9, Objective::kMaximize);
   w.States({"A", "end"}, {false, true});
   w.Action("A", "finish", {{"end", 1.0}}, 5.0);
-  const Model m = WithCriterion(w, Of(CriterionKind::kAverage));
+  const Model m = testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kAverage));
   const ValuesReport shifted = VerifyValues(m, std::vector<double>{12.0, 7.0}, VerifyOptions{});
   EXPECT_TRUE(shifted.pass);
   EXPECT_EQ(shifted.gain_lower, 0.0);
@@ -411,7 +399,7 @@ Model RiskyWalk() {
   w.Action("3", "bet", {{"2", 0.5}, {"4", 0.5}}, -1.0);
   w.Action("3", "risk", {{"trap", 0.5}, {"4", 0.5}}, 100.0);
   w.Action("trap", "spin", {{"trap", 1.0}}, 0.0);
-  return WithCriterion(w, Of(CriterionKind::kTotal));
+  return testing::WithCriterion(w, testing::CriterionOf(CriterionKind::kTotal));
 }
 
 Solution RiskyWalkReference(const Model& m) {

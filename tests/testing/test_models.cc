@@ -107,4 +107,35 @@ ModelSpec SpecWriter::Spec() const {
   return spec;
 }
 
+Criterion CriterionOf(CriterionKind kind, double discount, int64_t horizon) {
+  Criterion c;
+  c.kind = kind;
+  c.discount = discount;
+  c.horizon = horizon;
+  return c;
+}
+
+Policy RandomPolicy(const Model& m, uint64_t seed) {
+  std::mt19937_64 rng(seed);
+  Policy p;
+  p.row_probability.assign(m.num_rows(), 0.0);
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    double sum = 0.0;
+    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+      const double w = rng() % 3 == 0 ? 0.0 : static_cast<double>(rng() % 1000 + 1);
+      p.row_probability[r] = w;
+      sum += w;
+    }
+    if (m.row_begin(s) < m.row_end(s) && sum == 0.0) p.row_probability[m.row_begin(s)] = sum = 1.0;
+    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) p.row_probability[r] /= sum;
+  }
+  return p;
+}
+
+Model WithCriterion(const SpecWriter& w, Criterion criterion) {
+  ModelSpec spec = w.Spec();
+  spec.criterion = std::move(criterion);
+  return MustBuild(spec);
+}
+
 }  // namespace mdp::testing

@@ -12,6 +12,7 @@
 #include "solver/options.h"
 #include "solver/solution.h"
 #include "solver/model_spec.h"
+#include "solver/policy.h"
 
 namespace mdp::testing {
 
@@ -39,6 +40,12 @@ inline constexpr Method kAllMethods[] = {Method::kValueIteration, Method::kGauss
 Solution MustSolve(const Model& m, Method method = Method::kPolicyIteration,
                    double tolerance = 1e-10);
 
+// A criterion of `kind` with the given discount and horizon (other fields default).
+Criterion CriterionOf(CriterionKind kind, double discount = 1.0, int64_t horizon = 0);
+
+// A seeded stochastic policy: random weights over each state's rows, about a third of them 0.
+Policy RandomPolicy(const Model& m, uint64_t seed);
+
 // A one-line outcome list entry for SpecWriter.
 struct Out {
   std::string next;
@@ -64,12 +71,16 @@ class SpecWriter {
     std::vector<Out> outs;
     double reward;
   };
+
   double discount_;
   Objective objective_;
   std::vector<std::string> names_;
   std::vector<bool> terminal_;
   std::vector<std::vector<PendingAction>> actions_;
 };
+
+// The model `w` writes, under `criterion` instead of its own.
+Model WithCriterion(const SpecWriter& w, Criterion criterion);
 
 }  // namespace mdp::testing
 
