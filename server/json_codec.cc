@@ -338,6 +338,7 @@ Json EncodePolicyReport(const Model& m, const PolicyReport& report) {
 
 Json EncodeEvaluation(const Model& m, const PolicyValues& values) {
   return {{"format", "mdpserve/evaluation@1"},
+          {"criterion", "discounted"},
           {"linear_solver", LinearSolverName(values.solver_used)},
           {"residual", values.residual},
           {"value_error_bound", values.value_error_bound},

@@ -180,6 +180,8 @@ std::vector<uint8_t> GoalReachingStates(const Model& m) {
 }
 
 // Total criterion: residuals over `reaches` with safe rows; compared with `reference` if given.
+constexpr double kInfinity = std::numeric_limits<double>::infinity();
+
 ValuesReport TotalValues(const Model& m, std::span<const double> v,
                          const std::vector<uint8_t>& reaches, const Solution* reference,
                          const VerifyOptions& options) {
@@ -203,6 +205,14 @@ ValuesReport TotalValues(const Model& m, std::span<const double> v,
       if (!safe) continue;
       const double q = m.row_reward(r) + RowMean(m, r, v);
       if (std::isnan(backup[s]) || Better(m, q, backup[s])) backup[s] = q;
+    }
+    if (std::isnan(v[s])) {
+      // No value (null) where a goal is reachable: as far from V* as can be. std::max would
+      // drop a NaN, so the state is counted as infinitely wrong explicitly.
+      residual[s] = kInfinity;
+      report.max_residual = kInfinity;
+      distance = kInfinity;
+      continue;
     }
     residual[s] = std::fabs(backup[s] - v[s]);
     report.max_residual = std::max(report.max_residual, residual[s]);

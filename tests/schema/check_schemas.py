@@ -21,9 +21,28 @@ With --mdpserve it also runs the CLI:
       documents; `evaluate EXAMPLE --policy TMP` (exit 0) an evaluation document; `validate
       EXAMPLE` (exit 0) an errors document without errors; `simulate EXAMPLE --solution TMP
       --start-distribution START` (exit 0) a simulation document whose mean agrees with the
-      exact V^pi of `evaluate` within its 99.9% interval, reproduced exactly by a rerun
-      (verify, evaluate and simulate for discounted examples only: they evaluate discounted
-      values). For the examples of the other criteria the solution document is also checked
+      exact V^pi of `evaluate` within its 99.9% interval, reproduced exactly by a rerun.
+      For the examples of the other criteria (finite_horizon, average, total) the same
+      commands run under the criterion, every output validated against its schema: the
+      solution document is accepted as a values and a policy candidate; `verify --values
+      SOLUTION` passes (exit 0) with the criterion's numbers (a gain bracket containing the
+      gain no wider than the tolerance; a zero distance to the reference, null residuals
+      exactly at the states that cannot reach a goal), and fails (exit 1) once one value is
+      raised by 1; `verify --policy SOLUTION` passes (exit 0) for average and total, and for
+      a finite horizon, where the solution's stage-0 picks are applied at every stage, its
+      loss equals the one computed here from V^pi_0 and the verdict follows from it (the
+      icecream example fails: the optimal order changes with the weeks left; a one-period
+      variant must pass); `evaluate --policy SOLUTION` equals the solution's values within
+      1e-6 (total, with its expected steps and the states left out listed as improper; a
+      finite horizon: V^pi_0 computed here), its gains equal the solution's gain within the
+      solution's gain_error_bound + 1e-9 (average, with the same recurrent classes and a bias
+      off by a constant); `simulate` (20000 seeded episodes, the solution's own decisions,
+      per stage for a finite horizon) has a 99.9% interval containing the solution's value
+      of the start (finite horizon, total) or, with --max-steps 2000, its gain within the
+      interval plus 2 max|h| / 2000 (average), reproduced by a rerun; under total reward a
+      policy that stays for ever in a state that can reach a goal fails `verify --policy`
+      (exit 1) listing that state in improper_states with a null loss, and `evaluate` lists
+      it as improper. The solution document is also checked
       against the reference solvers of scripts/make_examples.py (plain Python): finite
       horizon, values and Q of stage 0 and of `solve --stage 3` against backward induction;
       average, the gain bracket and the bias against relative value iteration, a
@@ -872,6 +891,239 @@ OTHER_DOCS += [
 ]
 
 
+# Documents of the other criteria (verification, evaluation, simulation, candidates): what
+# the if/then branches per criterion accept and refuse.
+
+def criterion_verification(kind, criterion):
+    """A verification document as `verify` writes it under `criterion`."""
+    if kind == "values":
+        doc = {"format": "mdpserve/verification@1", "kind": "values", "criterion": criterion,
+               "verdict": "pass", "tolerance": 1e-6, "max_residual": 0.0,
+               "value_error_bound": 0.0, "greedy_policy_loss_bound": 0.0,
+               "worst_states": [{"state": "a", "residual": 0.0, "candidate": 3.0,
+                                 "backup": 3.0}],
+               "residuals": {"a": 0.0, "b": 0.0, "c": 0.0}}
+        if criterion == "average":
+            doc.update(max_residual=5e-10, value_error_bound=None, greedy_policy_loss_bound=1e-9,
+                       gain_lower=1.4999999995, gain_upper=1.5000000005)
+        elif criterion == "finite_horizon":
+            doc.update(greedy_policy_loss_bound=None, reference_distance=0.0,
+                       reference_error_bound=0.0)
+        elif criterion == "total":
+            doc.update(greedy_policy_loss_bound=None, reference_distance=0.0,
+                       reference_error_bound=1e-13, value_error_bound=1e-13,
+                       states_not_reaching_goal=1, residuals={"a": 0.0, "b": None, "c": 0.0})
+        return doc
+    doc = {"format": "mdpserve/verification@1", "kind": "policy", "criterion": criterion,
+           "verdict": "pass", "tolerance": 1e-6, "max_loss": 0.0,
+           "evaluation_error_bound": 1e-13, "optimal_value_error_bound": 1e-12,
+           "improper_states": [], "improper_count": 0, "linear_solver": "direct",
+           "worst_states": [{"state": "a", "loss": 0.0, "value": 3.0, "optimal_value": 3.0}],
+           "suboptimal_states": [], "suboptimal_count": 0,
+           "values": {"a": 3.0, "b": 3.0, "c": 0.0}, "losses": {"a": 0.0, "b": 0.0, "c": 0.0}}
+    if criterion == "finite_horizon":
+        doc.update(linear_solver="sweeps", evaluation_error_bound=0.0,
+                   optimal_value_error_bound=0.0)
+    return doc
+
+
+def improper_verification():
+    """Total reward: the policy stays in b for ever, where a goal could be reached."""
+    doc = criterion_verification("policy", "total")
+    doc.update(verdict="fail", max_loss=None, improper_states=["b"], improper_count=1,
+               worst_states=[{"state": "b", "loss": None, "value": None, "optimal_value": 3.0}],
+               values={"a": 3.0, "b": None, "c": 0.0}, losses={"a": 0.0, "b": None, "c": 0.0})
+    return doc
+
+
+def criterion_evaluation(criterion):
+    doc = {"format": "mdpserve/evaluation@1", "criterion": criterion, "linear_solver": "direct",
+           "residual": 0.0, "value_error_bound": 0.0, "iterations": 0,
+           "values": {"a": 3.0, "b": 3.0, "c": 0.0}}
+    if criterion == "finite_horizon":
+        doc.update(linear_solver="sweeps")
+    elif criterion == "average":
+        doc.update(value_error_bound=None, residual=2e-16, gain_error_bound=2e-16,
+                   values={"a": 0.44, "b": -0.89, "c": 0.0},
+                   gains={"a": 4 / 3.0, "b": 4 / 3.0, "c": 0.0},
+                   recurrent_classes=[{"states": ["a", "b"], "size": 2},
+                                      {"states": ["c"], "size": 1}])
+    elif criterion == "total":
+        doc.update(values={"a": 3.0, "b": None, "c": 0.0},
+                   expected_steps={"a": 1.0, "b": None, "c": 0.0},
+                   improper_states=["b"], improper_count=1)
+    return doc
+
+
+def criterion_simulation(criterion, **members):
+    doc = sample_simulation()
+    doc["criterion"] = criterion
+    doc.update(members)
+    return doc
+
+
+def episode_length(doc, truncated):
+    doc = copy.deepcopy(doc)
+    doc["episode_length"]["truncated_episodes"] = truncated
+    return doc
+
+
+AVERAGE_SIM = criterion_simulation({"kind": "average"}, return_kind="reward_per_step",
+                                   truncation_bound=None, truncation_bias_bound=None)
+HORIZON_SIM = criterion_simulation({"kind": "finite_horizon", "horizon": 6, "discount": 1.0},
+                                   return_kind="horizon_sum", truncation_bound=0.0,
+                                   truncation_bias_bound=0.0)
+TOTAL_SIM = criterion_simulation({"kind": "total"}, return_kind="total_until_goal",
+                                 truncation_bound=None, truncation_bias_bound=0.0)
+VERIFY = "verification.schema.json"
+EVALUATE = "evaluation.schema.json"
+SIMULATE = "simulation.schema.json"
+
+OTHER_DOCS += [
+    ("values document with a null value (total: no value)", "values.schema.json",
+     {"format": "mdpserve/values@1", "values": {"a": 3.0, "b": None}}, True),
+    ("total solution as a values document (null values)", "values.schema.json",
+     sample_total_solution(), True),
+    ("total solution as a policy document (states left out)", "policy.schema.json",
+     sample_total_solution(), True),
+    ("values verification naming the discounted criterion", VERIFY,
+     criterion_verification("values", "discounted"), True),
+    ("discounted values verification with a null residual", VERIFY,
+     edited(criterion_verification("values", "discounted"),
+            lambda d: d["residuals"].update(b=None)), False),
+    ("discounted values verification with a null value_error_bound", VERIFY,
+     changed(criterion_verification("values", "discounted"), "value_error_bound", None), False),
+    ("discounted values verification with a gain bracket", VERIFY,
+     changed(criterion_verification("values", "discounted"), "gain_lower", 1.0), False),
+    ("old values verification with a null max_residual (no criterion: discounted)", VERIFY,
+     changed(sample_verification("values"), "max_residual", None), False),
+    ("average values verification", VERIFY, criterion_verification("values", "average"), True),
+    ("average values verification without gain_upper", VERIFY,
+     dropped(criterion_verification("values", "average"), "gain_upper"), False),
+    ("average values verification with a value_error_bound", VERIFY,
+     changed(criterion_verification("values", "average"), "value_error_bound", 1e-9), False),
+    ("average values verification with a reference_distance", VERIFY,
+     changed(criterion_verification("values", "average"), "reference_distance", 0.0), False),
+    ("average values verification without residuals", VERIFY,
+     dropped(criterion_verification("values", "average"), "residuals"), False),
+    ("finite-horizon values verification", VERIFY,
+     criterion_verification("values", "finite_horizon"), True),
+    ("finite-horizon values verification with a greedy policy loss bound", VERIFY,
+     changed(criterion_verification("values", "finite_horizon"), "greedy_policy_loss_bound",
+             0.0), False),
+    ("finite-horizon values verification without reference_distance", VERIFY,
+     dropped(criterion_verification("values", "finite_horizon"), "reference_distance"), False),
+    ("total values verification with null residuals", VERIFY,
+     criterion_verification("values", "total"), True),
+    ("total values verification without a reference (null bounds, fail)", VERIFY,
+     dict(criterion_verification("values", "total"), verdict="fail", value_error_bound=None,
+          reference_distance=None, reference_error_bound=None), True),
+    ("total values verification passing with a null value_error_bound", VERIFY,
+     dict(criterion_verification("values", "total"), value_error_bound=None,
+          reference_distance=None), False),
+    ("total values verification without states_not_reaching_goal", VERIFY,
+     dropped(criterion_verification("values", "total"), "states_not_reaching_goal"), False),
+    ("total values verification with a gain bracket", VERIFY,
+     changed(criterion_verification("values", "total"), "gain_upper", 1.0), False),
+    ("values verification with an unknown criterion", VERIFY,
+     changed(criterion_verification("values", "discounted"), "criterion", "undiscounted"),
+     False),
+    ("policy verification naming the discounted criterion", VERIFY,
+     criterion_verification("policy", "discounted"), True),
+    ("discounted policy verification with a null value", VERIFY,
+     edited(criterion_verification("policy", "discounted"),
+            lambda d: d["values"].update(b=None)), False),
+    ("discounted policy verification with an improper state", VERIFY,
+     changed(criterion_verification("policy", "discounted"), "improper_count", 1), False),
+    ("policy verification naming its criterion without improper_count", VERIFY,
+     dropped(criterion_verification("policy", "average"), "improper_count"), False),
+    ("policy verification passing with a null evaluation_error_bound", VERIFY,
+     changed(criterion_verification("policy", "average"), "evaluation_error_bound", None),
+     False),
+    ("average policy verification failing with a null optimal_value_error_bound", VERIFY,
+     dict(criterion_verification("policy", "average"), verdict="fail",
+          optimal_value_error_bound=None), True),
+    ("average policy verification by sweeps", VERIFY,
+     changed(criterion_verification("policy", "average"), "linear_solver", "sweeps"), False),
+    ("finite-horizon policy verification", VERIFY,
+     criterion_verification("policy", "finite_horizon"), True),
+    ("finite-horizon policy verification with a non-zero evaluation error bound", VERIFY,
+     changed(criterion_verification("policy", "finite_horizon"), "evaluation_error_bound",
+             1e-9), False),
+    ("finite-horizon policy verification by a direct solve", VERIFY,
+     changed(criterion_verification("policy", "finite_horizon"), "linear_solver", "direct"),
+     False),
+    ("total policy verification of a proper policy", VERIFY,
+     criterion_verification("policy", "total"), True),
+    ("total policy verification with an improper state (null loss)", VERIFY,
+     improper_verification(), True),
+    ("total policy verification passing with an improper state", VERIFY,
+     changed(improper_verification(), "verdict", "pass"), False),
+    ("total policy verification with an improper state and a finite max_loss", VERIFY,
+     changed(improper_verification(), "max_loss", 5.0), False),
+    ("total policy verification counting an improper state it does not list", VERIFY,
+     changed(improper_verification(), "improper_states", []), False),
+    ("total policy verification with a null max_loss and no improper state", VERIFY,
+     dict(criterion_verification("policy", "total"), verdict="fail", max_loss=None), False),
+    ("total policy verification listing 101 improper states", VERIFY,
+     changed(improper_verification(), "improper_states", ["b"] * 101), False),
+    ("evaluation naming the discounted criterion", EVALUATE,
+     criterion_evaluation("discounted"), True),
+    ("discounted evaluation with a null value", EVALUATE,
+     edited(criterion_evaluation("discounted"), lambda d: d["values"].update(b=None)), False),
+    ("old evaluation (no criterion) with gains", EVALUATE,
+     changed(criterion_evaluation("discounted"), "gains", {"a": 1.0}), False),
+    ("finite-horizon evaluation", EVALUATE, criterion_evaluation("finite_horizon"), True),
+    ("finite-horizon evaluation by a direct solve", EVALUATE,
+     changed(criterion_evaluation("finite_horizon"), "linear_solver", "direct"), False),
+    ("average evaluation", EVALUATE, criterion_evaluation("average"), True),
+    ("average evaluation without gains", EVALUATE,
+     dropped(criterion_evaluation("average"), "gains"), False),
+    ("average evaluation with a bound on the bias", EVALUATE,
+     changed(criterion_evaluation("average"), "value_error_bound", 1e-9), False),
+    ("average evaluation with an empty recurrent class", EVALUATE,
+     changed(criterion_evaluation("average"), "recurrent_classes",
+             [{"states": [], "size": 0}]), False),
+    ("average evaluation with expected steps", EVALUATE,
+     changed(criterion_evaluation("average"), "expected_steps", {"a": 1.0}), False),
+    ("total evaluation with an improper state", EVALUATE, criterion_evaluation("total"), True),
+    ("total evaluation without expected_steps", EVALUATE,
+     dropped(criterion_evaluation("total"), "expected_steps"), False),
+    ("total evaluation counting an improper state it does not list", EVALUATE,
+     changed(criterion_evaluation("total"), "improper_states", []), False),
+    ("total evaluation with a negative expected step count", EVALUATE,
+     edited(criterion_evaluation("total"), lambda d: d["expected_steps"].update(a=-1.0)),
+     False),
+    ("discounted simulation with its return_kind", SIMULATE,
+     changed(sample_simulation(), "return_kind", "discounted_sum"), True),
+    ("discounted simulation with a null truncation bound", SIMULATE,
+     changed(sample_simulation(), "truncation_bound", None), False),
+    ("discounted simulation with the average return_kind", SIMULATE,
+     changed(sample_simulation(), "return_kind", "reward_per_step"), False),
+    ("simulation with an unknown return_kind", SIMULATE,
+     changed(sample_simulation(), "return_kind", "undiscounted_sum"), False),
+    ("average simulation (reward per step, no truncation bound)", SIMULATE, AVERAGE_SIM, True),
+    ("average simulation without return_kind", SIMULATE, dropped(AVERAGE_SIM, "return_kind"),
+     False),
+    ("average simulation with a truncation bound", SIMULATE,
+     changed(AVERAGE_SIM, "truncation_bound", 0.0), False),
+    ("average simulation with truncated episodes", SIMULATE, episode_length(AVERAGE_SIM, 3),
+     False),
+    ("finite-horizon simulation", SIMULATE, HORIZON_SIM, True),
+    ("finite-horizon simulation with a null truncation bound", SIMULATE,
+     changed(HORIZON_SIM, "truncation_bound", None), False),
+    ("finite-horizon simulation with the total return_kind", SIMULATE,
+     changed(HORIZON_SIM, "return_kind", "total_until_goal"), False),
+    ("total simulation without cut episodes", SIMULATE, TOTAL_SIM, True),
+    ("total simulation with cut episodes (no bias bound)", SIMULATE,
+     changed(episode_length(TOTAL_SIM, 3), "truncation_bias_bound", None), True),
+    ("total simulation with cut episodes and a bias bound of 0", SIMULATE,
+     episode_length(TOTAL_SIM, 3), False),
+    ("total simulation with a finite truncation bound", SIMULATE,
+     changed(TOTAL_SIM, "truncation_bound", 1.0), False),
+]
+
+
 # --------------------------------------------------------------------------------------------
 # Parts (a) to (c)
 
@@ -1324,6 +1576,382 @@ def check_cli_criterion(rep, schemas, binary, root, tmp, path, model, sol):
         check_total(rep, "solve %s" % name, model, sol, ref)
 
 
+# --------------------------------------------------------------------------------------------
+# verify, evaluate and simulate under the average, finite_horizon and total criteria
+
+SIM_EPISODES = 20000      # episodes of each criterion simulation
+SIM_AVERAGE_STEPS = 2000  # steps averaged over by an average-reward episode
+SIM_CONFIDENCE = 0.999
+
+
+def write_json(tmp, fname, doc):
+    path = os.path.join(tmp, fname)
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh)
+    return path
+
+
+def cli_document(rep, schemas, binary, root, args, label, fname, exits):
+    """Runs `mdpserve ARGS`; checks the exit code is in `exits` and stdout is a document valid
+    against `fname`. Returns (exit code, document) or (exit code, None)."""
+    rc, out, err = run([binary] + args, root)
+    if not rep.check("%s exits %s" % (label, " or ".join(str(e) for e in exits)), rc in exits,
+                     "exit %r; %s" % (rc, short(err))):
+        return rc, None
+    return rc, validated_output(rep, schemas, label, fname, out)
+
+
+def stationary_stage_zero(ref, model, policy):
+    """V^pi_0 of the deterministic `policy` applied at every stage of a finite-horizon model
+    (plain Python; terminal states stay 0)."""
+    c = model["criterion"]
+    g = c.get("discount", 1.0)
+    rows = ref.expected_rewards(model)
+    V = {n: c.get("terminal_values", {}).get(n, 0.0) for n in rows}
+    for _ in range(c["horizon"]):
+        nxt = {}
+        for n in rows:
+            if n not in policy:
+                nxt[n] = 0.0
+                continue
+            r, outcomes = rows[n][policy[n]]
+            nxt[n] = r + g * sum(p * V[x] for x, p in outcomes)
+        V = nxt
+    return V
+
+
+def far_apart(got, want, tol, what):
+    """Entries of two {state: number or None} maps that differ by more than `tol` (None only
+    matches None)."""
+    problems = []
+    for s in sorted(set(got) | set(want)):
+        a, b = got.get(s, "missing"), want.get(s, "missing")
+        if a is None or b is None or isinstance(a, str) or isinstance(b, str):
+            if a is not b:
+                problems.append("%s(%s) %r, expected %r" % (what, s, a, b))
+        elif abs(a - b) > tol:
+            problems.append("%s(%s) %r, expected %r" % (what, s, a, b))
+    return problems
+
+
+def solution_gain(sol, state):
+    a = sol["average"]
+    return a["state_gains"][state] if "state_gains" in a else a["gain"]
+
+
+def optimal_gains(model, sol):
+    """The optimal gain per state of an average-reward solution (0 at terminal states)."""
+    terminal = {s["name"] for s in model["states"] if s.get("terminal", False)}
+    return {s: 0.0 if s in terminal else solution_gain(sol, s) for s in sol["values"]}
+
+
+def check_cli_verify_values(rep, schemas, binary, root, tmp, path, model, sol, sol_path):
+    """`verify --values SOLUTION` passes with the numbers of the criterion; the same values
+    with one state's value raised by 1 fail."""
+    name = os.path.basename(path)
+    kind = model["criterion"]["kind"]
+    label = "verify %s --values SOLUTION" % name
+    rc, doc = cli_document(rep, schemas, binary, root, ["verify", path, "--values", sol_path],
+                           label, "verification.schema.json", (0,))
+    if doc is not None:
+        problems = []
+        if doc["kind"] != "values" or doc["criterion"] != kind or doc["verdict"] != "pass":
+            problems.append("kind %r, criterion %r, verdict %r"
+                            % (doc["kind"], doc["criterion"], doc["verdict"]))
+        if kind == "average":
+            lo, hi = doc["gain_lower"], doc["gain_upper"]
+            width = hi - lo
+            gain = sol["average"]["gain"]
+            if not lo - 1e-9 <= gain <= hi + 1e-9:
+                problems.append("solution gain %r outside [%r, %r]" % (gain, lo, hi))
+            if width > doc["tolerance"]:
+                problems.append("passes with a bracket of width %r" % width)
+            if not close(doc["max_residual"], width / 2, 1e-6) or \
+                    not close(doc["greedy_policy_loss_bound"], width, 1e-6):
+                problems.append("max_residual %r, greedy_policy_loss_bound %r, width %r"
+                                % (doc["max_residual"], doc["greedy_policy_loss_bound"], width))
+            over = [s for s, r in doc["residuals"].items() if r > width / 2 + 1e-9]
+            if over:
+                problems.append("residuals above half the width at %s" % over[:3])
+        else:
+            bound = doc["reference_distance"] + doc["reference_error_bound"]
+            if doc["reference_distance"] > 1e-9 or not close(doc["value_error_bound"], bound):
+                problems.append("reference_distance %r, value_error_bound %r"
+                                % (doc["reference_distance"], doc["value_error_bound"]))
+            if doc["greedy_policy_loss_bound"] is not None:
+                problems.append("greedy_policy_loss_bound %r" % doc["greedy_policy_loss_bound"])
+        if kind == "total":
+            stuck = set(sol["total"]["not_reaching_goal"])
+            if doc["states_not_reaching_goal"] != sol["total"]["states_not_reaching_goal"]:
+                problems.append("states_not_reaching_goal %r" % doc["states_not_reaching_goal"])
+            nulls = {s for s, r in doc["residuals"].items() if r is None}
+            if nulls != stuck:
+                problems.append("null residuals at %s, expected at %s"
+                                % (sorted(nulls)[:3], sorted(stuck)[:3]))
+        rep.check("%s: the %s numbers say it is exact" % (label, kind), not problems,
+                  "; ".join(problems[:4]))
+
+    # One value raised by 1: the first non-terminal state that has a value.
+    terminal = {s["name"] for s in model["states"] if s.get("terminal", False)}
+    target = next(s["name"] for s in model["states"]
+                  if s["name"] not in terminal and sol["values"][s["name"]] is not None)
+    values = dict(sol["values"])
+    values[target] += 1.0
+    candidate = {"format": "mdpserve/values@1", "values": values}
+    errs = schemas.errors("values.schema.json", candidate)
+    rep.check("perturbed values document for %s matches values.schema.json" % name, not errs,
+              "; ".join("%s: %s" % e for e in errs[:3]))
+    cpath = write_json(tmp, name.replace(".json", ".perturbed-values.json"), candidate)
+    label = "verify %s --values (%s raised by 1)" % (name, target)
+    rc, doc = cli_document(rep, schemas, binary, root, ["verify", path, "--values", cpath],
+                           label, "verification.schema.json", (1,))
+    if doc is None:
+        return
+    problems = []
+    if doc["verdict"] != "fail":
+        problems.append("verdict %r" % doc["verdict"])
+    if kind == "average":
+        if not doc["gain_upper"] - doc["gain_lower"] > doc["tolerance"]:
+            problems.append("bracket [%r, %r] still within the tolerance"
+                            % (doc["gain_lower"], doc["gain_upper"]))
+    else:
+        if not close(doc["reference_distance"], 1.0, 1e-9):
+            problems.append("reference_distance %r, expected 1" % doc["reference_distance"])
+        if kind == "finite_horizon" and \
+                (not doc["worst_states"] or doc["worst_states"][0]["state"] != target):
+            problems.append("worst state %r, expected %r"
+                            % (doc["worst_states"][:1], target))
+    rep.check("%s fails, off by what was added" % label, not problems, "; ".join(problems[:4]),
+              info="verdict %s" % doc["verdict"])
+
+
+def check_cli_verify_evaluate_policy(rep, schemas, binary, root, tmp, path, model, sol,
+                                     sol_path):
+    """`verify --policy SOLUTION` and `evaluate --policy SOLUTION`. Average and total: the
+    solution's own policy passes and evaluates to its gain or values. Finite horizon: the
+    solution's stage-0 picks, applied at every stage (a stationary policy), against V^pi_0
+    computed here: the loss is what the stage-dependent optimum gains over it, and the verdict
+    passes only when that is within the tolerance."""
+    name = os.path.basename(path)
+    kind = model["criterion"]["kind"]
+    ref = reference_solvers(root)
+    want_values, expected_loss = None, 0.0
+    if kind == "finite_horizon":
+        want_values = stationary_stage_zero(ref, model, sol["policy"])
+        sign = 1.0 if model["objective"] == "maximize" else -1.0
+        expected_loss = max(sign * (sol["values"][s] - want_values[s]) for s in want_values)
+    label = "verify %s --policy SOLUTION" % name
+    exits = (0,) if expected_loss <= 1e-9 else (1,)
+    rc, doc = cli_document(rep, schemas, binary, root, ["verify", path, "--policy", sol_path],
+                           label, "verification.schema.json", exits)
+    if doc is not None:
+        problems = []
+        total = doc["max_loss"] + doc["evaluation_error_bound"] + \
+            doc["optimal_value_error_bound"] if doc["max_loss"] is not None and \
+            doc["evaluation_error_bound"] is not None and \
+            doc["optimal_value_error_bound"] is not None else None
+        verdict = "pass" if total is not None and total <= doc["tolerance"] else "fail"
+        if doc["kind"] != "policy" or doc["criterion"] != kind or doc["verdict"] != verdict or \
+                (rc == 0) != (verdict == "pass"):
+            problems.append("kind %r, criterion %r, verdict %r (the sum of the terms is %r), "
+                            "exit %r" % (doc["kind"], doc["criterion"], doc["verdict"], total, rc))
+        if doc["suboptimal_count"] != 0 or doc["improper_count"] != 0:
+            problems.append("suboptimal_count %r, improper_count %r"
+                            % (doc["suboptimal_count"], doc["improper_count"]))
+        if kind == "finite_horizon":
+            if doc["max_loss"] is None or abs(doc["max_loss"] - expected_loss) > 1e-6:
+                problems.append("max_loss %r, expected %r" % (doc["max_loss"], expected_loss))
+            problems += far_apart(doc["values"], want_values, 1e-6, "V^pi_0")
+        elif kind == "average":
+            problems += far_apart(doc["values"], optimal_gains(model, sol),
+                                  sol["average"]["gain_error_bound"] + 1e-9, "gain")
+        else:
+            problems += far_apart(doc["values"], sol["values"], 1e-6, "V^pi")
+        rep.check("%s: verdict and loss as the %s criterion says" % (label, kind), not problems,
+                  "; ".join(problems[:4]),
+                  info="max_loss %s, verdict %s" % (doc["max_loss"], doc["verdict"]))
+
+    label = "evaluate %s --policy SOLUTION" % name
+    rc, doc = cli_document(rep, schemas, binary, root, ["evaluate", path, "--policy", sol_path],
+                           label, "evaluation.schema.json", (0,))
+    if doc is None:
+        return
+    problems = []
+    if doc.get("criterion") != kind:
+        problems.append("criterion %r" % doc.get("criterion"))
+    if kind == "finite_horizon":
+        problems += far_apart(doc["values"], want_values, 1e-6, "V^pi_0")
+        if expected_loss <= 1e-9:
+            problems += far_apart(doc["values"], sol["values"], 1e-6, "V^pi_0 vs solution")
+    elif kind == "total":
+        problems += far_apart(doc["values"], sol["values"], 1e-6, "V^pi")
+        steps = {e["state"]: e["expected_steps"] for e in sol["states"]}
+        problems += far_apart(doc["expected_steps"], steps, 1e-6, "expected_steps")
+        stuck = sol["total"]["not_reaching_goal"]
+        if doc["improper_states"] != stuck or doc["improper_count"] != len(stuck):
+            problems.append("improper_states %r (%r), expected %r (the states left out of the "
+                            "solution's policy cannot reach a goal)"
+                            % (doc["improper_states"][:3], doc["improper_count"], stuck[:3]))
+    else:
+        problems += far_apart(doc["gains"], optimal_gains(model, sol),
+                              sol["average"]["gain_error_bound"] + 1e-9, "gain")
+        got = sorted(sorted(c["states"]) for c in doc["recurrent_classes"])
+        expected = sorted(sorted(c["states"]) for c in sol["average"]["recurrent_classes"])
+        if got != expected:
+            problems.append("recurrent classes %r, the solution's %r" % (got[:2], expected[:2]))
+        if len(expected) == 1:
+            # One class: the bias is fixed up to a constant, so it differs from the
+            # solution's by the same amount in every state.
+            shift = [doc["values"][s] - v for s, v in sol["values"].items()]
+            if max(shift) - min(shift) > 1e-6:
+                problems.append("bias differs from the solution's by %r to %r"
+                                % (min(shift), max(shift)))
+    rep.check("%s agrees with the solution (%s)" % (label, kind), not problems,
+              "; ".join(problems[:4]))
+
+
+def check_cli_total_improper(rep, schemas, binary, root, tmp, path, model, sol):
+    """Total reward: the solution's policy with one state switched to an action that stays
+    there for ever (a state that can reach a goal) is improper there: `verify --policy` fails
+    listing it, `evaluate` has no value for it."""
+    name = os.path.basename(path)
+    loop = None
+    for s in model["states"]:
+        if s.get("terminal", False) or sol["values"].get(s["name"]) is None:
+            continue
+        for sa in s.get("actions", []):
+            if all(o["next"] == s["name"] for o in sa["outcomes"] if o["probability"] > 0):
+                loop = (s["name"], sa["action"])
+                break
+        if loop:
+            break
+    if not rep.check("%s has a state that can reach a goal and an action that stays there"
+                     % name, loop is not None, "none found"):
+        return
+    state, action = loop
+    policy = dict(sol["policy"])
+    policy[state] = action
+    candidate = {"format": "mdpserve/policy@1", "policy": policy}
+    errs = schemas.errors("policy.schema.json", candidate)
+    rep.check("looping policy for %s matches policy.schema.json" % name, not errs,
+              "; ".join("%s: %s" % e for e in errs[:3]))
+    cpath = write_json(tmp, name.replace(".json", ".looping-policy.json"), candidate)
+    label = "verify %s --policy (%s: %s for ever)" % (name, state, action)
+    rc, doc = cli_document(rep, schemas, binary, root, ["verify", path, "--policy", cpath],
+                           label, "verification.schema.json", (1,))
+    if doc is not None:
+        rep.check("%s fails with %s improper (infinite loss, null)" % (label, state),
+                  doc["verdict"] == "fail" and state in doc["improper_states"] and
+                  doc["improper_count"] >= 1 and doc["max_loss"] is None and
+                  doc["losses"][state] is None and doc["values"][state] is None,
+                  "verdict %r, improper %r (%r), max_loss %r, loss %r"
+                  % (doc["verdict"], doc["improper_states"][:5], doc["improper_count"],
+                     doc["max_loss"], doc["losses"].get(state)),
+                  info="improper %s" % doc["improper_states"][:5])
+    label = "evaluate %s --policy (%s: %s for ever)" % (name, state, action)
+    rc, doc = cli_document(rep, schemas, binary, root, ["evaluate", path, "--policy", cpath],
+                           label, "evaluation.schema.json", (0,))
+    if doc is not None:
+        rep.check("%s lists %s as improper, without value or step count" % (label, state),
+                  state in doc["improper_states"] and doc["values"][state] is None and
+                  doc["expected_steps"][state] is None and
+                  doc["improper_count"] == len(doc["improper_states"]),
+                  "improper %r, value %r, steps %r"
+                  % (doc["improper_states"][:5], doc["values"].get(state),
+                     doc["expected_steps"].get(state)))
+
+
+def check_cli_criterion_simulate(rep, schemas, binary, root, tmp, path, model, sol):
+    """`simulate` without a policy file follows a fresh solve's own decisions (per stage for a
+    finite horizon) from the model's first state. Its 99.9% interval must contain the exact
+    value: the solution's value of the start (finite horizon: V*_0; total: V*), or its gain
+    (average, with a bias allowance 2 max|h| / max_steps for the finite run)."""
+    name = os.path.basename(path)
+    kind = model["criterion"]["kind"]
+    start = model["states"][0]["name"]
+    cmd = [binary, "simulate", path, "--episodes", str(SIM_EPISODES), "--seed", "23",
+           "--confidence", str(SIM_CONFIDENCE)]
+    slack = 0.0
+    if kind == "average":
+        cmd += ["--max-steps", str(SIM_AVERAGE_STEPS)]
+        exact = solution_gain(sol, start)
+        slack = 2.0 * max(abs(v) for v in sol["values"].values()) / SIM_AVERAGE_STEPS
+    else:
+        exact = sol["values"][start]
+    what = "simulate %s (the solution's decisions)" % name
+    rc, out, err = run(cmd, root)
+    if not rep.check("%s exits 0" % what, rc == 0, "exit %r; %s" % (rc, short(err))):
+        return
+    doc = validated_output(rep, schemas, what, "simulation.schema.json", out)
+    if doc is None:
+        return
+    want_kind = {"average": "reward_per_step", "finite_horizon": "horizon_sum",
+                 "total": "total_until_goal"}[kind]
+    problems = []
+    if doc["return_kind"] != want_kind:
+        problems.append("return_kind %r" % doc["return_kind"])
+    if doc["outcome"] != "completed" or doc["episodes"] != SIM_EPISODES or \
+            doc["options"]["start"] != {start: 1.0}:
+        problems.append("outcome %r, %r episodes, start %r"
+                        % (doc["outcome"], doc["episodes"], doc["options"]["start"]))
+    length = doc["episode_length"]
+    if length["truncated_episodes"] != 0:
+        problems.append("%r truncated episodes" % length["truncated_episodes"])
+    if kind == "finite_horizon" and not length["mean"] <= model["criterion"]["horizon"]:
+        problems.append("mean length %r beyond the horizon" % length["mean"])
+    if kind == "average" and not length["mean"] <= SIM_AVERAGE_STEPS:
+        problems.append("mean length %r beyond max_steps" % length["mean"])
+    ci = doc["return"]["confidence_interval"]
+    if not ci["low"] - slack <= exact <= ci["high"] + slack:
+        problems.append("exact %r outside [%r, %r] (allowance %r)"
+                        % (exact, ci["low"], ci["high"], slack))
+    rep.check("%s: the %.1f%% interval contains the exact %s" % (
+        what, 100 * SIM_CONFIDENCE, "gain" if kind == "average" else "value of " + start),
+        not problems, "; ".join(problems[:4]),
+        info="mean %.6g, exact %.6g, half-width %.3g" % (
+            doc["return"]["mean"], exact, (ci["high"] - ci["low"]) / 2))
+    rc, again, err = run(cmd, root)
+    second, _ = parse_json(again) if rc == 0 else (None, err)
+    rep.check("%s is reproduced by a rerun with the same seed" % what,
+              second is not None and
+              dict(second, simulate_seconds=0) == dict(doc, simulate_seconds=0),
+              "exit %r; %s" % (rc, short(err)))
+
+
+def check_cli_criterion_runs(rep, schemas, binary, root, tmp, path, model, sol, sol_path):
+    """verify, evaluate and simulate on an example of the average, finite_horizon or total
+    criterion (a finite horizon also as a one-period variant, whose stationary policy is
+    optimal), every output validated against its schema."""
+    name = os.path.basename(path)
+    for fname in ("values.schema.json", "policy.schema.json"):
+        errs = schemas.errors(fname, sol)
+        rep.check("solution of %s is accepted as a candidate by %s" % (name, fname), not errs,
+                  "; ".join("%s: %s" % e for e in errs[:3]))
+    check_cli_verify_values(rep, schemas, binary, root, tmp, path, model, sol, sol_path)
+    check_cli_verify_evaluate_policy(rep, schemas, binary, root, tmp, path, model, sol,
+                                     sol_path)
+    kind = model["criterion"]["kind"]
+    if kind == "total":
+        check_cli_total_improper(rep, schemas, binary, root, tmp, path, model, sol)
+    check_cli_criterion_simulate(rep, schemas, binary, root, tmp, path, model, sol)
+    if kind == "finite_horizon" and model["criterion"]["horizon"] > 1:
+        short_model = copy.deepcopy(model)
+        short_model["criterion"]["horizon"] = 1
+        short_path = write_json(tmp, name.replace(".json", "-horizon-1.json"), short_model)
+        label = "solve %s with horizon 1" % name
+        short_sol_path = os.path.join(tmp, name.replace(".json", "-horizon-1.solution.json"))
+        rc, _, err = run([binary, "solve", short_path, "--out", short_sol_path], root)
+        if rep.check("%s exits 0" % label, rc == 0, "exit %r; %s" % (rc, short(err))):
+            with open(short_sol_path, encoding="utf-8") as fh:
+                short_sol = validated_output(rep, schemas, label, "solution.schema.json",
+                                             fh.read())
+            if short_sol is not None:
+                check_cli_verify_values(rep, schemas, binary, root, tmp, short_path,
+                                        short_model, short_sol, short_sol_path)
+                check_cli_verify_evaluate_policy(rep, schemas, binary, root, tmp, short_path,
+                                                 short_model, short_sol, short_sol_path)
+
+
 def check_cli_unbounded_total(rep, schemas, binary, root, tmp):
     """BASE_MODEL under the total criterion: the loop a <-> b earns reward, so maximising is
     refused at solve time naming the loop, while minimising (the rewards become costs, the
@@ -1378,8 +2006,8 @@ def check_cli_example(rep, schemas, binary, root, tmp, path):
         return
     check_solution_content(rep, "solve %s" % label, model, sol, EXPECTED_TIES.get(name, {}))
     if model["criterion"]["kind"] != "discounted":
-        # verify, evaluate and simulate work with discounted values: not run on the others.
         check_cli_criterion(rep, schemas, binary, root, tmp, path, model, sol)
+        check_cli_criterion_runs(rep, schemas, binary, root, tmp, path, model, sol, sol_path)
         return
 
     for kind in ("values", "policy"):

@@ -503,6 +503,25 @@ TEST(VerifyValuesTest, TotalUsesSafeRowsAndTheReferenceForItsBound) {
   EXPECT_FALSE(alone.pass);
 }
 
+// A null (NaN) value is right only where no goal is reachable: state 5 of the walk.
+TEST(VerifyValuesTest, TotalMissingValueWhereAGoalIsReachableFails) {
+  const Model m = RiskyWalk();
+  const Solution s = RiskyWalkReference(m);
+  const double nan = std::numeric_limits<double>::quiet_NaN();
+  std::vector<double> v = {0, -3, -4, -3, 0, nan};
+  Result<ValuesReport> fine = VerifyValues(m, v, s, VerifyOptions{});
+  ASSERT_OK(fine);
+  EXPECT_TRUE(fine->pass);
+  v[2] = nan;
+  Result<ValuesReport> r = VerifyValues(m, v, s, VerifyOptions{});
+  ASSERT_OK(r);
+  EXPECT_FALSE(r->pass);
+  EXPECT_TRUE(std::isinf(r->reference_distance));
+  EXPECT_TRUE(std::isinf(r->residuals[2]));
+  ASSERT_FALSE(r->worst.empty());
+  EXPECT_EQ(r->worst[0].state, 2);
+}
+
 TEST(VerifyPolicyTest, ReferenceOfAnotherCriterionIsRefused) {
   const Model m = TwoRooms();
   Solution discounted = HandReference(m, {0.0, 0.0}, {0, 1, 1, 0});
