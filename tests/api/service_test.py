@@ -1651,6 +1651,26 @@ def scenario_h(api, server):
                 job is not None and job["status"] == "succeeded" and
                 (ci.get("low") or 0) - 1e-9 <= exact <= (ci.get("high") or 0) + 1e-9,
                 short(json.dumps(result)))
+    # Two criteria of one model: the saver over 3 periods consumes where 6 periods invest.
+    short_saver = saver_model()
+    short_saver["criterion"]["horizon"] = 3
+    short_id = upload(client, short_saver, 201, "h: upload the 3-period saver")
+    solve(client, short_id, name="h: 3-period saver")
+    resp = client.call("GET", "/v1/models/{id}/compare", {"id": saver}, {"with": short_id},
+                       expect=200, name="h: compare 6 and 3 periods")
+    if resp.status == 200:
+        c = resp.json()
+        changes = {x["state"]: (x["action_a"], x["action_b"]) for x in c["optimal_set_changes"]}
+        R.check("h: comparing horizons: poor invest -> consume, not the same criterion",
+                changes == {"poor": ("invest", "consume")} and c["same_criterion"] is False and
+                c["criterion_a"] == c["criterion_b"] == "finite_horizon", short(resp.body))
+    resp = client.call("GET", "/v1/models/{id}/compare", {"id": cycle}, {"with": saver},
+                       expect=200, name="h: compare an average and a finite-horizon model")
+    if resp.status == 200:
+        c = resp.json()
+        R.check("h: across criteria values are not comparable and none counts as changed",
+                c["values_comparable"] is False and c["value_changed_count"] == 0 and
+                c["common_states"] == 0, short(resp.body))
     # A loop that earns reward while avoiding the goal makes the maximum total unbounded.
     looping = criterion_model("Looping", "maximize", {"kind": "total"}, ["spin", "leave"], [
         {"name": "wheel", "actions": [
