@@ -72,6 +72,14 @@ int64_t ResultCache::bytes() const {
   return bytes_;
 }
 
+std::vector<ResultCache::EntryBytes> ResultCache::EntrySizes() const {
+  std::lock_guard<std::mutex> lock(mu_);
+  std::vector<EntryBytes> out;
+  out.reserve(lru_.size());
+  for (const Entry& e : lru_) out.push_back({e.key.rfind("m/", 0) == 0, e.key.substr(2), e.bytes});
+  return out;
+}
+
 int64_t ResultCache::entries() const {
   std::lock_guard<std::mutex> lock(mu_);
   return static_cast<int64_t>(lru_.size());

@@ -13,6 +13,7 @@
 #include <string>
 #include <unordered_map>
 #include <variant>
+#include <vector>
 
 #include "solver/model.h"
 #include "solver/solution.h"
@@ -35,6 +36,14 @@ class ResultCache {
   int64_t evictions() const { return evictions_.load(std::memory_order_relaxed); }
   int64_t bytes() const;
   int64_t entries() const;
+
+  // One line per cached entry, most recently used first: for /metrics.
+  struct EntryBytes {
+    bool model = false;  // A model; else a solution.
+    std::string id;      // Model or solution id.
+    int64_t bytes = 0;   // As accounted against the budget.
+  };
+  std::vector<EntryBytes> EntrySizes() const;
   int64_t budget() const { return budget_; }
 
  private:

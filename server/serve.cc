@@ -54,6 +54,20 @@ void RegisterServiceMetrics(MetricsRegistry& registry, PlanningService& service)
                                  [&cache] { return double(cache.entries()); });
   registry.RegisterGaugeCallback("mdpserve_cache_budget_bytes", "Byte budget of the cache.",
                                  [&cache] { return double(cache.budget()); });
+  registry.RegisterCollector(
+      "mdpserve_cached_model_bytes", "Bytes held in memory by each cached model.",
+      MetricType::kGauge, [&cache](std::vector<CollectedSample>* out) {
+        for (const ResultCache::EntryBytes& e : cache.EntrySizes()) {
+          if (e.model) out->push_back({{{"model", e.id}}, double(e.bytes)});
+        }
+      });
+  registry.RegisterCollector(
+      "mdpserve_cached_solution_bytes", "Bytes held in memory by each cached solution.",
+      MetricType::kGauge, [&cache](std::vector<CollectedSample>* out) {
+        for (const ResultCache::EntryBytes& e : cache.EntrySizes()) {
+          if (!e.model) out->push_back({{{"solution", e.id}}, double(e.bytes)});
+        }
+      });
 }
 
 // Uploads and solves each preload file, waiting for the solves; prints what happened.

@@ -1671,6 +1671,17 @@ def scenario_h(api, server):
         R.check("h: across criteria values are not comparable and none counts as changed",
                 c["values_comparable"] is False and c["value_changed_count"] == 0 and
                 c["common_states"] == 0, short(resp.body))
+    # Bytes per cached model and solution in /metrics. The saver's arrays alone take at least
+    # 2 states x (1 + 8) + 8 + 3 rows x (4 + 8 + 8) + 8 + 3 entries x (4 + 8) = 130 bytes.
+    resp = client.call("GET", "/metrics", expect=None)
+    samples = metric_samples(resp.body.decode() if isinstance(resp.body, bytes) else resp.body)
+    model_bytes = samples.get(("mdpserve_cached_model_bytes", (("model", saver),)))
+    solution_bytes = samples.get(("mdpserve_cached_solution_bytes",
+                                  (("solution", ids["saver_solution"]),)))
+    R.check("h: /metrics lists the saver's model bytes (>= 130) and solution bytes",
+            model_bytes is not None and model_bytes >= 130 and
+            solution_bytes is not None and solution_bytes > 0,
+            "model %s solution %s" % (model_bytes, solution_bytes))
     # A loop that earns reward while avoiding the goal makes the maximum total unbounded.
     looping = criterion_model("Looping", "maximize", {"kind": "total"}, ["spin", "leave"], [
         {"name": "wheel", "actions": [
