@@ -17,10 +17,12 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->envname("MDPSERVE_WORKERS")
       ->capture_default_str()
       ->check(CLI::Range(1, 256));
-  app->add_option("--solver-threads", c.solver_threads, "threads each solve uses for sweeps")
+  app->add_option("--solver-threads", c.solver_threads,
+                  "threads each solve uses for sweeps; 0 = automatic (all cores for models of "
+                  "at least 262144 transitions, else 1)")
       ->envname("MDPSERVE_SOLVER_THREADS")
       ->capture_default_str()
-      ->check(CLI::Range(1, 256));
+      ->check(CLI::Range(0, 256));
   app->add_option("--http-threads", c.http_threads,
                   "HTTP threads; each keep-alive connection holds one while open, so use at "
                   "least the number of concurrent clients")

@@ -21,7 +21,7 @@ struct ServerConfig {
   std::string data_dir = "mdpserve-data";  // Embedded store lives here.
   bool memory_store = false;               // Keep nothing on disk (tests, demos).
   int workers = 1;                         // Solve worker threads.
-  int solver_threads = 1;                  // Threads per solve for sweeps.
+  int solver_threads = 0;                  // Threads per solve for sweeps; 0 = automatic.
   int http_threads = 128;                  // HTTP threads: one per open connection.
   int64_t body_limit = int64_t{256} << 20;  // Request body cap in bytes.
   int64_t cache_bytes = int64_t{2} << 30;   // Model/solution cache budget in bytes.

@@ -44,8 +44,15 @@ struct SolveOptions {
   int64_t evaluation_sweeps = 20;   // Modified policy iteration: sweeps per improvement.
   LinearSolver linear_solver = LinearSolver::kAuto;  // Policy iteration's evaluation.
   double tie_tolerance = 1e-9;    // Extra slack (reward units) when grouping tied actions.
-  int threads = 1;                // Threads for synchronous sweeps; 0 = all cores.
+  // Threads for sweeps. 0 = automatic: every hardware thread for models with at least
+  // kAutoThreadsMinEntries transitions, else 1 (starting threads costs more than a sweep of
+  // a small model). Solve() resolves it; Solution::options says what was used.
+  int threads = 0;
 };
+
+// Models with at least this many transitions (CSR entries) sweep on every hardware thread
+// when SolveOptions::threads is 0.
+inline constexpr int64_t kAutoThreadsMinEntries = int64_t{1} << 18;
 
 struct OptionBound {
   std::string_view name;
@@ -66,7 +73,8 @@ inline constexpr std::array<OptionBound, 6> kSolveOptionBounds = {{
      1e6},
     {"tie_tolerance", "extra slack when grouping actions as tied, in reward units", 1e-9, 0,
      1e6},
-    {"threads", "threads for synchronous sweeps, 0 for all cores", 1, 0, 256},
+    {"threads", "threads for sweeps; 0 = automatic (all cores from 262144 transitions)", 0, 0,
+     256},
 }};
 
 // Returns kInvalidArgument naming the field if any option is out of its bounds.

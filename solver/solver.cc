@@ -6,6 +6,7 @@
 #include <new>
 #include <string>
 
+#include "solver/internal/bellman.h"
 #include "solver/policy_iteration.h"
 #include "solver/total_reward.h"
 #include "solver/value_iteration.h"
@@ -247,6 +248,9 @@ Result<Solution> Solve(const Model& m, const SolveOptions& requested, const Prog
   const CriterionKind kind = m.criterion().kind;
   SolveOptions options = requested;
   options.method = ResolveMethod(kind, requested.method);
+  if (options.threads == 0) {
+    options.threads = m.num_entries() >= kAutoThreadsMinEntries ? internal::ThreadCount(0) : 1;
+  }
   MDP_RETURN_IF_ERROR(CheckMethod(kind, options.method));
   // The one place where allocation failure inside the solver becomes a Status.
   try {

@@ -7,6 +7,7 @@
 
 #include <cmath>
 #include <string>
+#include <thread>
 
 #include "tests/testing/status_matchers.h"
 #include "tests/testing/test_models.h"
@@ -190,6 +191,47 @@ TEST(SolveCriteriaTest, ComparingTwoCriteriaOfOneModelReportsDecisionsNotValues)
   EXPECT_EQ(r.value_changed_count, 0);
   EXPECT_EQ(r.pick_changed_count, 0);
   EXPECT_GT(r.max_abs_value_difference, 10.0);  // Reported, not counted.
+}
+
+// threads = 0 (the default) resolves by size: one thread below kAutoThreadsMinEntries
+// transitions, every hardware thread from there on; the values do not depend on it (each
+// state's backup is computed alone, the sup-norm reduction is exact).
+TEST(SolveCriteriaTest, AutomaticThreadsFollowTheModelSize) {
+  const Model small = testing::MustBuild(testing::RandomSpec(3, testing::RandomModelOptions{}));
+  Result<Solution> s = Solve(small, SolveOptions{});
+  ASSERT_OK(s);
+  EXPECT_EQ(s->options.threads, 1);
+  // A ring of 65,536 states, one action with 4 outcomes each: 262,144 transitions.
+  ModelSpec ring;
+  ring.name = "ring";
+  ring.criterion.discount = 0.5;
+  ring.InternAction("step");
+  const StateId n = 1 << 16;
+  for (StateId i = 0; i < n; ++i) ring.AddState("s" + std::to_string(i));
+  ring.state_first_slot.assign(1, 0);
+  for (StateId i = 0; i < n; ++i) {
+    ring.slot_action.push_back(0);
+    ring.slot_reward.push_back(i % 7);
+    for (int k = 1; k <= 4; ++k) {
+      ring.outcome_next.push_back((i + k) % n);
+      ring.outcome_probability.push_back(0.25);
+      ring.outcome_reward.push_back(0.0);
+    }
+    ring.slot_first_outcome.push_back(ring.num_outcomes());
+    ring.state_first_slot.push_back(ring.num_slots());
+  }
+  const Model big = testing::MustBuild(ring);
+  ASSERT_EQ(big.num_entries(), kAutoThreadsMinEntries);
+  SolveOptions o;
+  o.method = Method::kValueIteration;
+  Result<Solution> automatic = Solve(big, o);
+  ASSERT_OK(automatic);
+  EXPECT_EQ(automatic->options.threads,
+            static_cast<int>(std::max(1u, std::thread::hardware_concurrency())));
+  o.threads = 1;
+  Result<Solution> one = Solve(big, o);
+  ASSERT_OK(one);
+  EXPECT_EQ(one->values, automatic->values);
 }
 
 }  // namespace
