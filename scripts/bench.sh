@@ -1,0 +1,132 @@
+#!/usr/bin/env bash
+# bench.sh: the benchmark suite of issue 5. Builds the bench targets, measures the solver and
+# its baselines side by side (numpy/scipy on the same models, json.load on the same document,
+# nginx for queries, a read-bandwidth probe), and writes BENCHMARKS.md at the repository root.
+# A measurement, not a test: it exits 0 when targets are missed, non-zero only when a step
+# fails. Every process it starts runs in the foreground (bench_queries.sh stops its servers
+# by PID itself).
+#
+#   scripts/bench.sh [--quick] [--build-dir DIR] [--out FILE]
+#
+#   --quick        100k-state models, fewer repetitions: about 3 minutes after the build.
+#                  Without it: the issue's 1M states x 4 actions x 8 outcomes (about 15-25
+#                  minutes on 2 cores; peak memory about 2 GB).
+#   --build-dir    build directory (default build-bench; configured with MDP_BUILD_BENCH=ON)
+#   --out          report path (default BENCHMARKS.md at the repository root)
+#
+# Environment (optional): BENCH_STATES, BENCH_STRUCTURES ("random local local_shuffled grid
+# inventory"), BENCH_SOLVE_STRUCTURE (local), BENCH_METHODS, BENCH_SWEEPS (least number of
+# timed sweeps per configuration; more are timed until 0.5 s has passed),
+# BENCH_INGEST_STATES (100000), BENCH_BUILD_TYPE (RelWithDebInfo, as the default build),
+# BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1.
+set -euo pipefail
+
+ROOT=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
+PY=/usr/bin/python3
+MODE=full
+BUILD="$ROOT/build-bench"
+OUT="$ROOT/BENCHMARKS.md"
+while (( $# > 0 )); do
+  case $1 in
+    --quick) MODE=quick ;;
+    --build-dir) BUILD=$(realpath -m "$2"); shift ;;
+    --out) OUT=$(realpath -m "$2"); shift ;;
+    -h|--help) sed -n '2,/^set -e/p' "$0" | sed '$d; s/^# \{0,1\}//'; exit 0 ;;
+    *) echo "bench.sh: unknown argument $1 (try --help)" >&2; exit 2 ;;
+  esac
+  shift
+done
+
+if [[ $MODE == quick ]]; then
+  STATES=${BENCH_STATES:-100000}; SWEEPS=${BENCH_SWEEPS:-20}; INGEST_REPS=2
+  QUERY_SECONDS=5; QUERY_ROUNDS=1; KERNEL_MIN_TIME=0.05; TIME_LIMIT=300
+else
+  STATES=${BENCH_STATES:-1000000}; SWEEPS=${BENCH_SWEEPS:-10}; INGEST_REPS=3
+  QUERY_SECONDS=10; QUERY_ROUNDS=3; KERNEL_MIN_TIME=0.2; TIME_LIMIT=1800
+fi
+STRUCTURES=${BENCH_STRUCTURES:-random local local_shuffled grid inventory}
+SOLVE_STRUCTURE=${BENCH_SOLVE_STRUCTURE:-local}
+DEFAULT_METHODS=value_iteration,value_iteration:1,gauss_seidel,policy_iteration
+DEFAULT_METHODS+=,modified_policy_iteration
+METHODS=${BENCH_METHODS:-$DEFAULT_METHODS}
+INGEST_STATES=${BENCH_INGEST_STATES:-100000}
+STARTED=$(date +%s)
+
+WORK=$(mktemp -d "${TMPDIR:-/tmp}/mdp-bench.XXXXXX")
+cleanup() {
+  local rc=$?
+  if [[ ${BENCH_KEEP:-0} == 1 || $rc != 0 ]]; then
+    echo "bench.sh: run directory kept: $WORK" >&2
+  else
+    rm -rf "$WORK"
+  fi
+  exit "$rc"
+}
+trap cleanup EXIT
+trap 'exit 130' INT
+trap 'exit 143' TERM
+
+say() { echo "bench.sh: $*" >&2; }
+sample_load() { echo "$1 $(cut -d' ' -f1-3 /proc/loadavg)" >>"$WORK/load.txt"; }
+# Runs a command after logging it (repository-relative) to commands.txt.
+run() {
+  echo "$*" | sed "s#$WORK#\$RUN#g; s#$ROOT/##g; s#$ROOT#.#g" >>"$WORK/commands.txt"
+  "$@"
+}
+
+sample_load start
+say "building solver_bench, kernel_bench and mdpserve in $BUILD"
+run cmake -S "$ROOT" -B "$BUILD" -DMDP_BUILD_BENCH=ON -DMDP_BUILD_TESTS=OFF \
+  -DCMAKE_BUILD_TYPE="${BENCH_BUILD_TYPE:-RelWithDebInfo}" >"$WORK/cmake.log"
+run cmake --build "$BUILD" -j"$(nproc)" --target solver_bench kernel_bench mdpserve \
+  >>"$WORK/cmake.log"
+BIN="$BUILD/bin"
+sample_load built
+
+for structure in $STRUCTURES; do
+  # The probe runs next to each model's sweeps, so both see the same load on a shared machine.
+  say "$structure: read-bandwidth probe"
+  run "$BIN/solver_bench" probe --bytes=1073741824 --repetitions=5 >"$WORK/probe-$structure.json"
+  solves=() solve=()
+  if [[ $structure == "$SOLVE_STRUCTURE" ]]; then
+    solves=(--methods="$METHODS" --tolerance=1e-6 --time-limit="$TIME_LIMIT")
+    solve=(--solve --tolerance 1e-6 --time-limit "$TIME_LIMIT")
+  fi
+  say "$structure: $STATES states${solves:+, solves: $METHODS}"
+  run "$BIN/solver_bench" model --structure="$structure" --states="$STATES" --sweeps="$SWEEPS" \
+    "${solves[@]}" --write-arrays="$WORK/arrays-$structure" >"$WORK/model-$structure.json"
+  say "$structure: numpy/scipy baseline"
+  run "$PY" "$ROOT/scripts/bench/baseline_sweep.py" "$WORK/arrays-$structure" \
+    --sweeps "$SWEEPS" "${solve[@]}" >"$WORK/numpy-$structure.json"
+  rm -rf "$WORK/arrays-$structure"
+  sample_load "$structure"
+done
+
+say "kernel micro-benchmarks"
+run env MDP_KERNEL_BENCH_STATES="$STATES" "$BIN/kernel_bench" --benchmark_format=json \
+  --benchmark_min_time="$KERNEL_MIN_TIME" >"$WORK/kernels.json" 2>"$WORK/kernels.err"
+sample_load kernels
+
+say "ingest: $INGEST_STATES-state document"
+run "$BIN/solver_bench" model --structure=random --states="$INGEST_STATES" --sweeps=0 \
+  --write-json="$WORK/ingest-model.json" >"$WORK/document-objects.json"
+run "$PY" "$ROOT/scripts/bench/ingest_bench.py" --mdpserve "$BIN/mdpserve" \
+  --document "$WORK/ingest-model.json" --encoding objects --repetitions "$INGEST_REPS" \
+  >"$WORK/ingest-objects.json"
+rm -f "$WORK/ingest-model.json"
+sample_load ingest
+
+if [[ ${BENCH_SKIP_QUERIES:-0} != 1 ]]; then
+  say "queries against nginx (scripts/bench_queries.sh)"
+  run env MDPSERVE="$BIN/mdpserve" BENCH_KEEP=0 BENCH_SECONDS="$QUERY_SECONDS" \
+    BENCH_ROUNDS="$QUERY_ROUNDS" bash "$ROOT/scripts/bench_queries.sh" \
+    >"$WORK/queries.txt" 2>"$WORK/queries.err"
+  sample_load queries
+fi
+
+sample_load end
+run "$PY" "$ROOT/scripts/bench/write_report.py" --work "$WORK" --out "$OUT" --mode "$MODE" \
+  --started "$STARTED" --finished "$(date +%s)" --solve-structure "$SOLVE_STRUCTURE"
+mkdir -p "$BUILD/bench-results"
+cp "$WORK"/*.json "$WORK"/*.txt "$BUILD/bench-results/" 2>/dev/null || true
+say "wrote $OUT (raw results in $BUILD/bench-results)"

@@ -1,0 +1,110 @@
+// kernel_bench: Google Benchmark micro-benchmarks of the Bellman kernels of
+// solver/internal/bellman.h on seeded models (scripts/bench/bench_models.h), next to the
+// reference loop of bench_measure.h. bytes_per_second counts SweepBytes() per full sweep
+// (not reported for PolicySweep, which reads one row per state).
+//
+//   kernel_bench [--benchmark_*]    e.g. --benchmark_format=json --benchmark_min_time=0.2
+//
+// Environment: MDP_KERNEL_BENCH_STATES (default 100000) states per model, 4 actions x 8
+// outcomes; MDP_KERNEL_BENCH_STRUCTURES (default "random,local,local_shuffled").
+#include <benchmark/benchmark.h>
+
+#include <cstdlib>
+#include <map>
+#include <optional>
+#include <memory>
+#include <sstream>
+#include <string>
+#include <vector>
+
+#include "scripts/bench/bench_measure.h"
+#include "scripts/bench/bench_models.h"
+#include "solver/internal/bellman.h"
+#include "solver/solver.h"
+
+namespace mdp::bench {
+namespace {
+
+std::string EnvOr(const char* name, const char* fallback) {
+  const char* v = std::getenv(name);
+  return v != nullptr && *v != '\0' ? v : fallback;
+}
+
+// Models are built once per structure, on first use, and live until exit.
+const Model& CachedModel(Structure structure) {
+  static std::map<Structure, std::unique_ptr<Model>> models;
+  std::unique_ptr<Model>& slot = models[structure];
+  if (!slot) {
+    ModelShape shape;
+    shape.structure = structure;
+    shape.states = std::atoll(EnvOr("MDP_KERNEL_BENCH_STATES", "100000").c_str());
+    Result<Model> built = BuildModel(GenerateSpec(shape));
+    if (!built.ok()) std::abort();
+    slot = std::make_unique<Model>(std::move(built).value());
+  }
+  return *slot;
+}
+
+enum class Kernel { kSync, kReference, kGaussSeidel, kPolicy, kGreedy };
+
+void RunKernel(benchmark::State& state, Structure structure, Kernel kernel, int threads) {
+  const Model& m = CachedModel(structure);
+  std::vector<double> a(m.num_states(), 0.0), b(m.num_states(), 0.0);
+  std::vector<RowId> rows(m.num_states());
+  for (StateId s = 0; s < m.num_states(); ++s) rows[s] = m.row_begin(s);
+  for (auto _ : state) {
+    double diff = 0.0;
+    switch (kernel) {
+      case Kernel::kSync: diff = internal::SyncSweep(m, a.data(), b.data(), threads); break;
+      case Kernel::kReference: diff = ReferenceSweep(m, a.data(), b.data(), threads); break;
+      case Kernel::kGaussSeidel: diff = internal::GaussSeidelSweep(m, a.data()); break;
+      case Kernel::kPolicy:
+        diff = internal::PolicySweep(m, rows.data(), a.data(), b.data(), threads);
+        break;
+      case Kernel::kGreedy:
+        diff = internal::GreedySweep(m, a.data(), b.data(), rows.data(), threads);
+        break;
+    }
+    benchmark::DoNotOptimize(diff);
+    if (kernel != Kernel::kGaussSeidel) a.swap(b);
+  }
+  // A policy sweep reads one row per state, so SweepBytes() would overstate its rate.
+  if (kernel != Kernel::kPolicy) state.SetBytesProcessed(state.iterations() * SweepBytes(m));
+  state.counters["states"] = m.num_states();
+}
+
+void RegisterAll() {
+  const int all = internal::ThreadCount(0);
+  std::stringstream list(EnvOr("MDP_KERNEL_BENCH_STRUCTURES", "random,local,local_shuffled"));
+  const std::vector<std::pair<const char*, Kernel>> kernels = {
+      {"SyncSweep", Kernel::kSync},   {"ReferenceSweep", Kernel::kReference},
+      {"PolicySweep", Kernel::kPolicy}, {"GreedySweep", Kernel::kGreedy},
+      {"GaussSeidelSweep", Kernel::kGaussSeidel}};
+  for (std::string name; std::getline(list, name, ',');) {
+    const std::optional<Structure> structure = ParseStructure(name);
+    if (!structure) continue;
+    for (const auto& [kernel_name, kernel] : kernels) {
+      for (int threads : {1, all}) {
+        const std::string label = std::string(kernel_name) + "/" + name + "/threads:" +
+                                  std::to_string(threads);
+        benchmark::RegisterBenchmark(label.c_str(), RunKernel, *structure, kernel, threads)
+            ->Unit(benchmark::kMillisecond)
+            ->UseRealTime();
+        // Gauss-Seidel is sequential; one registration is enough.
+        if (kernel == Kernel::kGaussSeidel || threads == all) break;
+      }
+    }
+  }
+}
+
+}  // namespace
+}  // namespace mdp::bench
+
+int main(int argc, char** argv) {
+  benchmark::Initialize(&argc, argv);
+  if (benchmark::ReportUnrecognizedArguments(argc, argv)) return 2;
+  mdp::bench::RegisterAll();
+  benchmark::RunSpecifiedBenchmarks();
+  benchmark::Shutdown();
+  return 0;
+}

@@ -1,0 +1,290 @@
+// solver_bench: measures the solver on seeded models and prints one JSON object per run on
+// standard output (scripts/bench.sh collects them into BENCHMARKS.md).
+//
+//   solver_bench probe [--bytes=1073741824] [--repetitions=5]
+//       STREAM-like read bandwidth with 1 thread and with all threads.
+//   solver_bench model --structure=random|local|local_shuffled|grid|inventory
+//       [--states=100000] [--actions=4] [--outcomes=8] [--seed=1] [--discount=0.99]
+//       [--reach=16] [--sweeps=10] [--min-seconds=0.5]
+//       [--methods=value_iteration,gauss_seidel:1,...]
+//       [--tolerance=1e-6] [--solve-threads=0] [--time-limit=1800]
+//       [--write-arrays=DIR] [--write-json=FILE]
+//       Generates the model, builds it, optionally writes it for the baselines, times sweeps
+//       (solver and reference loop, 1 thread and all threads; at least --sweeps of each and
+//       more until --min-seconds have passed) and solves to a bound with
+//       each method (":N" after a method overrides --solve-threads for it; 0 = all).
+// Flags are --name=value or --name value. Exit status 2 on bad flags, 1 on a failed step.
+#include <algorithm>
+#include <cmath>
+#include <cstdio>
+#include <cstdlib>
+#include <filesystem>
+#include <map>
+#include <optional>
+#include <sstream>
+#include <string>
+#include <vector>
+
+#include "scripts/bench/bench_files.h"
+#include "scripts/bench/bench_json.h"
+#include "scripts/bench/bench_measure.h"
+#include "scripts/bench/bench_models.h"
+#include "solver/internal/bellman.h"
+#include "solver/solver.h"
+
+namespace mdp::bench {
+namespace {
+
+// --name=value / --name value pairs; every flag read must be known.
+class Flags {
+ public:
+  bool Parse(int argc, char** argv, int first) {
+    for (int i = first; i < argc; ++i) {
+      std::string arg = argv[i];
+      if (arg.rfind("--", 0) != 0) return Fail("unexpected argument " + arg);
+      const size_t eq = arg.find('=');
+      if (eq != std::string::npos) {
+        values_[arg.substr(2, eq - 2)] = arg.substr(eq + 1);
+      } else if (i + 1 < argc) {
+        values_[arg.substr(2)] = argv[++i];
+      } else {
+        return Fail("flag " + arg + " needs a value");
+      }
+    }
+    return true;
+  }
+  std::string Get(const std::string& name, const std::string& fallback) {
+    used_[name] = true;
+    auto it = values_.find(name);
+    return it == values_.end() ? fallback : it->second;
+  }
+  double Number(const std::string& name, double fallback) {
+    const std::string text = Get(name, "");
+    if (text.empty()) return fallback;
+    char* end = nullptr;
+    const double v = std::strtod(text.c_str(), &end);
+    if (*end != '\0') Fail("--" + name + " is not a number: " + text);
+    return v;
+  }
+  // True iff every given flag was read and every number parsed.
+  bool AllKnown() {
+    for (const auto& [name, value] : values_) {
+      if (!used_.count(name)) Fail("unknown flag --" + name);
+    }
+    return ok_;
+  }
+
+ private:
+  bool Fail(const std::string& message) {
+    std::fprintf(stderr, "solver_bench: %s\n", message.c_str());
+    ok_ = false;
+    return false;
+  }
+  std::map<std::string, std::string> values_;
+  std::map<std::string, bool> used_;
+  bool ok_ = true;
+};
+
+JsonObject TimingJson(std::string_view kernel, int threads, const Timing& t) {
+  return JsonObject()
+      .Add("kernel", kernel)
+      .Add("threads", threads)
+      .Add("best_seconds", t.best)
+      .Add("median_seconds", t.median)
+      .Add("repetitions", t.repetitions);
+}
+
+int RunProbe(Flags& flags) {
+  const auto bytes = static_cast<int64_t>(flags.Number("bytes", 1 << 30));
+  const int repetitions = static_cast<int>(flags.Number("repetitions", 5));
+  if (!flags.AllKnown()) return 2;
+  BandwidthProbe probe(bytes);
+  std::vector<JsonObject> runs;
+  for (int threads : {1, internal::ThreadCount(0)}) {
+    runs.push_back(TimingJson("sum", threads, probe.Measure(threads, repetitions)));
+    if (threads == internal::ThreadCount(0)) break;
+  }
+  std::printf("%s\n", JsonObject()
+                          .Add("kind", "probe")
+                          .Add("bytes", probe.bytes())
+                          .Add("runs", runs)
+                          .Add("checksum", probe.checksum())
+                          .str()
+                          .c_str());
+  return 0;
+}
+
+std::vector<std::string> SplitCommas(const std::string& list) {
+  std::vector<std::string> items;
+  std::stringstream in(list);
+  for (std::string item; std::getline(in, item, ',');) {
+    if (!item.empty()) items.push_back(item);
+  }
+  return items;
+}
+
+// Solves `m` with each method to the same tolerance; values are compared with the first's.
+std::optional<std::vector<JsonObject>> RunSolves(const Model& m,
+                                                 const std::vector<std::string>& methods,
+                                                 SolveOptions options) {
+  std::vector<JsonObject> solves;
+  std::vector<double> first_values;
+  const int default_threads = options.threads;
+  for (const std::string& item : methods) {
+    // "method" or "method:threads".
+    const size_t colon = item.find(':');
+    const std::string name = item.substr(0, colon);
+    std::optional<Method> method = ParseMethod(name);
+    const int threads =
+        colon == std::string::npos ? default_threads : std::atoi(item.c_str() + colon + 1);
+    if (!method || threads < 0) {
+      std::fprintf(stderr, "solver_bench: bad method %s\n", item.c_str());
+      return std::nullopt;
+    }
+    options.method = *method;
+    options.threads = threads;
+    Stopwatch clock;
+    Result<Solution> solution = Solve(m, options);
+    const double wall = clock.seconds();
+    if (!solution.ok()) {
+      std::fprintf(stderr, "solver_bench: %s\n", solution.status().ToString().c_str());
+      return std::nullopt;
+    }
+    double diff = 0.0;
+    if (first_values.empty()) first_values = solution->values;
+    for (size_t s = 0; s < first_values.size(); ++s) {
+      diff = std::max(diff, std::fabs(solution->values[s] - first_values[s]));
+    }
+    solves.push_back(JsonObject()
+                         .Add("method", name)
+                         .Add("threads", internal::ThreadCount(threads))
+                         .Add("outcome", SolveOutcomeName(solution->outcome))
+                         .Add("iterations", solution->iterations)
+                         .Add("sweeps", solution->sweeps)
+                         .Add("solve_seconds", solution->solve_seconds)
+                         .Add("wall_seconds", wall)
+                         .Add("value_error_bound", solution->value_error_bound)
+                         .Add("max_diff_vs_first", diff)
+                         .Add("peak_rss_bytes", PeakResidentBytes()));
+  }
+  return solves;
+}
+
+// V after `sweeps` synchronous sweeps from 0 on one thread: what the baseline must reproduce.
+std::vector<double> CheckValues(const Model& m, int sweeps) {
+  std::vector<double> v(m.num_states(), 0.0), next(m.num_states(), 0.0);
+  for (int i = 0; i < sweeps; ++i) {
+    (void)internal::SyncSweep(m, v.data(), next.data(), 1);
+    v.swap(next);
+  }
+  return v;
+}
+
+// Sweep timings of the solver's kernel and the reference loop, 1 thread and all threads.
+std::vector<JsonObject> TimeAllSweeps(const Model& m, int sweeps, double min_seconds) {
+  std::vector<JsonObject> timings;
+  const int all_threads = internal::ThreadCount(0);
+  for (int threads : {1, all_threads}) {
+    if (sweeps <= 0) break;
+    for (SweepKernel kernel : {SweepKernel::kProject, SweepKernel::kReference}) {
+      timings.push_back(TimingJson(kernel == SweepKernel::kProject ? "project" : "reference",
+                                   threads, TimeSweeps(m, kernel, threads, sweeps, min_seconds)));
+    }
+    if (threads == all_threads) break;
+  }
+  return timings;
+}
+
+int RunModel(Flags& flags) {
+  ModelShape shape;
+  const std::optional<Structure> structure = ParseStructure(flags.Get("structure", "random"));
+  shape.states = static_cast<int64_t>(flags.Number("states", 100000));
+  shape.actions = static_cast<int>(flags.Number("actions", 4));
+  shape.outcomes = static_cast<int>(flags.Number("outcomes", 8));
+  shape.seed = static_cast<uint64_t>(flags.Number("seed", 1));
+  shape.discount = flags.Number("discount", 0.99);
+  shape.reach = static_cast<int64_t>(flags.Number("reach", 16));
+  const int sweeps = static_cast<int>(flags.Number("sweeps", 10));
+  const double min_seconds = flags.Number("min-seconds", 0.5);
+  const std::vector<std::string> methods = SplitCommas(flags.Get("methods", ""));
+  SolveOptions options;
+  options.tolerance = flags.Number("tolerance", 1e-6);
+  options.threads = static_cast<int>(flags.Number("solve-threads", 0));
+  options.time_limit_seconds = flags.Number("time-limit", 1800);
+  const std::string arrays_dir = flags.Get("write-arrays", "");
+  const std::string json_path = flags.Get("write-json", "");
+  if (!flags.AllKnown()) return 2;
+  if (!structure || shape.states < 1 || shape.actions < 1 || shape.outcomes < 1 ||
+      (*structure == Structure::kGrid && (shape.actions > 8 || shape.outcomes > 8))) {
+    std::fprintf(stderr, "solver_bench: bad --structure or size (grid: at most 8 and 8)\n");
+    return 2;
+  }
+  shape.structure = *structure;
+
+  JsonObject report;
+  report.Add("kind", "model").Add("structure", StructureName(shape.structure));
+  report.Add("states", shape.states).Add("actions", shape.actions);
+  report.Add("outcomes", shape.outcomes).Add("seed", static_cast<int64_t>(shape.seed));
+  report.Add("discount", shape.discount).Add("reach", shape.reach);
+
+  Stopwatch generate_clock;
+  ModelSpec spec = GenerateSpec(shape);
+  report.Add("generate_seconds", generate_clock.seconds());
+  if (!json_path.empty()) {
+    Stopwatch write_clock;
+    const Status written = WriteModelDocument(spec, DocumentEncoding::kObjects, json_path);
+    if (!written.ok()) {
+      std::fprintf(stderr, "solver_bench: %s\n", written.ToString().c_str());
+      return 1;
+    }
+    report.Add("json_path", json_path).Add("json_write_seconds", write_clock.seconds());
+    report.Add("json_bytes", static_cast<int64_t>(std::filesystem::file_size(json_path)));
+  }
+  Stopwatch build_clock;
+  Result<Model> built = BuildModel(spec);
+  report.Add("build_seconds", build_clock.seconds());
+  spec = ModelSpec();  // Free the authored form: the solver only needs the Model.
+  if (!built.ok()) {
+    std::fprintf(stderr, "solver_bench: %s\n", built.status().ToString().c_str());
+    return 1;
+  }
+  const Model& m = *built;
+  report.Add("peak_rss_after_build_bytes", PeakResidentBytes());
+  report.Add("rss_model_only_bytes", ResidentBytes());
+  report.Add("rows", m.num_rows()).Add("entries", m.num_entries());
+  report.Add("array_bytes", ModelArrayBytes(m)).Add("model_bytes", m.ByteSize());
+  report.Add("sweep_bytes", SweepBytes(m));
+
+  if (!arrays_dir.empty()) {
+    constexpr int kCheckSweeps = 3;
+    const Status written = WriteModelArrays(m, CheckValues(m, kCheckSweeps), kCheckSweeps,
+                                            arrays_dir);
+    if (!written.ok()) {
+      std::fprintf(stderr, "solver_bench: %s\n", written.ToString().c_str());
+      return 1;
+    }
+  }
+  report.Add("threads_all", internal::ThreadCount(0));
+  report.Add("sweeps", TimeAllSweeps(m, sweeps, min_seconds));
+  std::optional<std::vector<JsonObject>> solves = RunSolves(m, methods, options);
+  if (!solves) return 1;
+  report.Add("tolerance", options.tolerance).Add("solve_threads", options.threads);
+  report.Add("solves", *solves);
+  report.Add("peak_rss_bytes", PeakResidentBytes());
+  std::printf("%s\n", report.str().c_str());
+  return 0;
+}
+
+}  // namespace
+}  // namespace mdp::bench
+
+int main(int argc, char** argv) {
+  const std::string command = argc > 1 ? argv[1] : "";
+  mdp::bench::Flags flags;
+  if (command != "probe" && command != "model") {
+    std::fprintf(stderr, "usage: solver_bench probe|model [--flag=value ...] (see the source)\n");
+    return 2;
+  }
+  if (!flags.Parse(argc, argv, 2)) return 2;
+  return command == "probe" ? mdp::bench::RunProbe(flags) : mdp::bench::RunModel(flags);
+}

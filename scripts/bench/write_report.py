@@ -1,0 +1,492 @@
+#!/usr/bin/python3
+"""Writes BENCHMARKS.md from the results scripts/bench.sh collected in one run directory.
+
+Every number and every target verdict in the report is computed here from those results;
+nothing is typed in by hand. Inputs in WORK (all written by scripts/bench.sh):
+  probe-STRUCTURE.json    solver_bench probe, run just before that model's sweeps
+  model-STRUCTURE.json    solver_bench model (sweeps; solves for the solve structure)
+  numpy-STRUCTURE.json    baseline_sweep.py on the same model
+  ingest-ENCODING.json    ingest_bench.py
+  kernels.json            kernel_bench --benchmark_format=json
+  queries.txt             scripts/bench_queries.sh output
+  load.txt                "LABEL LOAD1 LOAD5 LOAD15" lines sampled during the run
+  commands.txt            the commands run, one per line
+
+    /usr/bin/python3 scripts/bench/write_report.py --work WORK --out BENCHMARKS.md \
+        --mode quick|full --started EPOCH_SECONDS --finished EPOCH_SECONDS
+"""
+import argparse
+import datetime
+import glob
+import json
+import os
+import platform
+import re
+import statistics
+import subprocess
+
+ISSUE_SIZE = (1_000_000, 4, 8)  # states, actions, outcomes of the issue's targets.
+TARGET_SWEEP_SPEEDUP = 4.0      # Random model: numpy seconds / solver seconds.
+TARGET_PROBE_FRACTION = 0.6     # Local model: effective GB/s / probe GB/s.
+TARGET_SOLVE_SPEEDUP = 3.0      # Plain Jacobi VI seconds / best method seconds.
+TARGET_QUERY_RATIO = 0.6        # mdpserve req/s / nginx req/s.
+TARGET_P99_MS = 2.0
+STRUCTURE_ORDER = ["random", "local", "local_shuffled", "grid", "inventory"]
+
+
+def load_json(path):
+    with open(path) as f:
+        return json.loads(f.read().strip().splitlines()[-1])
+
+
+def gb(bytes_):
+    return bytes_ / 1e9
+
+
+def mib(bytes_):
+    return f"{bytes_ / 2**20:,.0f}"
+
+
+def secs(x):
+    if x is None:
+        return "–"
+    return f"{x * 1e3:.2f} ms" if x < 1 else f"{x:.2f} s"
+
+
+def verdict(ok, at_issue_size=True):
+    word = "**met**" if ok else "**missed**"
+    return word if at_issue_size else word + " (at this run's size, not the issue's)"
+
+
+def sweep(model, kernel, threads):
+    for t in model.get("sweeps", []):
+        if t["kernel"] == kernel and t["threads"] == threads:
+            return t
+    return None
+
+
+def at_issue_size(model):
+    return (model["states"], model["actions"], model["outcomes"]) == ISSUE_SIZE
+
+
+class Run:
+    """Everything one bench.sh run produced."""
+
+    def __init__(self, work):
+        self.work = work
+        self.models, self.numpy, self.probes = {}, {}, {}
+        for path in glob.glob(os.path.join(work, "model-*.json")):
+            m = load_json(path)
+            self.models[m["structure"]] = m
+        for name in self.models:
+            for kind, into in (("numpy", self.numpy), ("probe", self.probes)):
+                path = os.path.join(work, f"{kind}-{name}.json")
+                if os.path.exists(path):
+                    into[name] = load_json(path)
+        paths = sorted(glob.glob(os.path.join(work, "ingest-*.json")))
+        self.ingest = [i for i in map(load_json, paths) if i.get("kind") == "ingest"]
+        kernels = os.path.join(work, "kernels.json")
+        self.kernels = json.load(open(kernels)) if os.path.exists(kernels) else None
+        queries = os.path.join(work, "queries.txt")
+        self.queries_text = open(queries).read() if os.path.exists(queries) else ""
+        self.load = [line.split() for line in open(os.path.join(work, "load.txt"))]
+        self.commands = [line.rstrip("\n") for line in open(os.path.join(work, "commands.txt"))]
+
+    def structures(self):
+        return [s for s in STRUCTURE_ORDER if s in self.models]
+
+    def probe_gbps(self, structure, threads):
+        """Best probe rate measured just before `structure`'s sweeps."""
+        probe = self.probes[structure]
+        for r in probe["runs"]:
+            if r["threads"] == threads:
+                return gb(probe["bytes"]) / r["best_seconds"]
+        return None
+
+    def thread_counts(self, model):
+        return sorted({t["threads"] for t in model.get("sweeps", [])})
+
+
+# --- Sections ---------------------------------------------------------------------------
+
+def machine_section(run, mode, started, finished):
+    lscpu = subprocess.run(["lscpu"], capture_output=True, text=True).stdout
+    field = lambda name: next((l.split(":", 1)[1].strip() for l in lscpu.splitlines()
+                               if l.startswith(name + ":")), "?")
+    mem = next(l.split()[1] for l in open("/proc/meminfo") if l.startswith("MemTotal"))
+    caches = ", ".join(f"{n} {field(n + ' cache')}" for n in ("L1d", "L2", "L3")
+                       if field(n + " cache") != "?")
+    loads = [float(l[1]) for l in run.load]
+    first, last = run.load[0], run.load[-1]
+    start = datetime.datetime.fromtimestamp(started, datetime.timezone.utc)
+    minutes = (finished - started) / 60
+    loaded = max(loads) > 0.5
+    lines = [
+        f"- Date: {start.strftime('%Y-%m-%d %H:%M UTC')} ({mode} run, {minutes:.1f} min"
+        " including the build)",
+        f"- CPU: {field('Model name')}, {os.cpu_count()} logical CPUs "
+        f"({field('Core(s) per socket')} cores per socket, {field('Thread(s) per core')} "
+        f"thread(s) per core); {caches}",
+        f"- Memory: {int(mem) / 2**20:.1f} GiB; kernel {platform.system()} {platform.release()}",
+        f"- Load average (1 min) before/after: {first[1]} / {last[1]}; highest sampled "
+        f"during the run: {max(loads):.2f} (samples: "
+        + ", ".join(f"{l[0]} {l[1]}" for l in run.load) + ")",
+    ]
+    if loaded:
+        lines.append("- **Measured under load**: other processes (other engineers' builds) "
+                     "shared the CPUs during this run, so absolute times are noisy, and threaded "
+                     "runs suffer most (a thread that loses its core stalls a static schedule). "
+                     "Ratios are taken between runs made side by side, minutes apart.")
+    return "\n".join(lines)
+
+
+def fastest_vi(solves):
+    """The fastest plain (Jacobi) value-iteration run of any thread count: the reference."""
+    vi = [s for s in solves if s["method"] == "value_iteration"]
+    return min(vi, key=lambda s: s["solve_seconds"]) if vi else None
+
+
+def targets_section(run, solve_structure):
+    rows = []
+    # 1. Random model sweep vs numpy.
+    m, n = run.models.get("random"), run.numpy.get("random")
+    if m and n and "sweep" in n:
+        best = min(run.thread_counts(m), key=lambda t: sweep(m, "project", t)["best_seconds"])
+        ours = sweep(m, "project", best)["best_seconds"]
+        ratio = n["sweep"]["best_seconds"] / ours
+        rows.append(("Sweep, random model: >= 4x faster than numpy/scipy",
+                     f"{ratio:.2f}x ({secs(n['sweep']['best_seconds'])} numpy vs "
+                     f"{secs(ours)} solver, {best} thread(s), {m['states']:,} states)",
+                     verdict(ratio >= TARGET_SWEEP_SPEEDUP, at_issue_size(m))))
+    else:
+        rows.append(("Sweep, random model: >= 4x faster than numpy/scipy", "not measured",
+                     "not measured"))
+    # 2. Local model: fraction of the probe.
+    m = run.models.get("local")
+    if m:
+        fractions = []
+        for t in run.thread_counts(m):
+            gbps = gb(m["sweep_bytes"]) / sweep(m, "project", t)["best_seconds"]
+            fractions.append((gbps / run.probe_gbps("local", t), gbps, t))
+        frac, gbps, t = max(fractions)
+        rows.append(("Sweep, local model: >= 60 % of the probe's read bandwidth",
+                     f"{frac:.0%} ({gbps:.1f} GB/s vs probe {run.probe_gbps('local', t):.1f} "
+                     "GB/s, "
+                     f"{t} thread(s), {m['states']:,} states)",
+                     verdict(frac >= TARGET_PROBE_FRACTION, at_issue_size(m))))
+    else:
+        rows.append(("Sweep, local model: >= 60 % of the probe's read bandwidth",
+                     "not measured", "not measured"))
+    # 3. Best method vs plain Jacobi VI.
+    m = run.models.get(solve_structure)
+    solves = m.get("solves", []) if m else []
+    vi = fastest_vi(solves)
+    others = [s for s in solves if s["method"] != "value_iteration" and s["outcome"] == "converged"]
+    title = ("Solve to a 1e-6 bound at gamma 0.99: best method >= 3x faster than plain "
+             "Jacobi VI")
+    if vi and others:
+        best = min(others, key=lambda s: s["solve_seconds"])
+        ratio = vi["solve_seconds"] / best["solve_seconds"]
+        rows.append((title,
+                     f"{ratio:.2f}x (best other method: {best['method']}, {best['threads']} "
+                     f"thread(s), {secs(best['solve_seconds'])}; fastest value_iteration: "
+                     f"{vi['threads']} thread(s), {secs(vi['solve_seconds'])}; "
+                     f"{solve_structure} model, {m['states']:,} states)",
+                     verdict(ratio >= TARGET_SOLVE_SPEEDUP and vi["outcome"] == "converged",
+                             at_issue_size(m))))
+    else:
+        rows.append((title, "not measured", "not measured"))
+    # 4. Queries.
+    q = parse_queries(run.queries_text)
+    if q["pairs"]:
+        ratio = statistics.median(r for _, _, r in q["pairs"])
+        p99 = max(m_row["p99_ms"] for _, m_row, _ in q["pairs"])
+        errors = sum(m_row["errors"] for _, m_row, _ in q["pairs"])
+        ok = ratio >= TARGET_QUERY_RATIO and p99 < TARGET_P99_MS and errors == 0
+        rows.append(("Best-action queries: >= 0.6x nginx's requests/s, p99 < 2 ms",
+                     f"{ratio:.2f}x nginx (median of {len(q['pairs'])} round(s)), worst p99 "
+                     f"{p99:.2f} ms, {errors} errors", verdict(ok)))
+    else:
+        rows.append(("Best-action queries: >= 0.6x nginx's requests/s, p99 < 2 ms",
+                     "not measured", "not measured"))
+    out = ["| Target (issue 5) | Measured in this run | Verdict |", "|---|---|---|"]
+    out += [f"| {a} | {b} | {c} |" for a, b, c in rows]
+    return "\n".join(out)
+
+
+def probe_section(run):
+    out = ["| Measured before | Threads | Best | Median | GB/s (best) |",
+           "|---|---:|---:|---:|---:|"]
+    for name in run.structures():
+        probe = run.probes.get(name)
+        for r in probe["runs"] if probe else []:
+            out.append(f"| {name} | {r['threads']} | {secs(r['best_seconds'])} "
+                       f"| {secs(r['median_seconds'])} "
+                       f"| {gb(probe['bytes']) / r['best_seconds']:.1f} |")
+    return "\n".join(out)
+
+
+def sweeps_section(run):
+    out = ["| Model | States | Entries | Solver 1 thr | Solver all thr | Reference loop 1 / all "
+           "| numpy/scipy | numpy / solver 1 thr | numpy / solver all thr | check |",
+           "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+    for name in run.structures():
+        m, n = run.models[name], run.numpy.get(name, {})
+        if not m.get("sweeps"):
+            continue
+        all_t = m["threads_all"]
+        one, many = sweep(m, "project", 1), sweep(m, "project", all_t)
+        r1 = sweep(m, "reference", 1)["best_seconds"]
+        rn = sweep(m, "reference", all_t)["best_seconds"]
+        ns = n.get("sweep", {})
+        ratio = lambda x: f"{ns['best_seconds'] / x['best_seconds']:.2f}x" if ns else "–"
+        both = lambda t: f"{secs(t['best_seconds'])} ({secs(t['median_seconds'])})" if t else "–"
+        check = f"{n['check_max_diff']:.0e}" if "check_max_diff" in n else "–"
+        out.append(f"| {name} | {m['states']:,} | {m['entries']:,} | {both(one)} | {both(many)} "
+                   f"| {secs(r1)} / {secs(rn)} | {both(ns)} | {ratio(one)} | {ratio(many)} "
+                   f"| {check} |")
+    return "\n".join(out)
+
+
+def bandwidth_section(run):
+    threads = sorted({t for m in run.models.values() for t in run.thread_counts(m)})
+    head = "| Model | MB read per sweep | " + " | ".join(
+        f"GB/s {t} thr | of probe {t} thr" for t in threads) + " | numpy GB/s |"
+    out = [head, "|---|---:|" + "---:|---:|" * len(threads) + "---:|"]
+    for name in run.structures():
+        m, n = run.models[name], run.numpy.get(name, {})
+        if not m.get("sweeps"):
+            continue
+        cells = []
+        for t in threads:
+            g = gb(m["sweep_bytes"]) / sweep(m, "project", t)["best_seconds"]
+            cells.append(f"{g:.1f} | {g / run.probe_gbps(name, t):.0%}")
+        ns = n.get("sweep", {}).get("best_seconds")
+        numpy_gbps = f"{gb(m['sweep_bytes']) / ns:.1f}" if ns else "–"
+        out.append(f"| {name} | {m['sweep_bytes'] / 1e6:,.0f} | " + " | ".join(cells)
+                   + f" | {numpy_gbps} |")
+    return "\n".join(out)
+
+
+def solves_section(run, solve_structure):
+    m = run.models.get(solve_structure)
+    if not m or not m.get("solves"):
+        return "Not measured in this run."
+    vi = fastest_vi(m["solves"])
+    out = [f"Model: {solve_structure}, {m['states']:,} states x {m['actions']} actions x "
+           f"{m['outcomes']} outcomes, discount {m['discount']}, tolerance {m['tolerance']:g} "
+           "on the value error bound. Gauss-Seidel sweeps are sequential whatever the thread "
+           "count; *max |V - V_first|* compares each method's values with the first row's; "
+           "the reference for the ratios is the fastest value_iteration row.", "",
+           "| Method | Threads | Outcome | Iterations | Sweeps | Time | Fastest VI / this "
+           "| Bound reached | max \\|V - V_first\\| |",
+           "|---|---:|---|---:|---:|---:|---:|---:|---:|"]
+    for s in m["solves"]:
+        ratio = f"{vi['solve_seconds'] / s['solve_seconds']:.2f}x" if vi else "–"
+        out.append(f"| {s['method']} | {s['threads']} | {s['outcome']} | {s['iterations']:,} "
+                   f"| {s['sweeps']:,} | {secs(s['solve_seconds'])} | {ratio} "
+                   f"| {s['value_error_bound']:.1e} | {s['max_diff_vs_first']:.1e} |")
+    n = run.numpy.get(solve_structure, {}).get("solve")
+    if n:
+        ratio = f"{vi['solve_seconds'] / n['solve_seconds']:.2f}x" if vi else "–"
+        out.append(f"| numpy/scipy value iteration | 1 | {n['outcome']} | {n['sweeps']:,} "
+                   f"| {n['sweeps']:,} | {secs(n['solve_seconds'])} | {ratio} "
+                   f"| {n['value_error_bound']:.1e} | – |")
+    return "\n".join(out)
+
+
+def memory_section(run):
+    out = ["| Model | Generate | BuildModel | Array MB | Model::ByteSize MB | RSS, model only "
+           "MB | Peak RSS after build MB | Peak RSS MB (whole run) | numpy load "
+           "| numpy peak RSS MB |",
+           "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+    for name in run.structures():
+        m, n = run.models[name], run.numpy.get(name, {})
+        out.append(f"| {name} | {secs(m['generate_seconds'])} | {secs(m['build_seconds'])} "
+                   f"| {mib(m['array_bytes'])} | {mib(m['model_bytes'])} "
+                   f"| {mib(m['rss_model_only_bytes'])} "
+                   f"| {mib(m['peak_rss_after_build_bytes'])} | {mib(m['peak_rss_bytes'])} "
+                   f"| {secs(n.get('load_seconds'))} "
+                   f"| {mib(n['peak_rss_bytes']) if n else '–'} |")
+    return "\n".join(out)
+
+
+def ingest_section(run):
+    out = ["| Encoding | Document MB | mdpserve validate | json.load | validate / json.load "
+           "| validate peak RSS MB | json.load peak RSS MB |",
+           "|---|---:|---:|---:|---:|---:|---:|"]
+    for i in run.ingest:
+        out.append(f"| {i['encoding']} | {i['bytes'] / 1e6:,.0f} | {secs(i['validate_seconds'])} "
+                   f"| {secs(i['json_load_seconds'])} "
+                   f"| {i['validate_seconds'] / i['json_load_seconds']:.2f} "
+                   f"| {mib(i['validate_peak_rss_bytes'])} "
+                   f"| {mib(i['json_load_peak_rss_bytes'])} |")
+    if not any(i["encoding"] == "compact" for i in run.ingest):
+        out.append("| compact | – | not measured: no compact encoding exists yet "
+                   "| – | – | – | – |")
+    return "\n".join(out)
+
+
+def parse_queries(text):
+    """Pairs (nginx row, mdpserve row, ratio) from bench_queries.sh's results table."""
+    rows = []
+    for line in text.splitlines():
+        f = line.split()
+        if len(f) >= 13 and f[0] in ("nginx", "mdpserve") and re.match(r"^\d+$", f[3]):
+            rows.append({"server": f[0], "http_threads": f[1], "rps": int(f[3]),
+                         "p50_ms": float(f[4]), "p99_ms": float(f[5]),
+                         "errors": int(f[6]) + int(f[7]) + int(f[8]), "cpu_us": float(f[11]),
+                         "ratio": None if f[12] == "-" else float(f[12])})
+    pairs = [(a, b, b["ratio"]) for a, b in zip(rows, rows[1:])
+             if a["server"] == "nginx" and b["server"] == "mdpserve"]
+    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    header = {k: v.replace(root + "/", "")
+              for k, v in re.findall(r"^(model|answer|load):\s+(.*)$", text, re.M)}
+    return {"pairs": pairs, "header": header}
+
+
+def queries_section(run):
+    q = parse_queries(run.queries_text)
+    if not q["pairs"]:
+        return "Not measured in this run (see the bench_queries.sh output in the run directory)."
+    out = [f"Query load: {q['header'].get('load', '?')}; model {q['header'].get('model', '?')}; "
+           f"answer {q['header'].get('answer', '?')}.", "",
+           "| Round | nginx req/s | nginx p99 | mdpserve req/s | mdpserve p50 | mdpserve p99 "
+           "| mdpserve / nginx | errors | server CPU us/req (nginx / mdpserve) |",
+           "|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+    for i, (a, b, ratio) in enumerate(q["pairs"], 1):
+        out.append(f"| {i} | {a['rps']:,} | {a['p99_ms']:.2f} ms | {b['rps']:,} "
+                   f"| {b['p50_ms']:.2f} ms | {b['p99_ms']:.2f} ms | {ratio:.2f}x | {b['errors']} "
+                   f"| {a['cpu_us']:.1f} / {b['cpu_us']:.1f} |")
+    return "\n".join(out)
+
+
+def kernels_section(run):
+    if not run.kernels:
+        return "Not measured in this run."
+    out = ["| Benchmark | Time per sweep | GB/s |", "|---|---:|---:|"]
+    for b in run.kernels["benchmarks"]:
+        rate = b.get("bytes_per_second")
+        out.append(f"| {b['name'].replace('/real_time', '')} | {b['real_time']:.2f} ms "
+                   f"| {rate / 1e9:.1f} |" if rate else
+                   f"| {b['name'].replace('/real_time', '')} | {b['real_time']:.2f} ms | – |")
+    return "\n".join(out)
+
+
+def report(run, mode, started, finished, solve_structure):
+    any_model = next(iter(run.models.values()))
+    parts = [
+        "# BENCHMARKS",
+        "",
+        "Generated by `scripts/bench.sh" + (" --quick" if mode == "quick" else "") + "` "
+        "(issue 5); do not edit by hand: run the script again. Every ratio compares runs made "
+        "side by side in the same run on the same machine, and every verdict below is computed "
+        "by `scripts/bench/write_report.py` from the numbers in the tables.",
+        "",
+        "## Machine and run",
+        machine_section(run, mode, started, finished),
+        "",
+        f"Models: seeded (seed {any_model['seed']}), {any_model['actions']} actions x "
+        f"{any_model['outcomes']} outcomes per state, discount {any_model['discount']}; "
+        "`random` draws next states uniformly, `local` within +-"
+        f"{any_model['reach']} of the state on a ring, `local_shuffled` is `local` with its "
+        "states renumbered at random (same model, no locality), `grid` is a square grid with "
+        "slip, `inventory` a stock level with order quantities and random demand "
+        "(scripts/bench/bench_models.h).",
+        "",
+        "## Targets",
+        targets_section(run, solve_structure),
+        "",
+        "## Read-bandwidth probe",
+        "A STREAM-like sum over a 1 GiB array (`solver_bench probe`), best of 5, measured "
+        "just before each model's sweeps so that both see the same load.",
+        "",
+        probe_section(run),
+        "",
+        "## Seconds per value-iteration sweep",
+        "Best (median) of the timed sweeps of V <- T V (after two untimed ones; at least "
+        "the number in the commands below, more until 0.5 s had passed); ratios use the best. "
+        "*Solver* is "
+        "`mdp::internal::SyncSweep`, the solver's own kernel; *reference loop* is a plain "
+        "loop over the same arrays in the benchmark (for scale, not shipped); *numpy/scipy* "
+        "is `Q = r + g * (P @ V)` then `np.maximum.reduceat` on the very same arrays "
+        "(`baseline_sweep.py`). *check* is the largest difference between numpy's values and "
+        "the solver's after the same three sweeps.",
+        "",
+        sweeps_section(run),
+        "",
+        "## Effective bandwidth",
+        "Bytes a sweep must read if each array element is read once (state_row_begin, "
+        "row_reward, row_entry_begin, entry_next, entry_probability, and V) divided by the "
+        "best sweep time, and that rate as a fraction of the probe at the same thread count. "
+        "Random next states read whole cache lines of V for 8 useful bytes, so they cannot "
+        "reach the probe's rate; models that fit in the last-level cache can exceed it.",
+        "",
+        bandwidth_section(run),
+        "",
+        "## Time to the same error bound",
+        "`Solve()` with each method to the same bound (value_error_bound <= tolerance); "
+        "*Time* is the solver's solve_seconds. numpy/scipy value iteration stops when "
+        "g e / (1 - g) <= tolerance (the solver's own value-iteration rule, before its final "
+        "check backups).",
+        "",
+        solves_section(run, solve_structure),
+        "",
+        "## Memory and model build",
+        "*Generate* is the benchmark's own generator (not the solver); *BuildModel* is "
+        "validation plus compilation into the CSR Model. *Array MB* counts the Model's numeric "
+        "arrays; *RSS, model only* is the process's resident memory once the authored "
+        "ModelSpec is freed (the Model, names included, plus the runtime). Peak RSS is the "
+        "driver process's VmHWM: after build it includes ModelSpec and Model together; the "
+        "whole run adds the sweeps' and solves' vectors.",
+        "",
+        memory_section(run),
+        "",
+        "## Model ingest",
+        "`mdpserve validate DOC` (read, parse, validate, compile; whole process) against "
+        "Python's `json.load` of the same file (inside its process), best of the repetitions "
+        "(`ingest_bench.py`). Below 1 means mdpserve is faster. The compact encoding row is "
+        "the hook for issue 5's compact document.",
+        "",
+        ingest_section(run),
+        "",
+        "## Best-action queries against nginx",
+        "`scripts/bench_queries.sh`: wrk against mdpserve's policy endpoint and against nginx "
+        "serving the same answer as a static file, alternating; errors = non-2xx + socket "
+        "errors + stalled connections.",
+        "",
+        queries_section(run),
+        "",
+        "## Kernel micro-benchmarks (Google Benchmark)",
+        "`kernel_bench`: the Bellman kernels of `solver/internal/bellman.h`; GB/s counts the "
+        "same bytes as above.",
+        "",
+        kernels_section(run),
+        "",
+        "## Commands",
+        "```",
+        *run.commands,
+        "```",
+        "",
+    ]
+    return "\n".join(parts)
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--work", required=True)
+    ap.add_argument("--out", required=True)
+    ap.add_argument("--mode", choices=["quick", "full"], required=True)
+    ap.add_argument("--started", type=float, required=True, help="epoch seconds")
+    ap.add_argument("--finished", type=float, required=True, help="epoch seconds")
+    ap.add_argument("--solve-structure", default="local")
+    args = ap.parse_args()
+    text = report(Run(args.work), args.mode, args.started, args.finished, args.solve_structure)
+    tmp = args.out + ".tmp"
+    with open(tmp, "w") as f:
+        f.write(text)
+    os.replace(tmp, args.out)
+
+
+if __name__ == "__main__":
+    main()
