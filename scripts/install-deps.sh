@@ -8,6 +8,7 @@ packages=(
   nlohmann-json3-dev libeigen3-dev libspdlog-dev libfmt-dev
   libgtest-dev libgmock-dev googletest libbenchmark-dev
   libcpp-httplib-dev libcli11-dev libsqlite3-dev libssl-dev zlib1g-dev libbrotli-dev
+  libsimdjson-dev
   wrk nginx-light curl
   python3 python3-scipy python3-numpy python3-jsonschema
 )

@@ -1,6 +1,7 @@
 #include "server/file_io.h"
 
 #include <fcntl.h>
+#include <sys/stat.h>
 #include <unistd.h>
 
 #include <cerrno>
@@ -21,6 +22,12 @@ Result<std::string> ReadWholeFile(const std::string& path) {
   const int fd = ::open(path.c_str(), O_RDONLY | O_CLOEXEC);
   if (fd < 0) return InvalidArgumentError("cannot open " + path + ": " + std::strerror(errno));
   std::string data;
+  // A regular file's size is known: one allocation instead of doubling through 64 KiB
+  // appends (measured 1.6-2.0 s -> 0.55 s on a 1.16 GB document).
+  struct stat st;
+  if (::fstat(fd, &st) == 0 && S_ISREG(st.st_mode) && st.st_size > 0) {
+    data.reserve(static_cast<size_t>(st.st_size));
+  }
   char chunk[1 << 16];
   for (;;) {
     const ssize_t n = ::read(fd, chunk, sizeof chunk);

@@ -9,6 +9,7 @@
 #include <unordered_set>
 #include <utility>
 
+#include "server/model_arrays_codec.h"
 #include "solver/validate.h"
 
 namespace mdp::server {
@@ -590,11 +591,14 @@ bool RepeatsDecoderError(const ModelSpec& spec, const Finding& f,
 }  // namespace
 
 SpecDecodeResult DecodeModelSpec(std::string_view text, const DecodeLimits& limits) {
+  if (IsArraysModelDocument(text)) return DecodeArraysModelSpec(text, limits);
   Decoder decoder(limits);
   return DecodeSpecWith(text, limits, decoder);
 }
 
 ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits) {
+  // The compact encoding (api-schema/model-arrays.schema.json) is told by its `format`.
+  if (IsArraysModelDocument(text)) return DecodeArraysModel(text, limits);
   ModelDecodeResult out;
   if (text.find_first_not_of(" \t\r\n") == std::string_view::npos) {
     out.errors.push_back({"", "the document is empty"});
