@@ -61,7 +61,7 @@ class Reader {
     const size_t bytes = static_cast<size_t>(count) * sizeof(T);
     if (count < 0 || in_.size() < bytes) return false;
     values->resize(static_cast<size_t>(count));
-    std::memcpy(values->data(), in_.data(), bytes);
+    if (bytes > 0) std::memcpy(values->data(), in_.data(), bytes);  // data() may be null at 0.
     in_.remove_prefix(bytes);
     return true;
   }
