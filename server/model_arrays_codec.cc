@@ -281,25 +281,6 @@ std::string Quoted(std::string_view token) {
   return "'" + std::string(token.substr(0, 40)) + (token.size() > 40 ? "...'" : "'");
 }
 
-// Number of Unicode code points in UTF-8 text.
-size_t CodePoints(std::string_view s) {
-  return static_cast<size_t>(std::count_if(
-      s.begin(), s.end(), [](char c) { return (static_cast<unsigned char>(c) & 0xC0) != 0x80; }));
-}
-
-// True iff `s` holds a C0 or C1 control character (U+0000..U+001F, U+007F..U+009F).
-bool HasControlCharacter(std::string_view s) {
-  for (size_t i = 0; i < s.size(); ++i) {
-    const auto c = static_cast<unsigned char>(s[i]);
-    if (c < 0x20 || c == 0x7f) return true;
-    if (c == 0xC2 && i + 1 < s.size()) {
-      const auto next = static_cast<unsigned char>(s[i + 1]);
-      if (next >= 0x80 && next <= 0x9F) return true;
-    }
-  }
-  return false;
-}
-
 // ---------------------------------------------------------------------------------------------
 // The decoder: reads every member with simdjson, then checks how the arrays fit together and
 // fills the ModelSpec. Header members are decoded by the object decoder's own rules.

@@ -43,6 +43,11 @@ struct ModelDecodeResult {
   bool ok() const { return model.has_value(); }
 };
 
+// The name rules both encodings share: the number of Unicode code points in UTF-8 text, and
+// whether it holds a C0 or C1 control character (U+0000..U+001F, U+007F..U+009F).
+size_t CodePoints(std::string_view s);
+bool HasControlCharacter(std::string_view s);
+
 // Decodes, validates and compiles.
 ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits = {});
 
