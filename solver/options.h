@@ -32,7 +32,8 @@ enum class Method {
 enum class LinearSolver {
   kAuto,      // kDirect up to EvaluateOptions::direct_max_states states, else kBiCgStab.
   kDirect,    // Sparse LU (Eigen SparseLU).
-  kBiCgStab,  // Krylov iteration (Eigen BiCGSTAB, diagonal preconditioner) + refinement.
+  kBiCgStab,  // Krylov iteration (BiCGSTAB) + refinement; in discounted policy iteration an
+              // inexact, warm-started one (policy_iteration.h).
   kSweeps,    // Repeated application of the policy's Bellman operator (a contraction).
 };
 

@@ -2,10 +2,12 @@
 
 #include <algorithm>
 #include <cmath>
+#include <functional>
 #include <vector>
 
 #include "solver/evaluate.h"
 #include "solver/internal/bellman.h"
+#include "solver/internal/policy_matrix.h"
 #include "solver/internal/run_control.h"
 #include "solver/policy.h"
 
@@ -36,10 +38,74 @@ std::vector<double> MonotoneStart(const Model& m) {
   return v;
 }
 
+// States from which policy iteration evaluates iteratively (below: sparse LU, exactly).
+constexpr StateId kDirectMaxStates = 3000;
+
+// Tolerance of each evaluation relative to the Bellman residual of the values it starts
+// from; tightened when an improvement fails to shrink the residual enough.
+constexpr double kEvaluationShare = 0.02;
+
+// Policy iteration with inexact evaluation (the inexact Newton view of policy iteration,
+// common practice): after each greedy improvement with Bellman residual e, the new policy's
+// values are solved only until their own residual is below kEvaluationShare * e, warm
+// started from T v. The iteration stops on the Bellman residual, like value iteration, and
+// Finalize() restates the bound from one exact backup; no step relies on an evaluation being
+// exact. Each evaluation works on the policy's own rows copied out (PolicyMatrix).
+Solution InexactPolicyIteration(const Model& m, const SolveOptions& options,
+                                const ProgressFn* progress, const CancelToken* cancel) {
+  internal::RunControl control(options, progress, cancel);
+  const int threads = internal::ThreadCount(options.threads);
+  const double g = m.discount();
+  const double target = internal::ResidualTarget(g, options.tolerance);
+  Solution solution;
+  solution.method = Method::kPolicyIteration;
+  solution.options = options;
+  std::vector<double> v(m.num_states(), 0.0);
+  std::vector<double> u(m.num_states(), 0.0);
+  std::vector<RowId> rows(m.num_states(), -1);
+  internal::PolicyMatrix policy;
+  const std::function<bool()> interrupted = [&] {
+    return control.cancelled() || (options.time_limit_seconds > 0 &&
+                                   control.elapsed_seconds() >= options.time_limit_seconds);
+  };
+  double share = kEvaluationShare;
+  internal::EvaluationPlan plan;
+  double e = internal::GreedySweep(m, v.data(), u.data(), rows.data(), threads);
+  ++solution.sweeps;
+  std::optional<SolveOutcome> stop;
+  while (e > target) {
+    ++solution.iterations;
+    stop = control.After(solution.iterations, solution.sweeps, e, g * e / (1.0 - g), "improve");
+    if (stop) break;
+    // u = T v = T_pi v is one policy sweep ahead of v: the warm start.
+    policy.Assign(m, rows.data(), threads);
+    const internal::EvaluationResult r = internal::SolvePolicyValues(
+        policy, std::max(0.5 * target, share * e), 1e15, threads, interrupted, plan, u);
+    solution.sweeps += static_cast<int64_t>(std::ceil(r.work));
+    v.swap(u);
+    const double next = internal::GreedySweep(m, v.data(), u.data(), rows.data(), threads);
+    ++solution.sweeps;
+    if (next > 0.5 * e) share *= 0.1;
+    e = next;
+    if (r.interrupted) {
+      stop = control.cancelled() ? SolveOutcome::kCancelled : SolveOutcome::kTimeLimit;
+      break;
+    }
+  }
+  Finalize(m, v, options, solution);
+  SetOutcome(stop, solution);
+  solution.solve_seconds = control.elapsed_seconds();
+  return solution;
+}
+
 }  // namespace
 
 Result<Solution> PolicyIteration(const Model& m, const SolveOptions& options,
                                  const ProgressFn* progress, const CancelToken* cancel) {
+  const bool iterative =
+      options.linear_solver == LinearSolver::kBiCgStab ||
+      (options.linear_solver == LinearSolver::kAuto && m.num_states() > kDirectMaxStates);
+  if (iterative) return InexactPolicyIteration(m, options, progress, cancel);
   internal::RunControl control(options, progress, cancel);
   const int threads = internal::ThreadCount(options.threads);
   const double g = m.discount();
@@ -91,6 +157,7 @@ Solution ModifiedPolicyIteration(const Model& m, const SolveOptions& options,
   std::vector<double> v = MonotoneStart(m);
   std::vector<double> u(m.num_states(), 0.0);
   std::vector<RowId> rows(m.num_states(), -1);
+  internal::PolicyMatrix policy;
   std::optional<SolveOutcome> stop;
   for (;;) {
     // u = T v: the improvement step; its change is the Bellman residual of v.
@@ -101,8 +168,10 @@ Solution ModifiedPolicyIteration(const Model& m, const SolveOptions& options,
     if (e <= target) break;
     stop = control.After(solution.iterations, solution.sweeps, e, g * e / (1.0 - g), "improve");
     if (stop) break;
+    // The policy's rows copied out cost about one policy sweep and make the others cheaper.
+    if (options.evaluation_sweeps > 1) policy.Assign(m, rows.data(), threads);
     for (int64_t k = 1; k < options.evaluation_sweeps; ++k) {
-      internal::PolicySweep(m, rows.data(), v.data(), u.data(), threads);
+      policy.Apply(v.data(), u.data(), threads);
       v.swap(u);
       ++solution.sweeps;
     }

@@ -12,8 +12,13 @@
 
 namespace mdp {
 
-// Howard's policy iteration: evaluate the policy exactly (options.linear_solver), improve
-// greedily, stop when no state changes its action; then Finalize().
+// Howard's policy iteration, then Finalize(). Up to 3000 states (or with linear_solver
+// kDirect or kSweeps) each policy is evaluated exactly (options.linear_solver) and the loop
+// stops when no state changes its action. Above that (or with kBiCgStab) evaluation is
+// inexact: each policy's values are solved, warm started, only until their residual is a
+// small share of the Bellman residual that chose the policy (BiCGSTAB on the policy's own
+// rows, internal/policy_matrix.h), and the loop stops on the Bellman residual like value
+// iteration. Solution::sweeps counts the evaluation's work in passes over the policy's rows.
 Result<Solution> PolicyIteration(const Model& m, const SolveOptions& options,
                                  const ProgressFn* progress, const CancelToken* cancel);
 

@@ -54,7 +54,8 @@ struct Solution {
   SolveOptions options;
   SolveOutcome outcome = SolveOutcome::kConverged;
   int64_t iterations = 0;  // Method iterations (improvement steps for policy iteration).
-  int64_t sweeps = 0;      // Full passes over the model, including evaluation and finalize.
+  int64_t sweeps = 0;  // Passes over the model, including finalize, or over a policy's rows
+                       // (evaluation steps of policy iteration).
   double residual = 0.0;   // e = sup |T V - V| of the last iterate V.
   double value_error_bound = 0.0;
   double q_error_bound = 0.0;

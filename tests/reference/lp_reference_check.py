@@ -102,10 +102,21 @@ def state_names(n, seed):
     return ["s%04d" % i for i in range(n)]
 
 
-def random_model(seed):
-    """Build a random mdpserve/model@1 document from numpy.random.default_rng(seed)."""
+# Models above 3000 states, where policy iteration evaluates iteratively (inexactly) rather
+# than by sparse LU: (seed, number of states, discount, objective, reward scale).
+LARGE_MODELS = (
+    (100, 3600, 0.99, "maximize", 10.0),
+    (101, 3300, 0.95, "minimize", 1.0),
+)
+
+
+def random_model(seed, shape=None):
+    """Build a random mdpserve/model@1 document from numpy.random.default_rng(seed); `shape`
+    (states, discount, objective, scale) overrides the schedule."""
     rng = np.random.default_rng(seed)
-    if seed < len(SCHEDULE):
+    if shape is not None:
+        n, discount, objective, scale = shape
+    elif seed < len(SCHEDULE):
         n, discount, objective, scale = SCHEDULE[seed]
     else:
         n = int(rng.integers(5, 301))
@@ -613,6 +624,8 @@ def main():
     parser.add_argument("--seeds", type=int, default=8,
                         help="number of random models (seeds first..first+N-1), default 8")
     parser.add_argument("--first-seed", type=int, default=0, help="first seed, default 0")
+    parser.add_argument("--large", action="store_true",
+                        help="also check the LARGE_MODELS (over 3000 states; about a minute)")
     parser.add_argument("--keep", metavar="DIR",
                         help="write models and outputs to DIR instead of a temporary directory")
     args = parser.parse_args()
@@ -625,6 +638,9 @@ def main():
         check_model(tally, mdpserve, workdir, "dup-next", doc, seed=-1, expected=expected)
         for seed in range(args.first_seed, args.first_seed + args.seeds):
             check_model(tally, mdpserve, workdir, "seed%02d" % seed, random_model(seed), seed)
+        for seed, *shape in (LARGE_MODELS if args.large else ()):
+            check_model(tally, mdpserve, workdir, "large%03d" % seed,
+                        random_model(seed, tuple(shape)), seed)
 
     if args.keep:
         os.makedirs(args.keep, exist_ok=True)

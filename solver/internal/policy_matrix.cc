@@ -1,0 +1,276 @@
+#include "solver/internal/policy_matrix.h"
+
+#include <algorithm>
+#include <cmath>
+
+namespace mdp::internal {
+
+void PolicyMatrix::Assign(const Model& m, const RowId* rows, int threads) {
+  const StateId n = m.num_states();
+  discount_ = m.discount();
+  begin_.resize(static_cast<size_t>(n) + 1);
+  reward_.resize(n);
+  diagonal_.resize(n);
+  begin_[0] = 0;
+  for (StateId s = 0; s < n; ++s) {
+    const int64_t length = rows[s] < 0 ? 0 : m.entry_end(rows[s]) - m.entry_begin(rows[s]);
+    begin_[s + 1] = begin_[s] + length;
+  }
+  next_.resize(begin_[n]);
+  scaled_probability_.resize(begin_[n]);
+  const StateId* next = m.entry_next_data();
+  const double* probability = m.entry_probability_data();
+#pragma omp parallel for num_threads(threads) schedule(static, 4096)
+  for (StateId s = 0; s < n; ++s) {
+    double self = 0.0;
+    reward_[s] = rows[s] < 0 ? 0.0 : m.row_reward(rows[s]);
+    int64_t out = begin_[s];
+    if (rows[s] >= 0) {
+      for (int64_t e = m.entry_begin(rows[s]), end = m.entry_end(rows[s]); e < end; ++e, ++out) {
+        next_[out] = next[e];
+        scaled_probability_[out] = discount_ * probability[e];
+        if (next[e] == s) self = scaled_probability_[out];
+      }
+    }
+    diagonal_[s] = 1.0 - self;
+  }
+}
+
+double PolicyMatrix::Apply(const double* x, double* y, int threads) const {
+  const StateId n = size();
+  double diff = 0.0;
+#pragma omp parallel for num_threads(threads) reduction(max : diff) schedule(static, 4096)
+  for (StateId s = 0; s < n; ++s) {
+    double acc = reward_[s];
+    for (int64_t e = begin_[s], end = begin_[s + 1]; e < end; ++e) {
+      acc += scaled_probability_[e] * x[next_[e]];
+    }
+    diff = std::max(diff, std::fabs(acc - x[s]));
+    y[s] = acc;
+  }
+  return diff;
+}
+
+double PolicyMatrix::GaussSeidel(double* x, bool forward) const {
+  const StateId n = size();
+  double diff = 0.0;
+  for (StateId i = 0; i < n; ++i) {
+    const StateId s = forward ? i : n - 1 - i;
+    double acc = reward_[s];
+    double self = 0.0;
+    for (int64_t e = begin_[s], end = begin_[s + 1]; e < end; ++e) {
+      if (next_[e] == s) {
+        self = scaled_probability_[e];
+      } else {
+        acc += scaled_probability_[e] * x[next_[e]];
+      }
+    }
+    const double y = acc / (1.0 - self);
+    diff = std::max(diff, std::fabs(y - x[s]));
+    x[s] = y;
+  }
+  return diff;
+}
+
+void PolicyMatrix::LowerSolve(const double* b, double* z) const {
+  const StateId n = size();
+  for (StateId s = 0; s < n; ++s) {
+    double acc = b[s];
+    for (int64_t e = begin_[s], end = begin_[s + 1]; e < end && next_[e] < s; ++e) {
+      acc += scaled_probability_[e] * z[next_[e]];
+    }
+    z[s] = acc / diagonal_[s];
+  }
+}
+
+void PolicyMatrix::MultiplySystem(const double* x, double* y, int threads) const {
+  const StateId n = size();
+#pragma omp parallel for num_threads(threads) schedule(static, 4096)
+  for (StateId s = 0; s < n; ++s) {
+    double acc = 0.0;
+    for (int64_t e = begin_[s], end = begin_[s + 1]; e < end; ++e) {
+      acc += scaled_probability_[e] * x[next_[e]];
+    }
+    y[s] = x[s] - acc;
+  }
+}
+
+namespace {
+
+// One BiCGSTAB pass (van der Vorst 1992, right-preconditioned) on (I - g P) dx = res,
+// applied to x in place. res holds the true residual on entry and the recursive one on
+// return. Stops when the recursive residual's sup norm reaches `aim`, after `budget` work
+// units (a product is 1, a lower-triangle solve kLowerSolveCost), or at a breakdown.
+// Returns the work spent.
+class BiCgStab {
+ public:
+  BiCgStab(const PolicyMatrix& p, int threads)
+      : p_(p), threads_(threads), n_(p.size()), rhat_(n_), dir_(n_, 0.0), v_(n_, 0.0), y_(n_),
+        z_(n_), t_(n_) {}
+
+  double Pass(Preconditioner preconditioner, double aim, double budget,
+              const std::function<bool()>& interrupted, std::vector<double>& x,
+              std::vector<double>& res) {
+    const bool lower = preconditioner == Preconditioner::kLowerTriangle;
+    const double step_cost = lower ? 2.0 + 2.0 * kLowerSolveCost : 2.0;
+    const double* d = p_.diagonal().data();
+    std::copy(res.begin(), res.end(), rhat_.begin());
+    std::fill(dir_.begin(), dir_.end(), 0.0);
+    std::fill(v_.begin(), v_.end(), 0.0);
+    double rho = 1.0, alpha = 1.0, omega = 1.0;
+    double work = 0.0;
+    while (work + step_cost <= budget) {
+      if (interrupted()) break;
+      const double rho_next = Dot(rhat_, res);
+      if (rho_next == 0.0 || !std::isfinite(rho_next)) break;
+      const double beta = (rho_next / rho) * (alpha / omega);
+      rho = rho_next;
+#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
+      for (StateId s = 0; s < n_; ++s) {
+        dir_[s] = res[s] + beta * (dir_[s] - omega * v_[s]);
+        y_[s] = dir_[s] / d[s];
+      }
+      if (lower) p_.LowerSolve(dir_.data(), y_.data());
+      p_.MultiplySystem(y_.data(), v_.data(), threads_);
+      work += step_cost / 2.0;
+      const double rv = Dot(rhat_, v_);
+      if (rv == 0.0 || !std::isfinite(rv)) break;
+      alpha = rho / rv;
+      double sup_s = 0.0;
+#pragma omp parallel for num_threads(threads_) reduction(max : sup_s) schedule(static, 4096)
+      for (StateId s = 0; s < n_; ++s) {
+        res[s] -= alpha * v_[s];
+        z_[s] = res[s] / d[s];
+        sup_s = std::max(sup_s, std::fabs(res[s]));
+      }
+      if (lower) p_.LowerSolve(res.data(), z_.data());
+      if (sup_s <= aim) {
+        Axpy(alpha, y_, x);
+        break;
+      }
+      p_.MultiplySystem(z_.data(), t_.data(), threads_);
+      work += step_cost / 2.0;
+      double ts = 0.0, tt = 0.0;
+#pragma omp parallel for num_threads(threads_) reduction(+ : ts, tt) schedule(static, 4096)
+      for (StateId s = 0; s < n_; ++s) {
+        ts += t_[s] * res[s];
+        tt += t_[s] * t_[s];
+      }
+      omega = tt == 0.0 ? 0.0 : ts / tt;
+      double sup_r = 0.0;
+#pragma omp parallel for num_threads(threads_) reduction(max : sup_r) schedule(static, 4096)
+      for (StateId s = 0; s < n_; ++s) {
+        x[s] += alpha * y_[s] + omega * z_[s];
+        res[s] -= omega * t_[s];
+        sup_r = std::max(sup_r, std::fabs(res[s]));
+      }
+      if (sup_r <= aim || omega == 0.0 || !std::isfinite(sup_r)) break;
+    }
+    return work;
+  }
+
+ private:
+  double Dot(const std::vector<double>& a, const std::vector<double>& b) const {
+    double sum = 0.0;
+#pragma omp parallel for num_threads(threads_) reduction(+ : sum) schedule(static, 4096)
+    for (StateId s = 0; s < n_; ++s) sum += a[s] * b[s];
+    return sum;
+  }
+  void Axpy(double a, const std::vector<double>& from, std::vector<double>& to) const {
+#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
+    for (StateId s = 0; s < n_; ++s) to[s] += a * from[s];
+  }
+
+  const PolicyMatrix& p_;
+  const int threads_;
+  const StateId n_;
+  std::vector<double> rhat_, dir_, v_, y_, z_, t_;
+};
+
+// True residual res = r + g P x - x; returns its sup norm. `scratch` receives T_pi x.
+double TrueResidual(const PolicyMatrix& p, const std::vector<double>& x,
+                    std::vector<double>& scratch, std::vector<double>& res, int threads) {
+  const double sup = p.Apply(x.data(), scratch.data(), threads);
+  for (size_t s = 0; s < x.size(); ++s) res[s] = scratch[s] - x[s];
+  return sup;
+}
+
+// Residual after x <- (forward Gauss-Seidel sweep)^4: the fallback when Krylov passes fail.
+// Each sweep is a g-contraction (Puterman 1994, sec. 6.3.3, from memory), so it always
+// progresses.
+double GaussSeidelRound(const PolicyMatrix& p, std::vector<double>& x,
+                        std::vector<double>& scratch, std::vector<double>& res, int threads) {
+  for (int k = 0; k < 4; ++k) p.GaussSeidel(x.data(), /*forward=*/true);
+  return TrueResidual(p, x, scratch, res, threads);
+}
+
+}  // namespace
+
+EvaluationResult SolvePolicyValues(const PolicyMatrix& p, double target, double max_work,
+                                   int threads, const std::function<bool()>& interrupted,
+                                   EvaluationPlan& plan, std::vector<double>& x) {
+  EvaluationResult out;
+  // A row without entries (terminal state) reads x = r exactly; set it, and every Krylov
+  // vector then stays exactly 0 there.
+  for (StateId s = 0; s < p.size(); ++s) {
+    if (p.empty_row(s)) x[s] = p.reward()[s];
+  }
+  std::vector<double> scratch(p.size()), res(p.size());
+  out.residual = TrueResidual(p, x, scratch, res, threads);
+  out.work += 1.0;
+  BiCgStab krylov(p, threads);
+  // Aim below the target: the recursive residual drifts from the true one.
+  const double aim = 0.5 * target;
+  if (plan.preconditioner == Preconditioner::kUnknown && out.residual > target) {
+    // Probe: a short pass with each preconditioner from the same start; keep the one that
+    // shrank the residual faster per unit of work, and its iterate.
+    const std::vector<double> start = x, start_res = res;
+    const double before = out.residual;
+    double rate[2] = {0.0, 0.0};
+    std::vector<double> best_x;
+    double best_residual = before;
+    for (Preconditioner c : {Preconditioner::kDiagonal, Preconditioner::kLowerTriangle}) {
+      x = start;
+      res = start_res;
+      const double work = krylov.Pass(c, aim, kProbeWork, interrupted, x, res) + 1.0;
+      const double after = TrueResidual(p, x, scratch, res, threads);
+      out.work += work;
+      const int i = c == Preconditioner::kDiagonal ? 0 : 1;
+      if (std::isfinite(after) && after < before) rate[i] = std::log(before / after) / work;
+      if (std::isfinite(after) && after < best_residual) {
+        best_residual = after;
+        best_x = x;
+      }
+    }
+    plan.preconditioner =
+        rate[1] > rate[0] ? Preconditioner::kLowerTriangle : Preconditioner::kDiagonal;
+    x = best_x.empty() ? start : best_x;
+    out.residual = TrueResidual(p, x, scratch, res, threads);
+    out.work += 1.0;
+  }
+  // A pass that does not halve the true residual counts as a failure; after two, Gauss-Seidel
+  // sweeps take over.
+  int failures = 0;
+  while (failures < 2 && out.residual > target && out.work < max_work && !interrupted()) {
+    const double before = out.residual;
+    const std::vector<double> start = x;
+    out.work += krylov.Pass(plan.preconditioner, aim, max_work - out.work, interrupted, x, res);
+    out.residual = TrueResidual(p, x, scratch, res, threads);
+    out.work += 1.0;
+    if (std::isfinite(out.residual) && out.residual < 0.5 * before) continue;
+    ++failures;
+    if (!std::isfinite(out.residual) || out.residual > before) {
+      x = start;
+      out.residual = TrueResidual(p, x, scratch, res, threads);
+      out.work += 1.0;
+    }
+  }
+  while (out.residual > target && out.work < max_work && !interrupted()) {
+    out.residual = GaussSeidelRound(p, x, scratch, res, threads);
+    out.work += 5.0;
+  }
+  out.interrupted = out.residual > target && interrupted();
+  return out;
+}
+
+}  // namespace mdp::internal

@@ -1,0 +1,90 @@
+// The transition matrix of one deterministic policy, copied out of a Model into a compact CSR
+// (one row per state), and an inexact solver for its values (I - g P_pi) x = r_pi.
+//
+// Why a copy: a policy sweep over the Model's own arrays touches one row in every state's
+// block of rows, so it streams most of the model's cache lines for a quarter of their bytes.
+// The copy is built once per policy (about one sweep's cost) and every evaluation step then
+// reads only the chosen rows, contiguously. Not thread-safe to mutate; const members may be
+// shared.
+#ifndef MDP_SOLVER_INTERNAL_POLICY_MATRIX_H_
+#define MDP_SOLVER_INTERNAL_POLICY_MATRIX_H_
+
+#include <cstdint>
+#include <functional>
+#include <vector>
+
+#include "solver/model.h"
+
+namespace mdp::internal {
+
+class PolicyMatrix {
+ public:
+  // Copies row rows[s] of every state (an empty row with reward 0 where rows[s] < 0, as for
+  // terminal states). Reuses its buffers across calls.
+  void Assign(const Model& m, const RowId* rows, int threads);
+
+  StateId size() const { return static_cast<StateId>(reward_.size()); }
+  double discount() const { return discount_; }
+
+  // y = r_pi + g P_pi x (the policy's Bellman operator); returns sup |y - x|.
+  double Apply(const double* x, double* y, int threads) const;
+  // In-place Gauss-Seidel sweep of x = r_pi + g P_pi x, states in index order (forward) or
+  // reverse order; returns the largest change.
+  double GaussSeidel(double* x, bool forward) const;
+  // Solves (D - L) z = b where D - L is the system's lower triangle in index order (the
+  // forward Gauss-Seidel preconditioner). Entries must be sorted by next state.
+  void LowerSolve(const double* b, double* z) const;
+  // y = x - g P_pi x (the matrix of the evaluation system).
+  void MultiplySystem(const double* x, double* y, int threads) const;
+  // 1 - g p(s | s): the system's diagonal (never below 1 - g > 0).
+  const std::vector<double>& diagonal() const { return diagonal_; }
+  const std::vector<double>& reward() const { return reward_; }
+  bool empty_row(StateId s) const { return begin_[s] == begin_[s + 1]; }
+
+ private:
+  double discount_ = 0.0;
+  std::vector<int64_t> begin_;  // Size states + 1.
+  std::vector<StateId> next_;
+  std::vector<double> scaled_probability_;  // g p(s' | s, pi(s)).
+  std::vector<double> reward_;
+  std::vector<double> diagonal_;
+};
+
+// Work units: one product with P_pi is 1; a lower-triangle solve reads about half the
+// entries, sequentially.
+inline constexpr double kLowerSolveCost = 0.8;
+// Work spent on each preconditioner when SolvePolicyValues probes them.
+inline constexpr double kProbeWork = 24.0;
+
+enum class Preconditioner {
+  kUnknown,        // Not chosen yet: the next solve probes both.
+  kDiagonal,       // Jacobi: cheap and parallel; good when next states scatter.
+  kLowerTriangle,  // Forward Gauss-Seidel (D - L): sequential, but follows transitions to
+                   // lower indices in one pass (stock that drains, queues that empty).
+};
+
+// What the evaluations of one solve learn and keep: policies of one model share their
+// structure, so the preconditioner probed on the first serves the others.
+struct EvaluationPlan {
+  Preconditioner preconditioner = Preconditioner::kUnknown;
+};
+
+struct EvaluationResult {
+  double residual = 0.0;  // sup |r_pi + g P_pi x - x| at the returned x, recomputed directly.
+  double work = 0.0;      // Work units spent (see kLowerSolveCost).
+  bool interrupted = false;  // `interrupted` fired before the target was met.
+};
+
+// Improves x towards V^pi until sup |r_pi + g P_pi x - x| <= target (or max_work is spent):
+// BiCGSTAB restarted from the true residual, preconditioned as `plan` says (probed first if
+// unknown), with forward Gauss-Seidel sweeps as the fallback when Krylov passes fail to
+// halve the residual (the operator is a g-contraction, so sweeps always progress). x holds
+// the warm start on entry. `interrupted` is polled about once per two products
+// (cancellation, time limits).
+EvaluationResult SolvePolicyValues(const PolicyMatrix& p, double target, double max_work,
+                                   int threads, const std::function<bool()>& interrupted,
+                                   EvaluationPlan& plan, std::vector<double>& x);
+
+}  // namespace mdp::internal
+
+#endif  // MDP_SOLVER_INTERNAL_POLICY_MATRIX_H_
