@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
 # bench.sh: the benchmark suite of issue 5. Builds the bench targets, measures the solver and
 # its baselines side by side (numpy/scipy on the same models, json.load on the same document,
-# nginx for queries, a read-bandwidth probe), and writes BENCHMARKS.md at the repository root.
+# nginx for queries, a read-bandwidth probe), the service's memory against the raw bytes of a
+# solved model's arrays, and writes BENCHMARKS.md at the repository root.
 # A measurement, not a test: it exits 0 when targets are missed, non-zero only when a step
 # fails. Every process it starts runs in the foreground (bench_queries.sh stops its servers
 # by PID itself).
@@ -17,8 +18,9 @@
 # Environment (optional): BENCH_STATES, BENCH_STRUCTURES ("random local local_shuffled grid
 # inventory"), BENCH_SOLVE_STRUCTURE (local), BENCH_METHODS, BENCH_SWEEPS (least number of
 # timed sweeps per configuration; more are timed until 0.5 s has passed),
-# BENCH_INGEST_STATES (100000), BENCH_BUILD_TYPE (RelWithDebInfo, as the default build),
-# BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1.
+# BENCH_INGEST_STATES (100000), BENCH_MEMORY_STATES (service_memory.py's model; default the
+# run's state count), BENCH_BUILD_TYPE (RelWithDebInfo, as the default build),
+# BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1, BENCH_SKIP_MEMORY=1.
 set -euo pipefail
 
 ROOT=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
@@ -50,6 +52,7 @@ DEFAULT_METHODS=value_iteration,value_iteration:1,gauss_seidel,policy_iteration
 DEFAULT_METHODS+=,modified_policy_iteration
 METHODS=${BENCH_METHODS:-$DEFAULT_METHODS}
 INGEST_STATES=${BENCH_INGEST_STATES:-100000}
+MEMORY_STATES=${BENCH_MEMORY_STATES:-$STATES}
 STARTED=$(date +%s)
 
 WORK=$(mktemp -d "${TMPDIR:-/tmp}/mdp-bench.XXXXXX")
@@ -113,8 +116,22 @@ run "$BIN/solver_bench" model --structure=random --states="$INGEST_STATES" --swe
 run "$PY" "$ROOT/scripts/bench/ingest_bench.py" --mdpserve "$BIN/mdpserve" \
   --document "$WORK/ingest-model.json" --encoding objects --repetitions "$INGEST_REPS" \
   >"$WORK/ingest-objects.json"
+say "ingest: the same model in the compact (arrays) encoding"
+run "$PY" "$ROOT/scripts/model_to_arrays.py" --to arrays "$WORK/ingest-model.json" \
+  "$WORK/ingest-model-arrays.json"
 rm -f "$WORK/ingest-model.json"
+run "$PY" "$ROOT/scripts/bench/ingest_bench.py" --mdpserve "$BIN/mdpserve" \
+  --document "$WORK/ingest-model-arrays.json" --encoding compact --repetitions "$INGEST_REPS" \
+  >"$WORK/ingest-compact.json"
+rm -f "$WORK/ingest-model-arrays.json"
 sample_load ingest
+
+if [[ ${BENCH_SKIP_MEMORY:-0} != 1 ]]; then
+  say "service memory: $MEMORY_STATES-state model uploaded and solved"
+  run "$PY" "$ROOT/scripts/bench/service_memory.py" --mdpserve "$BIN/mdpserve" \
+    --states "$MEMORY_STATES" >"$WORK/service-memory.json"
+  sample_load memory
+fi
 
 if [[ ${BENCH_SKIP_QUERIES:-0} != 1 ]]; then
   say "queries against nginx (scripts/bench_queries.sh)"

@@ -29,12 +29,12 @@ void PrintIssues(std::ostream& err, const std::string& path,
 // Reads and decodes a model; prints problems to `err`. Nullopt iff the model is unusable.
 std::optional<Model> LoadModel(const std::string& path, std::ostream& err, bool quiet_warnings,
                                ModelDecodeResult* full = nullptr) {
-  Result<std::string> text = ReadWholeFile(path);
+  Result<FileText> text = FileText::Open(path);  // Mapped, not copied: documents can be GBs.
   if (!text.ok()) {
     err << "mdpserve: " << text.status().message() << "\n";
     return std::nullopt;
   }
-  ModelDecodeResult decoded = DecodeModel(*text);
+  ModelDecodeResult decoded = DecodeModel(text->text());
   PrintIssues(err, path, decoded.errors, "");
   if (decoded.errors_not_listed > 0) {
     err << path << ": " << decoded.errors_not_listed << " more errors not listed\n";

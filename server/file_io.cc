@@ -1,6 +1,7 @@
 #include "server/file_io.h"
 
 #include <fcntl.h>
+#include <sys/mman.h>
 #include <sys/stat.h>
 #include <unistd.h>
 
@@ -10,6 +11,7 @@
 #include <iostream>
 #include <iterator>
 #include <sstream>
+#include <utility>
 
 namespace mdp::server {
 
@@ -42,6 +44,48 @@ Result<std::string> ReadWholeFile(const std::string& path) {
   }
   ::close(fd);
   return data;
+}
+
+Result<FileText> FileText::Open(const std::string& path) {
+  FileText file;
+  const int fd = path == "-" ? -1 : ::open(path.c_str(), O_RDONLY | O_CLOEXEC);
+  struct stat st;
+  if (fd >= 0 && ::fstat(fd, &st) == 0 && S_ISREG(st.st_mode) && st.st_size > 0) {
+    // MAP_POPULATE maps the cached pages up front instead of one fault per page as the
+    // decoder walks the text. A copy (ReadWholeFile) cost 0.5 s on a 1.1 GB document.
+    void* map = ::mmap(nullptr, static_cast<size_t>(st.st_size), PROT_READ,
+                       MAP_PRIVATE | MAP_POPULATE, fd, 0);
+    if (map != MAP_FAILED) {
+      ::close(fd);
+      file.mapped_ = static_cast<const char*>(map);
+      file.mapped_size_ = static_cast<size_t>(st.st_size);
+      return file;
+    }
+  }
+  if (fd >= 0) ::close(fd);
+  Result<std::string> text = ReadWholeFile(path);  // Standard input, pipes, empty files.
+  if (!text.ok()) return text.status();
+  file.read_ = std::move(*text);
+  return file;
+}
+
+FileText::FileText(FileText&& other) noexcept
+    : mapped_(std::exchange(other.mapped_, nullptr)),
+      mapped_size_(std::exchange(other.mapped_size_, 0)),
+      read_(std::move(other.read_)) {}
+
+FileText& FileText::operator=(FileText&& other) noexcept {
+  if (this != &other) {
+    if (mapped_ != nullptr) ::munmap(const_cast<char*>(mapped_), mapped_size_);
+    mapped_ = std::exchange(other.mapped_, nullptr);
+    mapped_size_ = std::exchange(other.mapped_size_, 0);
+    read_ = std::move(other.read_);
+  }
+  return *this;
+}
+
+FileText::~FileText() {
+  if (mapped_ != nullptr) ::munmap(const_cast<char*>(mapped_), mapped_size_);
 }
 
 Status WriteFileAtomically(const std::string& path, const std::string& contents) {

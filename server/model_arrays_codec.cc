@@ -7,12 +7,10 @@
 #include <cmath>
 #include <cstdio>
 #include <cstring>
-#include <future>
 #include <limits>
 #include <new>
 #include <optional>
 #include <string>
-#include <system_error>
 #include <unordered_map>
 #include <unordered_set>
 #include <utility>
@@ -1087,27 +1085,10 @@ bool DecodeInto(std::string_view text, const DecodeLimits& limits, ArraysDecoder
   return decoder.Assemble();
 }
 
-// Starts compiling a large spec on a thread of its own, to run while Validate() lists every
-// problem: BuildModel() validates again for its own first-error check, and both only read the
-// spec, so on two cores the pair takes the time of the longer one. An invalid future means
-// "compile afterwards" (a small model, or no thread to be had). REQUIRES: `spec` outlives the
-// future (its destructor joins the thread).
-std::future<Result<Model>> StartBuild(const ModelSpec& spec) {
-  constexpr OutcomeId kParallelFromOutcomes = OutcomeId{1} << 20;
-  if (spec.num_outcomes() < kParallelFromOutcomes) return {};
-  try {
-    return std::async(std::launch::async, [&spec] { return BuildModel(spec); });
-  } catch (const std::system_error&) {
-    return {};
-  }
-}
-
 // Runs Validate() on a decoded spec and compiles it, as DecodeModel does for the object
 // encoding; findings at places the decoder already reported are not repeated.
 void ValidateAndBuild(ArraysDecoder& decoder, const DecodeLimits& limits, ModelDecodeResult& out) {
   const ModelSpec& spec = decoder.spec();
-  std::future<Result<Model>> built;
-  if (out.errors.empty() && out.errors_not_listed == 0) built = StartBuild(spec);
   std::unordered_set<std::string> reported;
   for (const DocumentIssue& e : out.errors) reported.insert(e.pointer);
   ValidateOptions options;
@@ -1128,8 +1109,8 @@ void ValidateAndBuild(ArraysDecoder& decoder, const DecodeLimits& limits, ModelD
     out.warnings.push_back({ArraysPointer(spec, f.where), f.message});
   }
   out.warnings_not_listed = report.warnings_not_listed;
-  if (!out.errors.empty() || out.errors_not_listed > 0) return;  // `built` is joined unused.
-  Result<Model> model = built.valid() ? built.get() : BuildModel(spec);
+  if (!out.errors.empty() || out.errors_not_listed > 0 || !report.proof) return;
+  Result<Model> model = BuildModel(spec, *report.proof);  // Compiles without validating again.
   if (!model.ok()) {
     out.errors.push_back({"", model.status().message()});
     return;

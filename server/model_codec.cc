@@ -612,6 +612,7 @@ ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits)
   out.malformed = decoded.malformed;
   const bool readable = out.errors.empty() || !decoded.spec.state_names.empty() ||
                         !decoded.spec.action_names.empty();
+  std::optional<ValidSpecProof> proof;
   if (readable) {
     std::unordered_set<std::string> reported;
     for (const auto& e : out.errors) reported.insert(e.pointer);
@@ -631,9 +632,11 @@ ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits)
       out.warnings.push_back({LocationPointer(spec, f.where), f.message});
     }
     out.warnings_not_listed = report.warnings_not_listed;
+    proof = std::move(report.proof);
   }
   if (!out.errors.empty() || out.errors_not_listed > 0) return out;
-  Result<Model> model = BuildModel(decoded.spec);
+  // Compiles without validating again when Validate() just found no error at all.
+  Result<Model> model = proof ? BuildModel(decoded.spec, *proof) : BuildModel(decoded.spec);
   if (!model.ok()) {
     out.errors.push_back({"", model.status().message()});
     return out;

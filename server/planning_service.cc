@@ -1,5 +1,9 @@
 #include "server/planning_service.h"
 
+#if defined(__GLIBC__)
+#include <malloc.h>
+#endif
+
 #include <chrono>
 #include <ctime>
 #include <limits>
@@ -44,6 +48,35 @@ std::string CanonicalSolveOptions(const SolveOptions& options) {
 }
 
 namespace {
+
+// Hands heap pages freed by large work back to the system. glibc keeps freed memory in its
+// arenas (each worker thread has its own) and returns only the top of the main heap by
+// itself. Measured with scripts/bench/service_memory.py (300,000 states x 4 x 8, SQLite
+// store): resident memory after upload and solve fell from 296 MB to 204 MB, next to a cached
+// model and solution of 170 MB. A no-op without glibc.
+void ReturnFreedMemory() {
+#if defined(__GLIBC__)
+  malloc_trim(0);
+#endif
+}
+
+// Calls ReturnFreedMemory() when it goes out of scope, if `enabled`: declared first in a
+// function, after every other local of that function is destroyed.
+class ReturnFreedMemoryAtExit {
+ public:
+  explicit ReturnFreedMemoryAtExit(bool enabled) : enabled_(enabled) {}
+  ~ReturnFreedMemoryAtExit() {
+    if (enabled_) ReturnFreedMemory();
+  }
+  ReturnFreedMemoryAtExit(const ReturnFreedMemoryAtExit&) = delete;
+  ReturnFreedMemoryAtExit& operator=(const ReturnFreedMemoryAtExit&) = delete;
+
+ private:
+  const bool enabled_;
+};
+
+// Uploads from this size on are large enough for ReturnFreedMemory() to be worth its time.
+constexpr size_t kTrimAfterUploadBytes = size_t{16} << 20;
 
 std::string NewJobId() {
   static thread_local std::mt19937_64 rng(std::random_device{}() ^
@@ -139,6 +172,7 @@ void PlanningService::Shutdown(double deadline_seconds) {
 
 Result<UploadResult> PlanningService::UploadModel(std::string_view document) {
   if (!accepting()) return Status(StatusCode::kUnavailable, "the service is shutting down");
+  const ReturnFreedMemoryAtExit trim(document.size() >= kTrimAfterUploadBytes);
   ModelDecodeResult decoded = DecodeModel(document, options_.limits);
   UploadResult result;
   result.warnings = std::move(decoded.warnings);
@@ -282,6 +316,7 @@ void PlanningService::RunJob(const std::shared_ptr<ActiveJob>& job) {
     status = job->record.kind == "solve"      ? RunSolve(*job)
              : job->record.kind == "simulate" ? RunSimulation(*job)
                                               : RunVerify(*job);
+    ReturnFreedMemory();  // The job's working memory is freed by now.
   }
   {
     std::lock_guard<std::mutex> lock(job->mu);

@@ -22,6 +22,14 @@ namespace mdp {
 
 using RowId = int64_t;  // A row is one (state, available action); same order as spec slots.
 
+class ValidSpecProof;  // solver/validate.h
+
+class Model;
+namespace internal {
+// The same MDP with states renumbered (solver/internal/renumber.h).
+Model PermuteStates(const Model& m, std::span<const StateId> new_of_old, int threads);
+}  // namespace internal
+
 class Model {
  public:
   Model() = default;
@@ -75,6 +83,8 @@ class Model {
 
  private:
   friend Result<Model> BuildModel(const ModelSpec& spec);
+  friend Result<Model> BuildModel(const ModelSpec& spec, const ValidSpecProof& proof);
+  friend Model internal::PermuteStates(const Model&, std::span<const StateId>, int);
 
   std::string name_, description_, reward_unit_;
   Objective objective_ = Objective::kMaximize;
@@ -83,7 +93,9 @@ class Model {
 
   std::vector<std::string> state_names_;
   std::vector<std::string> action_names_;
-  std::unordered_map<std::string_view, StateId> state_index_;  // Views into state_names_.
+  // FindState's index: an open-addressing table (linear probing, at most half full) of
+  // state indices by name hash; -1 marks a free slot. Empty until built.
+  std::vector<StateId> state_index_;
 
   std::vector<uint8_t> terminal_;
   std::vector<RowId> state_row_begin_;  // Size states + 1.
@@ -97,6 +109,9 @@ class Model {
 // Compiles `spec` into a Model. Returns kInvalidArgument (naming the first problem) unless
 // Validate(spec) reports no errors; kResourceExhausted if memory runs out.
 Result<Model> BuildModel(const ModelSpec& spec);
+// The same for a caller that has just run Validate(spec) (validate.h) and holds its proof:
+// compiles without validating again, or validates as above if `proof` does not cover `spec`.
+Result<Model> BuildModel(const ModelSpec& spec, const ValidSpecProof& proof);
 
 }  // namespace mdp
 

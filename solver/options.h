@@ -37,6 +37,15 @@ enum class LinearSolver {
   kSweeps,    // Repeated application of the policy's Bellman operator (a contraction).
 };
 
+// Whether Solve() may renumber states internally for memory locality (solver/internal/
+// renumber.h). Internal: not part of model or request documents, never encoded; answers are
+// the same up to rounding either way. Only the discounted criterion renumbers.
+enum class Renumber {
+  kAuto,  // When the model is large and the locality score says the new order pays.
+  kOff,   // Never (the document's order).
+  kOn,    // Always (tests and benchmarks).
+};
+
 struct SolveOptions {
   Method method = Method::kAuto;  // Default: exact, few iterations (policy iteration).
   double tolerance = 1e-8;        // Target bound on sup |V - V*| (in reward units).
@@ -49,6 +58,8 @@ struct SolveOptions {
   // kAutoThreadsMinEntries transitions, else 1 (starting threads costs more than a sweep of
   // a small model). Solve() resolves it; Solution::options says what was used.
   int threads = 0;
+  // Internal (see Renumber). Solve() resolves kAuto; Solution::options says what was done.
+  Renumber renumber = Renumber::kAuto;
 };
 
 // Models with at least this many transitions (CSR entries) sweep on every hardware thread

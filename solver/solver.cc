@@ -1,12 +1,15 @@
 #include "solver/solver.h"
 
 #include <algorithm>
+#include <chrono>
 #include <cmath>
 #include <limits>
 #include <new>
+#include <optional>
 #include <string>
 
 #include "solver/internal/bellman.h"
+#include "solver/internal/renumber.h"
 #include "solver/policy_iteration.h"
 #include "solver/total_reward.h"
 #include "solver/value_iteration.h"
@@ -59,6 +62,36 @@ Result<Solution> SolveDiscounted(const Model& m, const SolveOptions& options,
       return ModifiedPolicyIteration(m, options, progress, cancel);
     default: return PolicyIteration(m, options, progress, cancel);
   }
+}
+
+// SolveDiscounted on a copy of `m` with its states renumbered for locality when
+// options.renumber and the rule of internal/renumber.h say so, the answer mapped back to m's
+// numbering. The copy is freed before returning. Deciding and copying count in solve_seconds
+// and against the time limit. Only this criterion renumbers: the others report state lists
+// (recurrent classes, reference states, notes) whose order follows the numbering.
+Result<Solution> SolveDiscountedRenumbered(const Model& m, SolveOptions options,
+                                           const ProgressFn* progress,
+                                           const CancelToken* cancel) {
+  const auto start = std::chrono::steady_clock::now();
+  std::optional<internal::RenumberedModel> r;
+  try {
+    r = internal::RenumberForLocality(m, options.renumber, options.threads);
+  } catch (const std::bad_alloc&) {
+    r.reset();  // The copy is an optimisation: without memory for it, solve m as it is.
+  }
+  const double spent =
+      std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  options.renumber = r ? Renumber::kOn : Renumber::kOff;
+  SolveOptions inner = options;
+  if (inner.time_limit_seconds > 0) {
+    inner.time_limit_seconds = std::max(1e-9, inner.time_limit_seconds - spent);
+  }
+  Result<Solution> s = SolveDiscounted(r ? r->model : m, inner, progress, cancel);
+  if (!s.ok()) return s;
+  if (r) internal::MapSolutionBack(m, *r, *s);
+  s->options = options;
+  s->solve_seconds += spent;
+  return s;
 }
 
 Result<Solution> SolveAverage(const Model& m, const SolveOptions& options,
@@ -252,10 +285,12 @@ Result<Solution> Solve(const Model& m, const SolveOptions& requested, const Prog
     options.threads = m.num_entries() >= kAutoThreadsMinEntries ? internal::ThreadCount(0) : 1;
   }
   MDP_RETURN_IF_ERROR(CheckMethod(kind, options.method));
+  if (kind != CriterionKind::kDiscounted) options.renumber = Renumber::kOff;
   // The one place where allocation failure inside the solver becomes a Status.
   try {
     switch (kind) {
-      case CriterionKind::kDiscounted: return SolveDiscounted(m, options, progress, cancel);
+      case CriterionKind::kDiscounted:
+        return SolveDiscountedRenumbered(m, options, progress, cancel);
       case CriterionKind::kAverage: return SolveAverage(m, options, progress, cancel);
       case CriterionKind::kFiniteHorizon:
         return SolveFiniteHorizon(m, options, progress, cancel);

@@ -3,6 +3,7 @@
 #include <algorithm>
 #include <cmath>
 #include <sstream>
+#include <string_view>
 #include <unordered_map>
 
 namespace mdp {
@@ -15,6 +16,7 @@ class Collector {
   explicit Collector(const ValidateOptions& options) : options_(options) {}
 
   void Error(Location where, std::string message) {
+    any_error_ = true;
     if (Skipped(Finding::Severity::kError, where, message)) return;
     Add(Finding::Severity::kError, where, std::move(message), report_.errors,
         report_.errors_not_listed, options_.max_errors);
@@ -25,6 +27,8 @@ class Collector {
         report_.warnings_not_listed, options_.max_warnings);
   }
   ValidationReport Take() { return std::move(report_); }
+  // True iff an error was found, listed or not, skipped or not.
+  bool any_error() const { return any_error_; }
 
  private:
   bool Skipped(Finding::Severity severity, const Location& where, const std::string& message) {
@@ -42,6 +46,7 @@ class Collector {
 
   ValidateOptions options_;
   ValidationReport report_;
+  bool any_error_ = false;
 };
 
 std::string Number(double x) {
@@ -136,17 +141,25 @@ void CheckHeader(const ModelSpec& spec, Collector& out) {
   }
 }
 
+// Finds repeated names with an open-addressing table of state indices (linear probing, at
+// most half full): one array instead of a node per name, which for a million states was
+// about a million allocations and frees.
 void CheckStateNames(const ModelSpec& spec, Collector& out) {
-  std::unordered_map<std::string_view, int64_t> seen;
-  seen.reserve(spec.state_names.size());
+  size_t capacity = 16;
+  while (capacity < 2 * spec.state_names.size()) capacity *= 2;
+  std::vector<StateId> first(capacity, -1);  // A slot holds the first state of its name.
+  const std::hash<std::string_view> hash;
   for (StateId s = 0; s < spec.num_states(); ++s) {
     const std::string& name = spec.state_names[s];
     if (name.empty()) out.Error(At(Field::kStateName, s), "state name is empty");
-    auto [it, inserted] = seen.emplace(name, s);
-    if (!inserted) {
+    size_t i = hash(name) & (capacity - 1);
+    while (first[i] >= 0 && spec.state_names[first[i]] != name) i = (i + 1) & (capacity - 1);
+    if (first[i] < 0) {
+      first[i] = s;
+    } else {
       out.Error(At(Field::kStateName, s), "duplicate state name '" + name +
                                               "' (first defined by state " +
-                                              std::to_string(it->second) + ")");
+                                              std::to_string(first[i]) + ")");
     }
   }
 }
@@ -262,7 +275,18 @@ ValidationReport Validate(const ModelSpec& spec, const ValidateOptions& options)
   CheckHeader(spec, out);
   CheckStateNames(spec, out);
   CheckStates(spec, out);
-  return out.Take();
+  const bool valid = !out.any_error();
+  ValidationReport report = out.Take();
+  if (valid) report.proof = ValidSpecProof(spec);
+  return report;
+}
+
+ValidSpecProof::ArrayIds ValidSpecProof::Arrays(const ModelSpec& spec) {
+  auto id = [](const auto& v) { return std::pair<const void*, size_t>(v.data(), v.size()); };
+  return {id(spec.action_names),     id(spec.state_names),          id(spec.terminal),
+          id(spec.state_first_slot), id(spec.slot_action),          id(spec.slot_reward),
+          id(spec.slot_first_outcome), id(spec.outcome_next),       id(spec.outcome_probability),
+          id(spec.outcome_reward),   id(spec.criterion.terminal_values)};
 }
 
 }  // namespace mdp

@@ -20,7 +20,9 @@
 
 #include <cstdint>
 #include <functional>
+#include <optional>
 #include <string>
+#include <utility>
 #include <vector>
 
 #include "solver/model_spec.h"
@@ -73,11 +75,37 @@ struct ValidateOptions {
   std::function<bool(const Finding&)> skip;
 };
 
+struct ValidationReport;
+ValidationReport Validate(const ModelSpec& spec, const ValidateOptions& options);
+
+// Evidence that Validate() found no error at all (listed, over the cap, or dropped by `skip`)
+// in one ModelSpec, so that BuildModel(spec, proof) need not validate it again. Only
+// Validate() makes one. It names the spec object and the size and storage of each of its
+// arrays, so it never vouches for another spec or for one whose arrays were resized or
+// reallocated. REQUIRES (not checked): the values in the spec are not changed between
+// Validate() and BuildModel(). A plain copyable value.
+class ValidSpecProof {
+ public:
+  // True iff Validate() made this proof for `spec` as it is sized and stored now.
+  bool Covers(const ModelSpec& spec) const { return spec_ == &spec && arrays_ == Arrays(spec); }
+
+ private:
+  friend ValidationReport Validate(const ModelSpec& spec, const ValidateOptions& options);
+  using ArrayIds = std::vector<std::pair<const void*, size_t>>;
+  explicit ValidSpecProof(const ModelSpec& spec) : spec_(&spec), arrays_(Arrays(spec)) {}
+  static ArrayIds Arrays(const ModelSpec& spec);
+
+  const ModelSpec* spec_;
+  ArrayIds arrays_;  // Data pointer and size of every array of the spec.
+};
+
 struct ValidationReport {
   std::vector<Finding> errors;
   std::vector<Finding> warnings;
   int64_t errors_not_listed = 0;
   int64_t warnings_not_listed = 0;
+  // Set iff no error was found, including errors `skip` dropped.
+  std::optional<ValidSpecProof> proof;
   bool ok() const { return errors.empty() && errors_not_listed == 0; }
 };
 

@@ -64,10 +64,19 @@ Solution GaussSeidelValueIteration(const Model& m, const SolveOptions& options,
   solution.method = Method::kGaussSeidel;
   solution.options = options;
   std::vector<double> v(m.num_states(), 0.0);
+  // More than one thread: block Gauss-Seidel (bellman.h), the same contraction argument.
+  const int threads = internal::ThreadCount(options.threads);
+  std::vector<double> next(threads > 1 ? m.num_states() : 0, 0.0);
   std::optional<SolveOutcome> stop;
   for (;;) {
     for (;;) {
-      const double d = internal::GaussSeidelSweep(m, v.data());
+      double d;
+      if (threads > 1) {
+        d = internal::BlockGaussSeidelSweep(m, v.data(), next.data(), threads);
+        v.swap(next);
+      } else {
+        d = internal::GaussSeidelSweep(m, v.data());
+      }
       ++solution.iterations;
       ++solution.sweeps;
       if (d <= target) break;

@@ -8,11 +8,16 @@
 //       [--reach=16] [--sweeps=10] [--min-seconds=0.5]
 //       [--methods=value_iteration,gauss_seidel:1,...]
 //       [--tolerance=1e-6] [--solve-threads=0] [--time-limit=1800]
+//       [--renumber=auto|off|on] [--measure-renumbering=1]
 //       [--write-arrays=DIR] [--write-json=FILE]
 //       Generates the model, builds it, optionally writes it for the baselines, times sweeps
 //       (solver and reference loop, 1 thread and all threads; at least --sweeps of each and
 //       more until --min-seconds have passed) and solves to a bound with
 //       each method (":N" after a method overrides --solve-threads for it; 0 = all).
+//       --renumber is the solves' internal state renumbering (SolveOptions::renumber).
+//       With sweeps timed and --measure-renumbering=1 (the default), also times the solver's
+//       renumbering (solver/internal/renumber.h) and the same sweeps on the renumbered copy:
+//       the object "renumber" of the output.
 // Flags are --name=value or --name value. Exit status 2 on bad flags, 1 on a failed step.
 #include <algorithm>
 #include <cmath>
@@ -30,6 +35,7 @@
 #include "scripts/bench/bench_measure.h"
 #include "scripts/bench/bench_models.h"
 #include "solver/internal/bellman.h"
+#include "solver/internal/renumber.h"
 #include "solver/solver.h"
 
 namespace mdp::bench {
@@ -165,6 +171,8 @@ std::optional<std::vector<JsonObject>> RunSolves(const Model& m,
                          .Add("wall_seconds", wall)
                          .Add("value_error_bound", solution->value_error_bound)
                          .Add("max_diff_vs_first", diff)
+                         .Add("renumbered",
+                              solution->options.renumber == Renumber::kOn ? "yes" : "no")
                          .Add("peak_rss_bytes", PeakResidentBytes()));
   }
   return solves;
@@ -195,6 +203,41 @@ std::vector<JsonObject> TimeAllSweeps(const Model& m, int sweeps, double min_sec
   return timings;
 }
 
+// Renumbering as Solve() does it: what the automatic rule decides and costs, the locality
+// score, the order's and the copy's cost, the copy's resident memory (measured while it is
+// alive: the order's temporary arrays are freed before the copy is built, so this is the
+// peak extra), and sweeps on the copy, timed as TimeAllSweeps times the original's.
+JsonObject MeasureRenumbering(const Model& m, int sweeps, double min_seconds) {
+  const int threads = internal::ThreadCount(0);
+  JsonObject out;
+  Stopwatch auto_clock;
+  const bool applies = internal::RenumberForLocality(m, Renumber::kAuto, threads).has_value();
+  out.AddRaw("auto_renumbers", applies ? "true" : "false");
+  out.Add("auto_seconds", auto_clock.seconds());
+  Stopwatch score_clock;
+  out.Add("far_before", internal::FarEntryFraction(m, {}, threads));
+  out.Add("score_seconds", score_clock.seconds());
+  const int64_t rss_before = ResidentBytes();
+  Stopwatch order_clock;
+  const internal::StateOrder order = internal::LocalityOrder(m);
+  out.Add("order_seconds", order_clock.seconds());
+  Stopwatch permute_clock;
+  const Model copy = internal::PermuteStates(m, order.new_of_old, threads);
+  out.Add("permute_seconds", permute_clock.seconds());
+  out.Add("extra_rss_bytes", ResidentBytes() - rss_before);
+  out.Add("copy_model_bytes", copy.ByteSize());
+  out.Add("far_after", internal::FarEntryFraction(copy, {}, threads));
+  out.Add("sweeps", TimeAllSweeps(copy, sweeps, min_seconds));
+  return out;
+}
+
+std::optional<Renumber> ParseRenumber(const std::string& name) {
+  if (name == "auto") return Renumber::kAuto;
+  if (name == "off") return Renumber::kOff;
+  if (name == "on") return Renumber::kOn;
+  return std::nullopt;
+}
+
 int RunModel(Flags& flags) {
   ModelShape shape;
   const std::optional<Structure> structure = ParseStructure(flags.Get("structure", "random"));
@@ -211,9 +254,16 @@ int RunModel(Flags& flags) {
   options.tolerance = flags.Number("tolerance", 1e-6);
   options.threads = static_cast<int>(flags.Number("solve-threads", 0));
   options.time_limit_seconds = flags.Number("time-limit", 1800);
+  const std::optional<Renumber> renumber = ParseRenumber(flags.Get("renumber", "auto"));
+  const bool measure_renumbering = flags.Number("measure-renumbering", 1) != 0;
   const std::string arrays_dir = flags.Get("write-arrays", "");
   const std::string json_path = flags.Get("write-json", "");
   if (!flags.AllKnown()) return 2;
+  if (!renumber) {
+    std::fprintf(stderr, "solver_bench: --renumber must be auto, off or on\n");
+    return 2;
+  }
+  options.renumber = *renumber;
   if (!structure || shape.states < 1 || shape.actions < 1 || shape.outcomes < 1 ||
       (*structure == Structure::kGrid && (shape.actions > 8 || shape.outcomes > 8))) {
     std::fprintf(stderr, "solver_bench: bad --structure or size (grid: at most 8 and 8)\n");
@@ -266,6 +316,9 @@ int RunModel(Flags& flags) {
   }
   report.Add("threads_all", internal::ThreadCount(0));
   report.Add("sweeps", TimeAllSweeps(m, sweeps, min_seconds));
+  if (measure_renumbering && sweeps > 0) {
+    report.Add("renumber", MeasureRenumbering(m, sweeps, min_seconds));
+  }
   std::optional<std::vector<JsonObject>> solves = RunSolves(m, methods, options);
   if (!solves) return 1;
   report.Add("tolerance", options.tolerance).Add("solve_threads", options.threads);

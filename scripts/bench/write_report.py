@@ -6,7 +6,9 @@ nothing is typed in by hand. Inputs in WORK (all written by scripts/bench.sh):
   probe-STRUCTURE.json    solver_bench probe, run just before that model's sweeps
   model-STRUCTURE.json    solver_bench model (sweeps; solves for the solve structure)
   numpy-STRUCTURE.json    baseline_sweep.py on the same model
-  ingest-ENCODING.json    ingest_bench.py
+  ingest-ENCODING.json    ingest_bench.py (objects; compact: the same model converted by
+                          scripts/model_to_arrays.py)
+  service-memory.json     service_memory.py
   kernels.json            kernel_bench --benchmark_format=json
   queries.txt             scripts/bench_queries.sh output
   load.txt                "LABEL LOAD1 LOAD5 LOAD15" lines sampled during the run
@@ -31,6 +33,8 @@ TARGET_PROBE_FRACTION = 0.6     # Local model: effective GB/s / probe GB/s.
 TARGET_SOLVE_SPEEDUP = 3.0      # Plain Jacobi VI seconds / best method seconds.
 TARGET_QUERY_RATIO = 0.6        # mdpserve req/s / nginx req/s.
 TARGET_P99_MS = 2.0
+TARGET_INGEST_SPEEDUP = 3.0     # Compact document: json.load seconds / mdpserve validate seconds.
+TARGET_MEMORY_RATIO = 1.5       # Service VmRSS with the solved model / raw bytes of its arrays.
 STRUCTURE_ORDER = ["random", "local", "local_shuffled", "grid", "inventory"]
 
 
@@ -85,6 +89,8 @@ class Run:
                     into[name] = load_json(path)
         paths = sorted(glob.glob(os.path.join(work, "ingest-*.json")))
         self.ingest = [i for i in map(load_json, paths) if i.get("kind") == "ingest"]
+        memory = os.path.join(work, "service-memory.json")
+        self.memory = load_json(memory) if os.path.exists(memory) else None
         kernels = os.path.join(work, "kernels.json")
         self.kernels = json.load(open(kernels)) if os.path.exists(kernels) else None
         queries = os.path.join(work, "queries.txt")
@@ -209,9 +215,42 @@ def targets_section(run, solve_structure):
     else:
         rows.append(("Best-action queries: >= 0.6x nginx's requests/s, p99 < 2 ms",
                      "not measured", "not measured"))
+    rows.append(ingest_target(run))
+    rows.append(memory_target(run))
     out = ["| Target (issue 5) | Measured in this run | Verdict |", "|---|---|---|"]
     out += [f"| {a} | {b} | {c} |" for a, b, c in rows]
     return "\n".join(out)
+
+
+def ingest_target(run):
+    title = "Ingest, compact document: parse and validate >= 3x faster than json.load"
+    compact = next((i for i in run.ingest if i["encoding"] == "compact"), None)
+    if not compact:
+        return (title, "not measured", "not measured")
+    ratio = compact["json_load_seconds"] / compact["validate_seconds"]
+    return (title,
+            f"{ratio:.2f}x ({secs(compact['json_load_seconds'])} json.load vs "
+            f"{secs(compact['validate_seconds'])} `mdpserve validate`, whole process, best of "
+            f"{compact['repetitions']}; the same {compact['bytes'] / 1e6:,.0f} MB document)",
+            verdict(ratio >= TARGET_INGEST_SPEEDUP))
+
+
+def memory_target(run):
+    title = ("Memory: a solved 1M x 4 x 8 model (transitions + Q-table) held in <= 1.5x the raw "
+             "bytes of its arrays")
+    m = run.memory
+    if not m:
+        return (title, "not measured", "not measured")
+    size = (m["states"], m["actions"], m["outcomes"])
+    if m["upload_status"] not in (200, 201):
+        return (title, f"the upload was refused ({m['upload_status']}: {m['upload_detail']}; "
+                       f"{m['states']:,} states, {m['store']} store)",
+                verdict(False, size == ISSUE_SIZE))
+    return (title,
+            f"{m['rss_ratio']:.2f}x (server VmRSS {mib(m['solved_rss_bytes'])} MB after the "
+            f"solve vs raw {mib(m['raw_total_bytes'])} MB; {m['states']:,} states, "
+            f"{m['store']} store)",
+            verdict(m["rss_ratio"] <= TARGET_MEMORY_RATIO, size == ISSUE_SIZE))
 
 
 def probe_section(run):
@@ -313,17 +352,59 @@ def memory_section(run):
 
 def ingest_section(run):
     out = ["| Encoding | Document MB | mdpserve validate | json.load | validate / json.load "
-           "| validate peak RSS MB | json.load peak RSS MB |",
-           "|---|---:|---:|---:|---:|---:|---:|"]
-    for i in run.ingest:
+           "| json.load / validate | validate peak RSS MB | json.load peak RSS MB |",
+           "|---|---:|---:|---:|---:|---:|---:|---:|"]
+    order = {"objects": 0, "compact": 1}
+    for i in sorted(run.ingest, key=lambda i: order.get(i["encoding"], 2)):
         out.append(f"| {i['encoding']} | {i['bytes'] / 1e6:,.0f} | {secs(i['validate_seconds'])} "
                    f"| {secs(i['json_load_seconds'])} "
                    f"| {i['validate_seconds'] / i['json_load_seconds']:.2f} "
+                   f"| {i['json_load_seconds'] / i['validate_seconds']:.2f}x "
                    f"| {mib(i['validate_peak_rss_bytes'])} "
                    f"| {mib(i['json_load_peak_rss_bytes'])} |")
-    if not any(i["encoding"] == "compact" for i in run.ingest):
-        out.append("| compact | – | not measured: no compact encoding exists yet "
-                   "| – | – | – | – |")
+    for encoding in ("objects", "compact"):
+        if not any(i["encoding"] == encoding for i in run.ingest):
+            out.append(f"| {encoding} | – | not measured in this run | – | – | – | – | – |")
+    return "\n".join(out)
+
+
+def service_memory_section(run):
+    m = run.memory
+    if not m:
+        return "Not measured in this run."
+    raw = m["raw_bytes"]
+    refused = m["upload_status"] not in (200, 201)
+    out = [f"Model: {m['states']:,} states x {m['actions']} actions x {m['outcomes']} outcomes "
+           f"({m['outcome_count']:,} outcomes, uniform random next states), posted as a "
+           f"{m['document_bytes'] / 1e6:,.0f} MB arrays document to a server with the "
+           f"{m['store']} store, " + (
+               f"**refused**: HTTP {m['upload_status']}, \"{m['upload_detail']}\"."
+               if refused else
+               f"solved with value iteration to tolerance {m['tolerance']:g} (upload "
+               f"{secs(m['upload_seconds'])}, solve job {secs(m['solve_seconds'])})."), "",
+           "*Raw bytes* are the arrays the solver needs, each element once in binary: per "
+           "outcome next state (4 B) and probability (8 B); per row action (4 B), expected "
+           "reward (8 B) and first-outcome offset (8 B); per state the first-row offset (8 B); "
+           "the Q-table, 8 B per row. Names and per-outcome rewards (folded into the row's "
+           "expected reward) are not counted.", "",
+           "| Quantity | MB | / raw |", "|---|---:|---:|"]
+    total = m["raw_total_bytes"]
+    rows = [("Raw: outcomes", raw["outcomes"]), ("Raw: rows", raw["rows"]),
+            ("Raw: states", raw["states"]), ("Raw: Q-table", raw["q_table"]),
+            ("**Raw total**", total)]
+    if refused:
+        rows += [("Server VmRSS, idle before the upload", m["idle_rss_bytes"]),
+                 ("Server VmHWM (peak, during the refused upload)", m["peak_rss_bytes"])]
+        out += [f"| {name} | {mib(b)} | {b / total:.2f} |" for name, b in rows]
+        return "\n".join(out)
+    rows += [
+            ("/metrics mdpserve_cached_model_bytes", m["cached_model_bytes"]),
+            ("/metrics mdpserve_cached_solution_bytes", m["cached_solution_bytes"]),
+            ("Server VmRSS, idle before the upload", m["idle_rss_bytes"]),
+            ("Server VmRSS after the upload", m["uploaded_rss_bytes"]),
+            ("**Server VmRSS after the solve**", m["solved_rss_bytes"]),
+            ("Server VmHWM (peak, during upload and solve)", m["peak_rss_bytes"])]
+    out += [f"| {name} | {mib(b)} | {b / total:.2f} |" for name, b in rows]
     return "\n".join(out)
 
 
@@ -445,10 +526,18 @@ def report(run, mode, started, finished, solve_structure):
         "## Model ingest",
         "`mdpserve validate DOC` (read, parse, validate, compile; whole process) against "
         "Python's `json.load` of the same file (inside its process), best of the repetitions "
-        "(`ingest_bench.py`). Below 1 means mdpserve is faster. The compact encoding row is "
-        "the hook for issue 5's compact document.",
+        "(`ingest_bench.py`). Below 1 means mdpserve is faster. The compact row is the same "
+        "model converted to the arrays encoding (`mdpserve/model-arrays@1`) by "
+        "`scripts/model_to_arrays.py`, with json.load timed on that same compact file.",
         "",
         ingest_section(run),
+        "",
+        "## Service memory",
+        "`service_memory.py`: one `mdpserve serve` process (the store named below; SQLite "
+        "lives in a temporary directory) holding one uploaded and solved model; resident "
+        "memory from /proc/PID/status, byte gauges from /metrics.",
+        "",
+        service_memory_section(run),
         "",
         "## Best-action queries against nginx",
         "`scripts/bench_queries.sh`: wrk against mdpserve's policy endpoint and against nginx "

@@ -48,6 +48,13 @@ inline double BackupState(const Model& m, StateId s, const double* v, RowId* bes
 double SyncSweep(const Model& m, const double* in, double* out, int threads);
 // In-place Gauss-Seidel sweep over states in index order; returns sup of the changes.
 double GaussSeidelSweep(const Model& m, double* v);
+// Gauss-Seidel in `threads` contiguous blocks of states, one per thread: each block is swept
+// in index order in `out`, reading its own states' new values from `out` and every other
+// state's from `in` (out starts as a copy of in). The result depends on the thread count but
+// not on timing. Like the plain sweep, this map is a g-contraction with fixed point V*: each
+// new value is one backup of values that are each old or already updated (common practice).
+// Returns sup |out - in|.
+double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads);
 // out[s] = Q(s, rows[s], in) (0 where rows[s] < 0); returns sup |out - in|.
 double PolicySweep(const Model& m, const RowId* rows, const double* in, double* out, int threads);
 struct Improvement {

@@ -55,6 +55,15 @@ With --mdpserve it also runs the CLI:
       pointer) and by `solve` (non-zero exit, `POINTER: message` lines on stderr); valid and
       warning-only models must be accepted by `validate` (exit 0, no errors).
 
+Always, and with --mdpserve also through `validate`:
+  (e) every example converted by scripts/model_to_arrays.py to the compact encoding validates
+      against model-arrays.schema.json (and not against model.schema.json) and is accepted by
+      `validate` (exit 0, no errors); a table of mangled arrays documents is rejected by the
+      schema with an error at or under the expected pointer and by `validate` (non-zero exit,
+      an error at or under the expected pointer); the mangled documents whose error JSON
+      Schema cannot express (lengths, index ranges, order, sums) are accepted by the schema
+      and rejected by `validate`.
+
 Prints one line per check and ends with `N passed, M failed`; exits 1 when anything failed.
 Uses only the standard library, jsonschema and the reference solvers of
 scripts/make_examples.py.
@@ -79,7 +88,7 @@ SCHEMA_BASE = "https://mdpserve.invalid/schema/"
 SCHEMA_FILES = [
     "model.schema.json", "values.schema.json", "policy.schema.json", "solution.schema.json",
     "verification.schema.json", "evaluation.schema.json", "errors.schema.json",
-    "start.schema.json", "simulation.schema.json",
+    "start.schema.json", "simulation.schema.json", "model-arrays.schema.json",
 ]
 CLI_TIMEOUT = 600  # seconds per CLI run
 
@@ -1243,6 +1252,147 @@ def check_other_documents(rep, schemas):
 
 
 # --------------------------------------------------------------------------------------------
+# Part (e): the compact (arrays) encoding, model-arrays.schema.json
+
+def _arrays_set(member, index, value):
+    def change(doc):
+        doc[member][index] = value
+    return change
+
+
+def _arrays_put(member, value):
+    def change(doc):
+        doc[member] = value
+    return change
+
+
+def _arrays_drop(member):
+    def change(doc):
+        del doc[member]
+    return change
+
+
+def _arrays_drop_last(member):
+    def change(doc):
+        doc[member].pop()
+    return change
+
+
+def _arrays_halve_first_probability(doc):
+    doc["probability"][0] = doc["probability"][0] / 2
+
+
+def _arrays_state_goes_back(doc):
+    doc["sa_state"][-1] = 0
+
+
+# (label, change, schema error at or under POINTER (None: the schema accepts it), words the
+# schema's message must contain when the pointer is the root, mdpserve error at or under).
+ARRAYS_MANGLED = [
+    ("unknown format version", _arrays_put("format", "mdpserve/model-arrays@2"), "/format", "",
+     "/format"),
+    # Read as the object encoding its format names, whose states are objects, not names.
+    ("object format string", _arrays_put("format", "mdpserve/model@1"), "/format", "",
+     "/states/0"),
+    ("probability as a string", _arrays_set("probability", 0, "0.5"), "/probability/0", "",
+     "/probability/0"),
+    ("probability above 1", _arrays_set("probability", 0, 1.5), "/probability/0", "",
+     "/probability/0"),
+    ("negative next index", _arrays_set("next", 0, -1), "/next/0", "", "/next/0"),
+    ("fractional action index", _arrays_set("sa_action", 0, 0.5), "/sa_action/0", "",
+     "/sa_action/0"),
+    ("zero outcome count", _arrays_set("sa_outcomes", 0, 0), "/sa_outcomes/0", "",
+     "/sa_outcomes"),
+    ("unknown member", _arrays_put("transitions", []), "", "'transitions'", "/transitions"),
+    ("missing next", _arrays_drop("next"), "", "'next'", "/next"),
+    ("states as an object", _arrays_put("states", {"a": 1}), "/states", "", "/states"),
+    # What only the decoder can see (lengths, ranges, order, sums): the schema accepts these.
+    ("next index out of range", lambda d: d["next"].__setitem__(0, len(d["states"])), None, "",
+     "/next/0"),
+    ("probability column shorter than next", _arrays_drop_last("probability"), None, "",
+     "/probability"),
+    ("sa_state decreases", _arrays_state_goes_back, None, "", "/sa_state"),
+    ("probabilities of row 0 sum to less than 1", _arrays_halve_first_probability, None, "",
+     "/sa_outcomes/0"),
+]
+
+
+def convert_to_arrays(rep, root, path, out):
+    """scripts/model_to_arrays.py IN OUT; returns the arrays document or None."""
+    script = os.path.join(root, "scripts", "model_to_arrays.py")
+    rc, _, err = run([sys.executable, script, "--to", "arrays", path, out], root)
+    if not rep.check("model_to_arrays.py converts %s" % os.path.basename(path), rc == 0,
+                     "exit %r; %s" % (rc, short(err))):
+        return None
+    with open(out, encoding="utf-8") as fh:
+        return json.load(fh)
+
+
+def mdpserve_errors(rep, schemas, binary, root, what, path):
+    """Runs `mdpserve validate PATH`; returns (exit code, errors document or None)."""
+    rc, out, err = run([binary, "validate", path], root)
+    if rc is None or not out.strip():
+        rep.check("%s prints an errors document" % what, False, "exit %r; %s" % (rc, short(err)))
+        return rc, None
+    return rc, validated_output(rep, schemas, what, "errors.schema.json", out)
+
+
+def check_arrays_encoding(rep, schemas, binary, root, tmp):
+    """Every example converted to the arrays encoding is accepted by model-arrays.schema.json
+    and (with a binary) by `mdpserve validate`; mangled documents are rejected by both, or,
+    for what JSON Schema cannot express, by mdpserve alone."""
+    examples = sorted(glob.glob(os.path.join(root, "api-schema", "examples", "*.json")))
+    converted = []
+    for path in examples:
+        name = os.path.basename(path)
+        out = os.path.join(tmp, "arrays-" + name)
+        doc = convert_to_arrays(rep, root, path, out)
+        if doc is None:
+            continue
+        converted.append((name, doc))
+        errs = schemas.errors("model-arrays.schema.json", doc)
+        rep.check("arrays example %s matches model-arrays.schema.json" % name, not errs,
+                  "; ".join("%s: %s" % e for e in errs[:3]))
+        rep.check("arrays example %s is not an object-encoding document" % name,
+                  bool(schemas.errors("model.schema.json", doc)), "model.schema.json accepts it")
+        if not binary:
+            continue
+        what = "validate accepts arrays example %s" % name
+        rc, result = mdpserve_errors(rep, schemas, binary, root, what, out)
+        rep.check("%s (exit 0, no errors)" % what,
+                  rc == 0 and result is not None and not result["errors"],
+                  "exit %r; errors %s" % (rc, (result or {}).get("errors", [])[:3]))
+    # Mangled variants of the first example with more than one state, each in a file.
+    base = next((doc for _, doc in converted if len(doc["states"]) > 1), None)
+    if not rep.check("an arrays example to mangle", base is not None, "none converted"):
+        return
+    for i, (label, change, schema_at, words, mdpserve_at) in enumerate(ARRAYS_MANGLED):
+        doc = copy.deepcopy(base)
+        change(doc)
+        errs = schemas.errors("model-arrays.schema.json", doc)
+        if schema_at is None:
+            rep.check("model-arrays.schema.json cannot see decoder-only error: %s" % label,
+                      not errs, "schema errors %s" % errs[:2])
+        else:
+            located = [(p, m) for p, m in errs if within(p, schema_at) and words in m]
+            rep.check("model-arrays.schema.json rejects %s" % label, bool(located),
+                      "accepted" if not errs else "no error at or under %r (%r), got %s"
+                      % (schema_at, words, errs[:3]), info="at %r" % (located or [("",)])[0][0])
+        if not binary:
+            continue
+        path = os.path.join(tmp, "arrays-bad-%02d.json" % i)
+        with open(path, "w", encoding="utf-8") as fh:
+            json.dump(doc, fh)
+        what = "validate refuses arrays document with %s" % label
+        rc, result = mdpserve_errors(rep, schemas, binary, root, what, path)
+        pointers = [e["pointer"] for e in (result or {}).get("errors", [])]
+        rep.check("%s (non-zero exit, error at or under %r)" % (what, mdpserve_at),
+                  rc not in (None, 0) and 0 < rc < 128
+                  and any(within(p, mdpserve_at) for p in pointers),
+                  "exit %r; errors at %s" % (rc, pointers[:5]))
+
+
+# --------------------------------------------------------------------------------------------
 # Part (d): the CLI
 
 def run(cmd, cwd):
@@ -2188,6 +2338,9 @@ def main():
         check_examples(rep, root, schemas)
         check_bad_models(rep, schemas)
         check_other_documents(rep, schemas)
+        binary = os.path.abspath(args.mdpserve) if args.mdpserve else None
+        with tempfile.TemporaryDirectory(prefix="mdpserve-arrays-") as tmp:
+            check_arrays_encoding(rep, schemas, binary, root, tmp)
         if args.mdpserve:
             binary = os.path.abspath(args.mdpserve)
             if rep.check("mdpserve binary is executable", os.access(binary, os.X_OK), binary):

@@ -1,9 +1,14 @@
 // Tests solver/model.{h,cc}: compiling a ModelSpec into CSR rows — order, merging of
-// repeated next states, normalisation, expected rewards, lookups.
+// repeated next states, normalisation, expected rewards, lookups — and building from
+// Validate()'s proof (solver/validate.h) without validating twice.
 #include "solver/model.h"
 
 #include <gtest/gtest.h>
 
+#include <string>
+#include <vector>
+
+#include "solver/validate.h"
 #include "tests/testing/status_matchers.h"
 #include "tests/testing/test_models.h"
 
@@ -71,6 +76,72 @@ TEST(ModelTest, InvalidSpecIsRefusedWithAReason) {
   ASSERT_FALSE(m.ok());
   EXPECT_EQ(m.status().code(), StatusCode::kInvalidArgument);
   EXPECT_NE(m.status().message().find("discount"), std::string::npos);
+}
+
+TEST(ModelTest, ValidateGivesAProofOnlyWhenItFindsNoErrorAtAll) {
+  SpecWriter good(0.9, Objective::kMaximize);
+  good.States({"s"}, {});
+  good.Action("s", "x", {{"s", 1.0}});
+  const ModelSpec spec = good.Spec();
+  const ValidationReport report = Validate(spec);
+  ASSERT_TRUE(report.proof.has_value());
+  EXPECT_TRUE(report.proof->Covers(spec));
+  Result<Model> built = BuildModel(spec, *report.proof);
+  ASSERT_OK(built);
+  EXPECT_EQ(built->num_rows(), 1);
+
+  SpecWriter bad(1.5, Objective::kMaximize);
+  bad.States({"s"}, {});
+  bad.Action("s", "x", {{"s", 1.0}});
+  const ModelSpec invalid = bad.Spec();
+  EXPECT_FALSE(Validate(invalid).proof.has_value());
+  // An error that `skip` drops is neither listed nor proof of validity.
+  ValidateOptions skip_all;
+  skip_all.skip = [](const Finding&) { return true; };
+  const ValidationReport skipped = Validate(invalid, skip_all);
+  EXPECT_TRUE(skipped.ok());
+  EXPECT_FALSE(skipped.proof.has_value());
+}
+
+TEST(ModelTest, AProofDoesNotCoverAnotherOrAResizedSpec) {
+  SpecWriter good(0.9, Objective::kMaximize);
+  good.States({"s"}, {});
+  good.Action("s", "x", {{"s", 1.0}});
+  const ModelSpec spec = good.Spec();
+  const ValidationReport report = Validate(spec);
+  ASSERT_TRUE(report.proof.has_value());
+
+  // Another (invalid) spec shown the valid one's proof is validated, and refused.
+  SpecWriter bad(0.9, Objective::kMaximize);
+  bad.States({"s"}, {});
+  bad.Action("s", "x", {{"s", 0.5}});
+  const ModelSpec invalid = bad.Spec();
+  EXPECT_FALSE(report.proof->Covers(invalid));
+  Result<Model> refused = BuildModel(invalid, *report.proof);
+  ASSERT_FALSE(refused.ok());
+  EXPECT_EQ(refused.status().code(), StatusCode::kInvalidArgument);
+
+  // The same object after an outcome was appended: no longer covered.
+  ModelSpec grown = good.Spec();
+  const ValidationReport grown_report = Validate(grown);
+  ASSERT_TRUE(grown_report.proof.has_value());
+  grown.AddOutcome(0, 0.5);
+  EXPECT_FALSE(grown_report.proof->Covers(grown));
+  EXPECT_FALSE(BuildModel(grown, *grown_report.proof).ok());
+}
+
+TEST(ModelTest, FindStateFindsEveryNameOfALargeModel) {
+  SpecWriter w(0.9, Objective::kMaximize);
+  std::vector<std::string> names;
+  for (int i = 0; i < 5000; ++i) names.push_back("state-" + std::to_string(i * 7919 % 5000));
+  w.States(names, {});
+  for (const std::string& name : names) w.Action(name, "stay", {{name, 1.0}});
+  const Model m = w.Build();
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    ASSERT_EQ(m.FindState(names[s]), std::optional<StateId>(s)) << names[s];
+  }
+  EXPECT_FALSE(m.FindState("state-5000").has_value());
+  EXPECT_FALSE(m.FindState("").has_value());
 }
 
 }  // namespace
