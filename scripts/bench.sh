@@ -16,7 +16,8 @@
 #   --out          report path (default BENCHMARKS.md at the repository root)
 #
 # Environment (optional): BENCH_STATES, BENCH_STRUCTURES ("random local local_shuffled grid
-# inventory"), BENCH_SOLVE_STRUCTURE (local), BENCH_METHODS, BENCH_SWEEPS (least number of
+# inventory"), BENCH_SOLVE_STRUCTURE (local), BENCH_METHODS, BENCH_EXTRA_SOLVE_STRUCTURES
+# ("random grid inventory": also solved, with BENCH_EXTRA_METHODS), BENCH_SWEEPS (least number of
 # timed sweeps per configuration; more are timed until 0.5 s has passed),
 # BENCH_INGEST_STATES (100000), BENCH_MEMORY_STATES (service_memory.py's model; default the
 # run's state count), BENCH_BUILD_TYPE (RelWithDebInfo, as the default build),
@@ -51,6 +52,10 @@ SOLVE_STRUCTURE=${BENCH_SOLVE_STRUCTURE:-local}
 DEFAULT_METHODS=value_iteration,value_iteration:1,gauss_seidel,policy_iteration
 DEFAULT_METHODS+=,modified_policy_iteration
 METHODS=${BENCH_METHODS:-$DEFAULT_METHODS}
+# The other structures are solved too, by fewer methods (no numpy baseline), so that the
+# methods' ranking is seen beyond the local model.
+EXTRA_SOLVE_STRUCTURES=${BENCH_EXTRA_SOLVE_STRUCTURES-random grid inventory}
+EXTRA_METHODS=${BENCH_EXTRA_METHODS:-value_iteration,policy_iteration,gauss_seidel}
 INGEST_STATES=${BENCH_INGEST_STATES:-100000}
 MEMORY_STATES=${BENCH_MEMORY_STATES:-$STATES}
 STARTED=$(date +%s)
@@ -90,12 +95,17 @@ for structure in $STRUCTURES; do
   # The probe runs next to each model's sweeps, so both see the same load on a shared machine.
   say "$structure: read-bandwidth probe"
   run "$BIN/solver_bench" probe --bytes=1073741824 --repetitions=5 >"$WORK/probe-$structure.json"
-  solves=() solve=()
+  solves=() solve=() methods=
   if [[ $structure == "$SOLVE_STRUCTURE" ]]; then
-    solves=(--methods="$METHODS" --tolerance=1e-6 --time-limit="$TIME_LIMIT")
+    methods=$METHODS
     solve=(--solve --tolerance 1e-6 --time-limit "$TIME_LIMIT")
+  elif [[ " $EXTRA_SOLVE_STRUCTURES " == *" $structure "* ]]; then
+    methods=$EXTRA_METHODS
   fi
-  say "$structure: $STATES states${solves:+, solves: $METHODS}"
+  if [[ -n $methods ]]; then
+    solves=(--methods="$methods" --tolerance=1e-6 --time-limit="$TIME_LIMIT")
+  fi
+  say "$structure: $STATES states${methods:+, solves: $methods}"
   run "$BIN/solver_bench" model --structure="$structure" --states="$STATES" --sweeps="$SWEEPS" \
     "${solves[@]}" --write-arrays="$WORK/arrays-$structure" >"$WORK/model-$structure.json"
   say "$structure: numpy/scipy baseline"

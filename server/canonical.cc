@@ -5,6 +5,8 @@
 #include <charconv>
 #include <cmath>
 #include <cstdio>
+#include <limits>
+#include <memory>
 
 namespace mdp::server {
 
@@ -84,11 +86,21 @@ void AppendCriterion(std::string& out, const ModelSpec& spec) {
   out += '}';
 }
 
-}  // namespace
-
-std::string EncodeCanonicalModel(const ModelSpec& spec) {
+std::string HexDigits(const unsigned char* bytes, unsigned int length) {
+  static constexpr char kHex[] = "0123456789abcdef";
   std::string out;
-  out.reserve(static_cast<size_t>(spec.num_outcomes()) * 48 + 4096);
+  for (unsigned int i = 0; i < length; ++i) {
+    out += kHex[bytes[i] >> 4];
+    out += kHex[bytes[i] & 15];
+  }
+  return out;
+}
+
+// Writes the canonical text of `spec` into `out`, handing it to `flush` (which empties it)
+// whenever it grows past `flush_bytes`, and once more at the end.
+template <typename Flush>
+void WriteCanonicalModel(const ModelSpec& spec, std::string& out, size_t flush_bytes,
+                         Flush&& flush) {
   out += "{\"actions\":[";
   for (size_t a = 0; a < spec.action_names.size(); ++a) {
     if (a) out += ',';
@@ -136,22 +148,47 @@ std::string EncodeCanonicalModel(const ModelSpec& spec) {
     out += ",\"terminal\":";
     out += spec.terminal[s] ? "true" : "false";
     out += '}';
+    if (out.size() >= flush_bytes) flush(out);
   }
   out += "]}";
+  flush(out);
+}
+
+}  // namespace
+
+std::string EncodeCanonicalModel(const ModelSpec& spec) {
+  std::string out;
+  out.reserve(static_cast<size_t>(spec.num_outcomes()) * 48 + 4096);
+  WriteCanonicalModel(spec, out, std::numeric_limits<size_t>::max(), [](std::string&) {});
   return out;
+}
+
+// The same bytes as ModelId(EncodeCanonicalModel(spec)), hashed a piece at a time so the
+// text (2.4 GB at 1M states x 4 actions x 8 outcomes) never exists whole.
+std::string CanonicalModelId(const ModelSpec& spec) {
+  constexpr size_t kPieceBytes = size_t{1} << 20;
+  std::unique_ptr<EVP_MD_CTX, decltype(&EVP_MD_CTX_free)> context(EVP_MD_CTX_new(),
+                                                                   &EVP_MD_CTX_free);
+  if (context == nullptr || EVP_DigestInit_ex(context.get(), EVP_sha256(), nullptr) != 1) {
+    return ModelId(EncodeCanonicalModel(spec));
+  }
+  std::string piece;
+  piece.reserve(kPieceBytes + 4096);
+  WriteCanonicalModel(spec, piece, kPieceBytes, [&](std::string& text) {
+    EVP_DigestUpdate(context.get(), text.data(), text.size());
+    text.clear();
+  });
+  unsigned char digest[EVP_MAX_MD_SIZE];
+  unsigned int length = 0;
+  EVP_DigestFinal_ex(context.get(), digest, &length);
+  return HexDigits(digest, length).substr(0, 32);
 }
 
 std::string Sha256Hex(std::string_view bytes) {
   unsigned char digest[EVP_MAX_MD_SIZE];
   unsigned int length = 0;
   EVP_Digest(bytes.data(), bytes.size(), digest, &length, EVP_sha256(), nullptr);
-  static constexpr char kHex[] = "0123456789abcdef";
-  std::string out;
-  for (unsigned int i = 0; i < length; ++i) {
-    out += kHex[digest[i] >> 4];
-    out += kHex[digest[i] & 15];
-  }
-  return out;
+  return HexDigits(digest, length);
 }
 
 std::string ModelId(std::string_view canonical_document) {

@@ -22,6 +22,9 @@ std::string Sha256Hex(std::string_view bytes);
 
 // A model's id: the first 32 hex digits (128 bits) of the SHA-256 of its canonical text.
 std::string ModelId(std::string_view canonical_document);
+// ModelId(EncodeCanonicalModel(spec)), without holding the whole text: it is hashed in
+// pieces of 1 MiB. REQUIRES: `spec` passed Validate().
+std::string CanonicalModelId(const ModelSpec& spec);
 
 // Appends `text` as a JSON string literal (quotes and escapes included).
 void AppendJsonString(std::string& out, std::string_view text);

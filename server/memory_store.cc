@@ -41,6 +41,9 @@ struct Entry {
 
 class MemoryStore final : public Store {
  public:
+  explicit MemoryStore(int64_t max_value_bytes) : max_value_bytes_(max_value_bytes) {}
+
+  int64_t MaxValueBytes() override { return max_value_bytes_; }
   Status PutModel(const ModelRecord& model, bool* created) override;
   Result<ModelRecord> GetModel(const std::string& id, bool with_document) override;
   Result<std::vector<ModelRecord>> ListModels() override;
@@ -56,6 +59,10 @@ class MemoryStore final : public Store {
  private:
   // REQUIRES mu_ held.
   Status RequireModel(const std::string& model_id, std::string_view operation) const;
+  // kResourceExhausted iff `blob` is over max_value_bytes_.
+  Status CheckSize(std::string_view blob, std::string_view operation) const;
+
+  const int64_t max_value_bytes_;
 
   mutable std::mutex mu_;
   int64_t next_seq_ = 1;                                    // GUARDED_BY(mu_).
@@ -85,7 +92,15 @@ Status MemoryStore::RequireModel(const std::string& model_id, std::string_view o
                                  " is not stored");
 }
 
+Status MemoryStore::CheckSize(std::string_view blob, std::string_view operation) const {
+  if (static_cast<int64_t>(blob.size()) <= max_value_bytes_) return Status::Ok();
+  return ResourceExhaustedError("store: " + std::string(operation) + ": " +
+                                std::to_string(blob.size()) + " bytes is over the store's limit of " +
+                                std::to_string(max_value_bytes_));
+}
+
 Status MemoryStore::PutModel(const ModelRecord& model, bool* created) {
+  MDP_RETURN_IF_ERROR(CheckSize(model.document, "put model " + model.id));
   return NoThrow("put model " + model.id, [&]() -> Status {
     std::lock_guard<std::mutex> lock(mu_);
     *created = models_.count(model.id) == 0;
@@ -127,6 +142,7 @@ Status MemoryStore::DeleteModel(const std::string& id) {
 
 Status MemoryStore::PutSolution(const SolutionRecord& solution) {
   const std::string operation = "put solution " + solution.id;
+  MDP_RETURN_IF_ERROR(CheckSize(solution.data, operation));
   return NoThrow(operation, [&]() -> Status {
     std::lock_guard<std::mutex> lock(mu_);
     MDP_RETURN_IF_ERROR(RequireModel(solution.model_id, operation));
@@ -201,6 +217,8 @@ Result<std::vector<JobRecord>> MemoryStore::ListJobs(const std::string& model_id
 
 }  // namespace
 
-std::unique_ptr<Store> NewMemoryStore() { return std::make_unique<MemoryStore>(); }
+std::unique_ptr<Store> NewMemoryStore(int64_t max_value_bytes) {
+  return std::make_unique<MemoryStore>(max_value_bytes);
+}
 
 }  // namespace mdp::server

@@ -12,6 +12,7 @@
 #include "server/api_codec.h"
 #include "server/canonical.h"
 #include "server/json_codec.h"
+#include "server/model_store_codec.h"
 #include "server/solution_blob.h"
 
 namespace mdp::server {
@@ -74,6 +75,26 @@ class ReturnFreedMemoryAtExit {
  private:
   const bool enabled_;
 };
+
+// Compiles a stored model record: the binary form (model_store_codec.h), or the canonical
+// JSON text that records written before it hold. The record is released once decoded.
+Result<Model> CompileStoredModel(const std::string& model_id, std::string record,
+                                 const DecodeLimits& limits) {
+  if (IsStoredModelText(record)) {
+    ModelDecodeResult decoded = DecodeModel(record, limits);
+    if (!decoded.ok()) return InternalError("stored model " + model_id + " no longer decodes");
+    return std::move(*decoded.model);
+  }
+  Result<ModelSpec> spec = DecodeStoredModel(record);
+  std::string().swap(record);
+  if (!spec.ok()) return InternalError("model " + model_id + ": " + spec.status().message());
+  Result<Model> model = BuildModel(*spec);
+  if (!model.ok()) {
+    return InternalError("stored model " + model_id + " no longer compiles: " +
+                         model.status().message());
+  }
+  return model;
+}
 
 // Uploads from this size on are large enough for ReturnFreedMemory() to be worth its time.
 constexpr size_t kTrimAfterUploadBytes = size_t{16} << 20;
@@ -184,9 +205,17 @@ Result<UploadResult> PlanningService::UploadModel(std::string_view document) {
     return result;
   }
   ModelRecord record;
-  record.document = EncodeCanonicalModel(decoded.spec);
+  record.id = CanonicalModelId(decoded.spec);
+  Result<std::string> stored = EncodeStoredModel(decoded.spec);
+  if (!stored.ok()) return stored.status();
+  record.document = std::move(*stored);
   decoded.spec = ModelSpec();
-  record.id = ModelId(record.document);
+  if (static_cast<int64_t>(record.document.size()) > store_.MaxValueBytes()) {
+    result.too_large = "the model's stored form of " + std::to_string(record.document.size()) +
+                       " bytes is over the store's limit of " +
+                       std::to_string(store_.MaxValueBytes()) + " bytes";
+    return result;
+  }
   const Model& m = *decoded.model;
   record.name = m.name();
   record.states = m.num_states();
@@ -209,7 +238,15 @@ Result<UploadResult> PlanningService::UploadModel(std::string_view document) {
 }
 
 Result<ModelRecord> PlanningService::GetModel(const std::string& id, bool with_document) {
-  return store_.GetModel(id, with_document);
+  Result<ModelRecord> record = store_.GetModel(id, with_document);
+  if (!record.ok() || !with_document || IsStoredModelText(record->document)) return record;
+  // The store keeps the binary form; the canonical text is made again from it, byte for
+  // byte the text the id was computed from (the round trip keeps every bit).
+  Result<ModelSpec> spec = DecodeStoredModel(record->document);
+  if (!spec.ok()) return InternalError("model " + id + ": " + spec.status().message());
+  std::string().swap(record->document);
+  record->document = EncodeCanonicalModel(*spec);
+  return record;
 }
 
 Result<std::vector<ModelRecord>> PlanningService::ListModels() { return store_.ListModels(); }
@@ -526,9 +563,10 @@ Result<std::shared_ptr<const Model>> PlanningService::LoadModel(const std::strin
   if (auto model = cache_.GetModel(model_id)) return model;
   Result<ModelRecord> record = store_.GetModel(model_id, true);
   if (!record.ok()) return record.status();
-  ModelDecodeResult decoded = DecodeModel(record->document, options_.limits);
-  if (!decoded.ok()) return InternalError("stored model " + model_id + " no longer decodes");
-  auto model = std::make_shared<const Model>(std::move(*decoded.model));
+  Result<Model> compiled = CompileStoredModel(model_id, std::move(record->document),
+                                              options_.limits);
+  if (!compiled.ok()) return compiled.status();
+  auto model = std::make_shared<const Model>(std::move(*compiled));
   cache_.PutModel(model_id, model);
   return model;
 }

@@ -47,6 +47,9 @@ struct UploadResult {
   int64_t errors_not_listed = 0;
   bool malformed = false;              // With errors: the body is not JSON at all.
   std::vector<DocumentIssue> warnings;
+  // Non-empty: the model is valid but its stored form is over the store's size limit; says
+  // by how much. Nothing was stored.
+  std::string too_large;
 };
 
 // A job as seen by callers: the record plus live progress while it runs.
@@ -104,6 +107,8 @@ class PlanningService {
 
   // Models.
   Result<UploadResult> UploadModel(std::string_view document);
+  // `with_document`: `document` is the canonical model text (canonical.h), whatever form
+  // the store keeps it in; kInternal if the stored record is corrupt.
   Result<ModelRecord> GetModel(const std::string& id, bool with_document);
   Result<std::vector<ModelRecord>> ListModels();
   Status DeleteModel(const std::string& id);

@@ -65,6 +65,10 @@ void UploadModel(HttpContext& ctx, const Request& req, Response& res) {
   if (!RequireJsonBody(req, res)) return;
   Result<UploadResult> upload = ctx.service.UploadModel(req.body);
   if (!upload.ok()) return WriteProblem(res, upload.status());
+  if (!upload->too_large.empty()) {
+    return WriteProblem(res, MakeProblem(ResourceExhaustedError(upload->too_large),
+                                         ProblemKind::kPayloadTooLarge));
+  }
   if (!upload->errors.empty()) {
     const int64_t count = static_cast<int64_t>(upload->errors.size()) + upload->errors_not_listed;
     return WriteProblem(

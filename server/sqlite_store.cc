@@ -239,6 +239,7 @@ class SqliteStore final : public Store {
   // OpenSqliteStore, before the store is shared.
   Status Configure();
 
+  int64_t MaxValueBytes() override;
   Status PutModel(const ModelRecord& model, bool* created) override;
   Result<ModelRecord> GetModel(const std::string& id, bool with_document) override;
   Result<std::vector<ModelRecord>> ListModels() override;
@@ -404,6 +405,13 @@ Status SqliteStore::CheckBlobSize(std::string_view blob, std::string_view what,
   return ResourceExhaustedError("store: " + std::string(operation) + ": " + std::string(what) +
                                 " of " + std::to_string(blob.size()) +
                                 " bytes is over the store's limit of " + std::to_string(limit));
+}
+
+// SQLite's largest string or BLOB (SQLITE_LIMIT_LENGTH) is one more than the largest value
+// CheckBlobSize lets through.
+int64_t SqliteStore::MaxValueBytes() {
+  std::lock_guard<std::mutex> lock(mu_);
+  return static_cast<int64_t>(sqlite3_limit(db_, SQLITE_LIMIT_LENGTH, -1)) - 1;
 }
 
 Status SqliteStore::PutModel(const ModelRecord& model, bool* created) {

@@ -2,11 +2,13 @@
 // (and a kill -9). Implementations: SqliteStore (default; WAL mode, one transaction per
 // change) and MemoryStore (tests). All methods are thread-safe; every call is one atomic
 // change. Records are plain values; the caller owns what is returned.
-// The solution blob format is described in solution_blob.h.
+// The model record format is described in model_store_codec.h, the solution blob format in
+// solution_blob.h; the store keeps both as opaque bytes.
 #ifndef MDP_SERVER_STORE_H_
 #define MDP_SERVER_STORE_H_
 
 #include <cstdint>
+#include <limits>
 #include <memory>
 #include <optional>
 #include <string>
@@ -26,7 +28,9 @@ struct ModelRecord {
   int64_t outcomes = 0;
   std::string warnings_json;  // JSON array of {pointer, message}.
   std::string created_at;     // RFC 3339 UTC.
-  std::string document;       // Canonical model document (JSON text); empty in listings.
+  // The stored model: the binary form of model_store_codec.h, or in records written before
+  // it, the canonical model document (JSON text). Empty in listings.
+  std::string document;
 };
 
 struct SolutionRecord {
@@ -55,6 +59,10 @@ struct JobRecord {
 class Store {
  public:
   virtual ~Store() = default;
+
+  // The largest model document or solution blob the store accepts, in bytes. PutModel and
+  // PutSolution refuse a larger one with kResourceExhausted.
+  virtual int64_t MaxValueBytes() = 0;
 
   // Inserts the model unless one with the same id exists. Sets *created to whether it was
   // inserted. Models are immutable: an existing record is left as it is.
@@ -88,8 +96,10 @@ class Store {
 
 // Opens (creating if needed) the SQLite store in `directory` (created if missing).
 Result<std::unique_ptr<Store>> OpenSqliteStore(const std::string& directory);
-// A store that lives in memory only; for tests.
-std::unique_ptr<Store> NewMemoryStore();
+// A store that lives in memory only; for tests. It refuses documents and blobs over
+// `max_value_bytes` (by default no limit but memory).
+std::unique_ptr<Store> NewMemoryStore(
+    int64_t max_value_bytes = std::numeric_limits<int64_t>::max());
 
 std::string_view JobStatusName(JobStatus status);  // "queued", "running", ...
 std::optional<JobStatus> ParseJobStatus(std::string_view name);

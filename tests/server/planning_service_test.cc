@@ -10,6 +10,8 @@
 
 #include "server/api_codec.h"
 #include "server/canonical.h"
+#include "server/model_codec.h"
+#include "server/model_store_codec.h"
 #include "tests/testing/documents.h"
 
 namespace mdp::server {
@@ -266,6 +268,92 @@ TEST_F(PlanningServiceTest, LargeModelsVerifyAsAJob) {
   const JobView done = WaitForEnd(service, v->job->record.id);
   ASSERT_EQ(done.record.status, JobStatus::kSucceeded) << done.record.error;
   EXPECT_EQ(Json::parse(done.record.result_json)["verdict"], "pass");
+}
+
+// The store keeps the binary form (model_store_codec.h); the document route still gets the
+// canonical text the id was computed from.
+TEST_F(PlanningServiceTest, StoresTheBinaryFormAndServesTheCanonicalText) {
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  Result<UploadResult> up = service.UploadModel(kGreenhouse);
+  ASSERT_TRUE(up.ok() && up->errors.empty());
+  Result<ModelRecord> raw = store_->GetModel(up->record.id, true);
+  ASSERT_TRUE(raw.ok());
+  EXPECT_FALSE(IsStoredModelText(raw->document));
+  EXPECT_TRUE(DecodeStoredModel(raw->document).ok());
+  Result<ModelRecord> served = service.GetModel(up->record.id, true);
+  ASSERT_TRUE(served.ok());
+  ModelDecodeResult decoded = DecodeModel(kGreenhouse);
+  ASSERT_TRUE(decoded.ok());
+  EXPECT_EQ(served->document, EncodeCanonicalModel(decoded.spec));
+  EXPECT_EQ(ModelId(served->document), up->record.id);
+}
+
+// A record written before the binary form holds the canonical JSON text: it still solves,
+// and its document is served as it is.
+TEST_F(PlanningServiceTest, OldTextRecordsStillLoad) {
+  ModelDecodeResult decoded = DecodeModel(kGreenhouse);
+  ASSERT_TRUE(decoded.ok());
+  ModelRecord old;
+  old.document = EncodeCanonicalModel(decoded.spec);
+  old.id = ModelId(old.document);
+  old.name = decoded.spec.name;
+  old.warnings_json = "[]";
+  bool created = false;
+  ASSERT_TRUE(store_->PutModel(old, &created).ok());
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  EXPECT_EQ(service.GetModel(old.id, true)->document, old.document);
+  Result<SolveStart> start = service.StartSolve(old.id, SolveOptions{});
+  ASSERT_TRUE(start.ok() && start->job.has_value());
+  const JobView done = WaitForEnd(service, start->job->record.id);
+  ASSERT_EQ(done.record.status, JobStatus::kSucceeded) << done.record.error;
+  Result<Plan> plan = service.GetPlan(old.id, "");
+  ASSERT_TRUE(plan.ok());
+  // By hand (tests/testing/documents.h): V(wet) = 10.
+  EXPECT_NEAR(plan->solution->values[*plan->model->FindState("wet")], 10.0, 1e-9);
+  // Uploading the same model now finds the old record under the same id.
+  Result<UploadResult> again = service.UploadModel(kGreenhouse);
+  ASSERT_TRUE(again.ok());
+  EXPECT_FALSE(again->created);
+  EXPECT_EQ(again->record.id, old.id);
+}
+
+TEST_F(PlanningServiceTest, CorruptRecordsAreReportedNotCrashedOn) {
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  ModelRecord bad;
+  bad.id = "corrupt";
+  bad.warnings_json = "[]";
+  Result<UploadResult> up = service.UploadModel(kGreenhouse);
+  ASSERT_TRUE(up.ok());
+  bad.document = store_->GetModel(up->record.id, true)->document;
+  bad.document[bad.document.size() / 2] ^= 0x10;
+  bool created = false;
+  ASSERT_TRUE(store_->PutModel(bad, &created).ok());
+  Result<ModelRecord> served = service.GetModel("corrupt", true);
+  EXPECT_EQ(served.status().code(), StatusCode::kInternal);
+  EXPECT_NE(served.status().message().find("checksum"), std::string::npos)
+      << served.status().message();
+  Result<SolveStart> start = service.StartSolve("corrupt", SolveOptions{});
+  ASSERT_TRUE(start.ok() && start->job.has_value());
+  const JobView done = WaitForEnd(service, start->job->record.id);
+  EXPECT_EQ(done.record.status, JobStatus::kFailed);
+  EXPECT_NE(done.record.error.find("corrupt"), std::string::npos) << done.record.error;
+}
+
+// A valid model whose stored form is over the store's largest value is refused as too large
+// (413 at the HTTP layer), not as a full queue, and nothing is stored.
+TEST(PlanningServiceLimitsTest, ModelsOverTheStoresLimitAreTooLarge) {
+  std::unique_ptr<Store> store = NewMemoryStore(64);
+  PlanningService service(*store, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  Result<UploadResult> up = service.UploadModel(kGreenhouse);
+  ASSERT_TRUE(up.ok()) << up.status().ToString();
+  EXPECT_TRUE(up->errors.empty());
+  EXPECT_NE(up->too_large.find("over the store's limit of 64 bytes"), std::string::npos)
+      << up->too_large;
+  EXPECT_TRUE(service.ListModels()->empty());
 }
 
 }  // namespace

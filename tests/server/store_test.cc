@@ -25,7 +25,10 @@
 #include <utility>
 #include <vector>
 
+#include "server/canonical.h"
+#include "server/model_store_codec.h"
 #include "tests/testing/status_matchers.h"
+#include "tests/testing/test_models.h"
 
 namespace mdp::server {
 namespace {
@@ -469,6 +472,54 @@ TEST_F(SqliteStoreTest, DatabaseIsInWalModeAtSchemaVersionOne) {
   ASSERT_NE(Open(), nullptr);  // Reopening an up-to-date database migrates nothing.
   EXPECT_EQ(QueryDatabase(DatabasePath(), "PRAGMA journal_mode"), "wal");
   EXPECT_EQ(QueryDatabase(DatabasePath(), "PRAGMA user_version"), "1");
+}
+
+// A model in the binary stored form (model_store_codec.h) goes in and comes back through a
+// closed and reopened database byte for byte, and decodes to the spec it was made from.
+TEST_F(SqliteStoreTest, BinaryModelRecordSurvivesReopening) {
+  testing::RandomModelOptions options;
+  options.states = 300;
+  const ModelSpec spec = testing::RandomSpec(5, options);
+  Result<std::string> encoded = EncodeStoredModel(spec);
+  ASSERT_OK(encoded);
+  ModelRecord model = MakeModel(CanonicalModelId(spec), *encoded);
+  {
+    std::unique_ptr<Store> store = Open();
+    ASSERT_NE(store, nullptr);
+    bool created = false;
+    ASSERT_OK(store->PutModel(model, &created));
+    EXPECT_TRUE(created);
+  }
+  std::unique_ptr<Store> store = Open();
+  ASSERT_NE(store, nullptr);
+  Result<ModelRecord> stored = store->GetModel(model.id, true);
+  ASSERT_OK(stored);
+  EXPECT_EQ(Fields(*stored), Fields(model));
+  ASSERT_TRUE(stored->document == *encoded) << "the record's bytes changed";
+  Result<ModelSpec> back = DecodeStoredModel(stored->document);
+  ASSERT_OK(back);
+  EXPECT_EQ(EncodeCanonicalModel(*back), EncodeCanonicalModel(spec));
+  EXPECT_EQ(back->outcome_probability, spec.outcome_probability);
+}
+
+// Debian's SQLite: strings and BLOBs up to 1e9 bytes (SQLITE_MAX_LENGTH).
+TEST_F(SqliteStoreTest, ReportsSqlitesLargestValue) {
+  std::unique_ptr<Store> store = Open();
+  ASSERT_NE(store, nullptr);
+  EXPECT_EQ(store->MaxValueBytes(), 999'999'999);
+}
+
+TEST(MemoryStoreTest, RefusesValuesOverItsLimit) {
+  std::unique_ptr<Store> store = NewMemoryStore(10);
+  EXPECT_EQ(store->MaxValueBytes(), 10);
+  bool created = false;
+  EXPECT_OK(store->PutModel(MakeModel("fits", std::string(10, 'x')), &created));
+  EXPECT_TRUE(created);
+  const Status over = store->PutModel(MakeModel("over", std::string(11, 'x')), &created);
+  EXPECT_EQ(over.code(), StatusCode::kResourceExhausted) << over.ToString();
+  EXPECT_EQ(store->GetModel("over", false).status().code(), StatusCode::kNotFound);
+  EXPECT_EQ(store->PutSolution(MakeSolution("s", "fits", std::string(11, 'x'))).code(),
+            StatusCode::kResourceExhausted);
 }
 
 TEST_F(SqliteStoreTest, RefusesADatabaseFromANewerBuild) {
