@@ -422,6 +422,8 @@ def service_memory_section(run):
                if refused else
                f"solved with value iteration to tolerance {m['tolerance']:g} (upload "
                f"{secs(m['upload_seconds'])}, solve job {secs(m['solve_seconds'])})."), "",
+           *([f"**Measured apart from the run:** {m['measured_apart']}", ""]
+             if m.get("measured_apart") else []),
            "*Raw bytes* are the arrays the solver needs, each element once in binary: per "
            "outcome next state (4 B) and probability (8 B); per row action (4 B), expected "
            "reward (8 B) and first-outcome offset (8 B); per state the first-row offset (8 B); "
