@@ -45,6 +45,13 @@ constexpr StateId kDirectMaxStates = 3000;
 // from; tightened when an improvement fails to shrink the residual enough.
 constexpr double kEvaluationShare = 0.02;
 
+// Most work one evaluation may spend (passes over the policy's rows, policy_matrix.h); the
+// next improvement then starts from where it got. Policies of a 200,000-state grid with slip
+// changed for 30 improvements while each evaluation took up to ~200 units: capped at 100,
+// the whole solve needed 2,815 units instead of 5,616, with the same improvements; local
+// (also shuffled), random and inventory models spent the same work either way (solver_bench).
+constexpr double kMaxEvaluationWork = 100.0;
+
 // Policy iteration with inexact evaluation (the inexact Newton view of policy iteration,
 // common practice): after each greedy improvement with Bellman residual e, the new policy's
 // values are solved only until their own residual is below kEvaluationShare * e, warm
@@ -80,7 +87,8 @@ Solution InexactPolicyIteration(const Model& m, const SolveOptions& options,
     // u = T v = T_pi v is one policy sweep ahead of v: the warm start.
     policy.Assign(m, rows.data(), threads);
     const internal::EvaluationResult r = internal::SolvePolicyValues(
-        policy, std::max(0.5 * target, share * e), 1e15, threads, interrupted, plan, u);
+        policy, std::max(0.5 * target, share * e), kMaxEvaluationWork, threads, interrupted, plan,
+        u);
     solution.sweeps += static_cast<int64_t>(std::ceil(r.work));
     v.swap(u);
     const double next = internal::GreedySweep(m, v.data(), u.data(), rows.data(), threads);
