@@ -13,6 +13,8 @@
 #include <utility>
 #include <vector>
 
+#include "server/byte_reader.h"
+
 namespace mdp::server {
 namespace {
 
@@ -198,27 +200,11 @@ void PutPayload(const ModelSpec& spec, Writer& w) {
   w.PutColumn(c.terminal_values);
 }
 
-// Reads from an untrusted payload. Every Get checks the bytes left before it copies or
-// allocates, so a lying count fails here instead of reaching the allocator.
-class Reader {
+// Reads the payload's own forms (texts, columns, packed indices) on top of ByteReader's
+// bounds-checked values and arrays.
+class Reader : public ByteReader {
  public:
-  explicit Reader(std::string_view in) : in_(in) {}
-  template <typename T>
-  bool Get(T* value) {
-    if (in_.size() < sizeof(T)) return false;
-    std::memcpy(value, in_.data(), sizeof(T));
-    in_.remove_prefix(sizeof(T));
-    return true;
-  }
-  template <typename T>
-  bool GetArray(std::vector<T>* values, int64_t count) {
-    if (count < 0 || static_cast<uint64_t>(count) > in_.size() / sizeof(T)) return false;
-    const size_t bytes = static_cast<size_t>(count) * sizeof(T);
-    values->resize(static_cast<size_t>(count));
-    if (bytes > 0) std::memcpy(values->data(), in_.data(), bytes);
-    in_.remove_prefix(bytes);
-    return true;
-  }
+  using ByteReader::ByteReader;
   bool GetText(std::string* text) {
     uint32_t n = 0;
     if (!Get(&n) || n > in_.size()) return false;
@@ -261,7 +247,6 @@ class Reader {
                               });
     return ok && sum == total;
   }
-  bool AtEnd() const { return in_.empty(); }
 
  private:
   // Reads the width, checks the bytes left, calls size(count) once, then put(i, value) for
@@ -283,8 +268,6 @@ class Reader {
     in_.remove_prefix(static_cast<size_t>(count) * width);
     return true;
   }
-
-  std::string_view in_;
 };
 
 Status Corrupt(const std::string& what) {

@@ -3,6 +3,8 @@
 #include <cstring>
 #include <type_traits>
 
+#include "server/byte_reader.h"
+
 namespace mdp::server {
 namespace {
 
@@ -46,35 +48,15 @@ class Writer {
   std::string out_;
 };
 
-class Reader {
+class Reader : public ByteReader {
  public:
-  explicit Reader(std::string_view in) : in_(in) {}
-  template <typename T>
-  bool Get(T* value) {
-    if (in_.size() < sizeof(T)) return false;
-    std::memcpy(value, in_.data(), sizeof(T));
-    in_.remove_prefix(sizeof(T));
-    return true;
-  }
-  template <typename T>
-  bool GetArray(std::vector<T>* values, int64_t count) {
-    const size_t bytes = static_cast<size_t>(count) * sizeof(T);
-    if (count < 0 || in_.size() < bytes) return false;
-    values->resize(static_cast<size_t>(count));
-    if (bytes > 0) std::memcpy(values->data(), in_.data(), bytes);  // data() may be null at 0.
-    in_.remove_prefix(bytes);
-    return true;
-  }
-  bool AtEnd() const { return in_.empty(); }
+  using ByteReader::ByteReader;
   // A length-prefixed array of at most `max` elements.
   template <typename T>
   bool GetCounted(std::vector<T>* values, int64_t max) {
     int64_t count = 0;
     return Get(&count) && count >= 0 && count <= max && GetArray(values, count);
   }
-
- private:
-  std::string_view in_;
 };
 
 // Version 2 appends: u32 criterion; average: f64 gain, gain_lower, gain_upper,
