@@ -152,24 +152,35 @@ class SparseSolver {
   }
 
   // Refinement rounds: each solves for the correction against the true residual, so drift
-  // in BiCGSTAB's recursive residual cannot hide error. Sets `reached`.
+  // in BiCGSTAB's recursive residual cannot hide error. A round runs at most kChunk
+  // iterations, so that cancellation is seen within about kChunk products (a 100,000-state
+  // slowly mixing ring once ran minutes inside one round); rounds go on while the true
+  // residual keeps shrinking. Sets `reached`.
   Status Krylov(const Vector& b, double target, const CancelToken* cancel, Vector& x,
                 bool& reached) {
     if (x.size() != b.size() || !x.allFinite()) x = Vector::Zero(b.size());
     constexpr int64_t kMaxIterations = 100000;
+    constexpr int64_t kChunk = 500;
     int64_t spent = 0;
-    for (int round = 0;; ++round) {
+    int stalls = 0;
+    double last = std::numeric_limits<double>::infinity();
+    for (;;) {
       if (cancel != nullptr && cancel->cancelled()) {
         return Status(StatusCode::kCancelled, "cancelled during policy evaluation");
       }
       const Vector residual = b - a_ * x;
       const double aim = std::max(target, 1e-13 * x.lpNorm<Eigen::Infinity>());
-      reached = residual.allFinite() && residual.lpNorm<Eigen::Infinity>() <= aim;
-      if (reached || round == 6 || spent >= kMaxIterations || !residual.allFinite()) break;
+      const double sup = residual.lpNorm<Eigen::Infinity>();
+      reached = residual.allFinite() && sup <= aim;
+      if (reached || spent >= kMaxIterations || !residual.allFinite()) break;
+      // Six rounds without halving the residual: BiCGSTAB is not getting there.
+      stalls = sup < 0.5 * last ? 0 : stalls + 1;
+      if (stalls >= 6) break;
+      last = std::min(last, sup);
       krylov_.setTolerance(std::max(1e-16, std::min(0.5, 0.5 * aim / residual.norm())));
-      krylov_.setMaxIterations(kMaxIterations - spent);
+      krylov_.setMaxIterations(std::min(kChunk, kMaxIterations - spent));
       const Vector correction = krylov_.solveWithGuess(residual, Vector::Zero(b.size()));
-      spent += krylov_.iterations();
+      spent += std::max<int64_t>(1, krylov_.iterations());
       if (!correction.allFinite()) break;
       x += correction;
     }
