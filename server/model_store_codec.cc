@@ -13,7 +13,7 @@
 #include <utility>
 #include <vector>
 
-#include "server/byte_reader.h"
+#include "server/byte_io.h"
 
 namespace mdp::server {
 namespace {
@@ -65,20 +65,9 @@ bool IsConstant(const std::vector<double>& column) {
   return true;
 }
 
-class Writer {
+class Writer : public ByteWriter {
  public:
-  explicit Writer(size_t capacity) { out_.reserve(capacity); }
-  template <typename T>
-  void Put(T value) {
-    static_assert(std::is_trivially_copyable_v<T>);
-    out_.append(reinterpret_cast<const char*>(&value), sizeof value);
-  }
-  template <typename T>
-  void PutArray(const std::vector<T>& values) {
-    if (!values.empty()) {
-      out_.append(reinterpret_cast<const char*>(values.data()), values.size() * sizeof(T));
-    }
-  }
+  explicit Writer(size_t capacity) { Reserve(capacity); }
   void PutText(const std::string& text) {
     Put(static_cast<uint32_t>(text.size()));
     out_ += text;
@@ -105,9 +94,6 @@ class Writer {
     }
   }
   std::string& out() { return out_; }
-
- private:
-  std::string out_;
 };
 
 // The fewest bytes (1 to 4) that hold `largest`.

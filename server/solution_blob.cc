@@ -3,7 +3,7 @@
 #include <cstring>
 #include <type_traits>
 
-#include "server/byte_reader.h"
+#include "server/byte_io.h"
 
 namespace mdp::server {
 namespace {
@@ -25,27 +25,13 @@ uint32_t MethodCode(Method method) {
   return 0;
 }
 
-class Writer {
+class Writer : public ByteWriter {
  public:
-  template <typename T>
-  void Put(T value) {
-    static_assert(std::is_trivially_copyable_v<T>);
-    out_.append(reinterpret_cast<const char*>(&value), sizeof value);
-  }
-  template <typename T>
-  void PutArray(const std::vector<T>& values) {
-    out_.append(reinterpret_cast<const char*>(values.data()), values.size() * sizeof(T));
-  }
   template <typename T>
   void PutCounted(const std::vector<T>& values) {
     Put(static_cast<int64_t>(values.size()));
     PutArray(values);
   }
-  std::string Take() { return std::move(out_); }
-  void Reserve(size_t n) { out_.reserve(n); }
-
- private:
-  std::string out_;
 };
 
 class Reader : public ByteReader {

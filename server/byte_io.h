@@ -1,17 +1,40 @@
-// ByteReader: bounds-checked reads of fixed-size values from an untrusted byte string, for
-// the store's binary records (solution_blob.h, model_store_codec.h). Every read checks the
+// ByteWriter and ByteReader: the store's binary records (solution_blob.h,
+// model_store_codec.h) written and read as values and arrays in the host's byte order
+// (little-endian hosts only). ByteReader treats its input as hostile: every read checks the
 // bytes left before it copies or allocates, so a lying count fails here instead of reaching
-// the allocator. Little-endian hosts only (the records' byte order). Not thread-safe.
-#ifndef MDP_SERVER_BYTE_READER_H_
-#define MDP_SERVER_BYTE_READER_H_
+// the allocator. Not thread-safe.
+#ifndef MDP_SERVER_BYTE_IO_H_
+#define MDP_SERVER_BYTE_IO_H_
 
 #include <cstdint>
 #include <cstring>
+#include <string>
 #include <string_view>
 #include <type_traits>
+#include <utility>
 #include <vector>
 
 namespace mdp::server {
+
+class ByteWriter {
+ public:
+  template <typename T>
+  void Put(T value) {
+    static_assert(std::is_trivially_copyable_v<T>);
+    out_.append(reinterpret_cast<const char*>(&value), sizeof value);
+  }
+  template <typename T>
+  void PutArray(const std::vector<T>& values) {
+    static_assert(std::is_trivially_copyable_v<T>);
+    if (values.empty()) return;  // data() may be null.
+    out_.append(reinterpret_cast<const char*>(values.data()), values.size() * sizeof(T));
+  }
+  void Reserve(size_t bytes) { out_.reserve(bytes); }
+  std::string Take() { return std::move(out_); }
+
+ protected:
+  std::string out_;
+};
 
 class ByteReader {
  public:
@@ -46,4 +69,4 @@ class ByteReader {
 
 }  // namespace mdp::server
 
-#endif  // MDP_SERVER_BYTE_READER_H_
+#endif  // MDP_SERVER_BYTE_IO_H_
