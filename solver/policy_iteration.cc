@@ -38,9 +38,6 @@ std::vector<double> MonotoneStart(const Model& m) {
   return v;
 }
 
-// States from which policy iteration evaluates iteratively (below: sparse LU, exactly).
-constexpr StateId kDirectMaxStates = 3000;
-
 // Tolerance of each evaluation relative to the Bellman residual of the values it starts
 // from; tightened when an improvement fails to shrink the residual enough.
 constexpr double kEvaluationShare = 0.02;
@@ -110,9 +107,10 @@ Solution InexactPolicyIteration(const Model& m, const SolveOptions& options,
 
 Result<Solution> PolicyIteration(const Model& m, const SolveOptions& options,
                                  const ProgressFn* progress, const CancelToken* cancel) {
-  const bool iterative =
-      options.linear_solver == LinearSolver::kBiCgStab ||
-      (options.linear_solver == LinearSolver::kAuto && m.num_states() > kDirectMaxStates);
+  // Above the states where automatic evaluation turns from sparse LU to Krylov (evaluate.h).
+  const bool iterative = options.linear_solver == LinearSolver::kBiCgStab ||
+                         (options.linear_solver == LinearSolver::kAuto &&
+                          m.num_states() > EvaluateOptions().direct_max_states);
   if (iterative) return InexactPolicyIteration(m, options, progress, cancel);
   internal::RunControl control(options, progress, cancel);
   const int threads = internal::ThreadCount(options.threads);

@@ -51,11 +51,10 @@ double PolicyMatrix::Apply(const double* x, double* y, int threads) const {
   return diff;
 }
 
-double PolicyMatrix::GaussSeidel(double* x, bool forward) const {
+double PolicyMatrix::GaussSeidel(double* x) const {
   const StateId n = size();
   double diff = 0.0;
-  for (StateId i = 0; i < n; ++i) {
-    const StateId s = forward ? i : n - 1 - i;
+  for (StateId s = 0; s < n; ++s) {
     double acc = reward_[s];
     double self = 0.0;
     for (int64_t e = begin_[s], end = begin_[s + 1]; e < end; ++e) {
@@ -200,7 +199,7 @@ double TrueResidual(const PolicyMatrix& p, const std::vector<double>& x,
 // progresses.
 double GaussSeidelRound(const PolicyMatrix& p, std::vector<double>& x,
                         std::vector<double>& scratch, std::vector<double>& res, int threads) {
-  for (int k = 0; k < 4; ++k) p.GaussSeidel(x.data(), /*forward=*/true);
+  for (int k = 0; k < 4; ++k) p.GaussSeidel(x.data());
   return TrueResidual(p, x, scratch, res, threads);
 }
 

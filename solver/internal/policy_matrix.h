@@ -28,9 +28,9 @@ class PolicyMatrix {
 
   // y = r_pi + g P_pi x (the policy's Bellman operator); returns sup |y - x|.
   double Apply(const double* x, double* y, int threads) const;
-  // In-place Gauss-Seidel sweep of x = r_pi + g P_pi x, states in index order (forward) or
-  // reverse order; returns the largest change.
-  double GaussSeidel(double* x, bool forward) const;
+  // In-place Gauss-Seidel sweep of x = r_pi + g P_pi x, states in index order; returns the
+  // largest change.
+  double GaussSeidel(double* x) const;
   // Solves (D - L) z = b where D - L is the system's lower triangle in index order (the
   // forward Gauss-Seidel preconditioner). Entries must be sorted by next state.
   void LowerSolve(const double* b, double* z) const;
