@@ -45,7 +45,9 @@ const Model& CachedModel(Structure structure) {
   return *slot;
 }
 
-enum class Kernel { kSync, kReference, kGaussSeidel, kPolicy, kGreedy };
+// kSync sweeps with the kernel copy the solver would choose for the model; kSyncPortable and
+// kSyncGather name the copy (internal::KernelSet), to compare the two side by side.
+enum class Kernel { kSync, kSyncPortable, kSyncGather, kReference, kGaussSeidel, kPolicy, kGreedy };
 
 void RunKernel(benchmark::State& state, Structure structure, Kernel kernel, int threads) {
   const Model& m = CachedModel(structure);
@@ -56,6 +58,12 @@ void RunKernel(benchmark::State& state, Structure structure, Kernel kernel, int 
     double diff = 0.0;
     switch (kernel) {
       case Kernel::kSync: diff = internal::SyncSweep(m, a.data(), b.data(), threads); break;
+      case Kernel::kSyncPortable:
+        diff = internal::SyncSweep(m, a.data(), b.data(), threads, internal::KernelSet::kPortable);
+        break;
+      case Kernel::kSyncGather:
+        diff = internal::SyncSweep(m, a.data(), b.data(), threads, internal::KernelSet::kGather);
+        break;
       case Kernel::kReference: diff = ReferenceSweep(m, a.data(), b.data(), threads); break;
       case Kernel::kGaussSeidel: diff = internal::GaussSeidelSweep(m, a.data()); break;
       case Kernel::kPolicy:
@@ -77,7 +85,10 @@ void RegisterAll() {
   const int all = internal::ThreadCount(0);
   std::stringstream list(EnvOr("MDP_KERNEL_BENCH_STRUCTURES", "random,local,local_shuffled"));
   const std::vector<std::pair<const char*, Kernel>> kernels = {
-      {"SyncSweep", Kernel::kSync},   {"ReferenceSweep", Kernel::kReference},
+      {"SyncSweep", Kernel::kSync},
+      {"SyncSweepPortable", Kernel::kSyncPortable},
+      {"SyncSweepGather", Kernel::kSyncGather},
+      {"ReferenceSweep", Kernel::kReference},
       {"PolicySweep", Kernel::kPolicy}, {"GreedySweep", Kernel::kGreedy},
       {"GaussSeidelSweep", Kernel::kGaussSeidel}};
   for (std::string name; std::getline(list, name, ',');) {

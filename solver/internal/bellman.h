@@ -8,6 +8,7 @@
 #include <limits>
 
 #include "solver/model.h"
+#include "solver/options.h"
 
 namespace mdp::internal {
 
@@ -44,6 +45,19 @@ inline double BackupState(const Model& m, StateId s, const double* v, RowId* bes
   return best_q;
 }
 
+// The sweeps below come in two compiled copies that agree to rounding: a portable one, and
+// one for CPUs with AVX2 and FMA that reads each row's next-state values with gather
+// instructions. Gathers pay when those values are scattered (random next states: they hide
+// the latency of the scattered reads) and cost a little when they are near (local models
+// stream from cache anyway), so the copy is chosen per model, from a sample of its states.
+enum class KernelSet { kPortable, kGather };
+// Models with fewer entries always use the portable copy (their values stay in cache).
+inline constexpr int64_t kGatherMinEntries = kAutoThreadsMinEntries;
+// ... and larger ones the gather copy iff at least this share of the sampled states' entries
+// lead more than 4096 ids away, and the CPU has AVX2 and FMA.
+inline constexpr double kGatherMinFarShare = 0.25;
+KernelSet ChooseKernels(const Model& m);
+
 // out[s] = (T in)(s) for all s; returns sup |out - in|. `threads` as in SolveOptions.
 double SyncSweep(const Model& m, const double* in, double* out, int threads);
 // In-place Gauss-Seidel sweep over states in index order; returns sup of the changes.
@@ -68,6 +82,13 @@ Improvement ImprovePolicy(const Model& m, const double* v, double keep_slack, Ro
                           int threads);
 // out = T in and rows = the first best row of each state; returns sup |out - in|.
 double GreedySweep(const Model& m, const double* in, double* out, RowId* rows, int threads);
+
+// The same sweeps with the copy named (kGather falls back to kPortable on a CPU without
+// AVX2 and FMA): for tests and benchmarks.
+double SyncSweep(const Model& m, const double* in, double* out, int threads, KernelSet k);
+double GaussSeidelSweep(const Model& m, double* v, KernelSet k);
+double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads,
+                             KernelSet k);
 
 // Resolved thread count: 0 means all hardware threads.
 int ThreadCount(int threads);

@@ -1,0 +1,174 @@
+// Tests the two compiled copies of the Bellman sweeps (solver/internal/bellman.h): each must
+// compute the Bellman backup, checked against the definition written out plainly in this
+// test, and the per-model choice between them must follow the model's locality. On a CPU
+// without AVX2 and FMA the gather copy falls back to the portable one, so the value checks
+// still run (and still check the portable copy).
+#include "solver/internal/bellman.h"
+
+#include <gtest/gtest.h>
+
+#include <algorithm>
+#include <cmath>
+#include <random>
+#include <string>
+#include <vector>
+
+#include "tests/testing/test_models.h"
+
+namespace mdp {
+namespace {
+
+using internal::KernelSet;
+
+bool CpuHasGather() {
+#if defined(__GNUC__) && (defined(__x86_64__) || defined(__i386__))
+  return __builtin_cpu_supports("avx2") && __builtin_cpu_supports("fma");
+#else
+  return false;
+#endif
+}
+
+// (T v)(s) from the definition: the max (or min) over the rows of s of
+// r + g * sum p v(next), or 0 at a terminal state. Each row's sum is kept in long double, so
+// this is not the kernels' arithmetic.
+double DefinitionBackupAt(const Model& m, const std::vector<double>& v, StateId s) {
+  double best = 0.0;
+  for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
+    long double acc = 0.0L;
+    for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
+      acc += static_cast<long double>(m.entry_probability(e)) * v[m.entry_next(e)];
+    }
+    const double q = static_cast<double>(m.row_reward(r) + m.discount() * acc);
+    const bool better = m.objective() == Objective::kMaximize ? q > best : q < best;
+    if (r == m.row_begin(s) || better) best = q;
+  }
+  return best;
+}
+
+std::vector<double> DefinitionBackup(const Model& m, const std::vector<double>& v) {
+  std::vector<double> out(m.num_states());
+  for (StateId s = 0; s < m.num_states(); ++s) out[s] = DefinitionBackupAt(m, v, s);
+  return out;
+}
+
+std::vector<double> SomeValues(StateId n, uint64_t seed) {
+  std::mt19937_64 rng(seed);
+  std::uniform_real_distribution<double> u(-50.0, 50.0);
+  std::vector<double> v(n);
+  for (double& x : v) x = u(rng);
+  return v;
+}
+
+// Rows of 1 to 12 outcomes, so every tail length of the gather loop (0-3 after blocks of 4
+// and 8) occurs.
+Model VariedRowsModel(Objective objective) {
+  testing::RandomModelOptions o;
+  o.states = 3000;
+  o.max_outcomes = 12;
+  o.objective = objective;
+  o.discount = 0.97;
+  return testing::MustBuild(testing::RandomSpec(31, o));
+}
+
+double Scale(const std::vector<double>& v) {
+  double s = 1.0;
+  for (double x : v) s = std::max(s, std::fabs(x));
+  return s;
+}
+
+TEST(BellmanKernelsTest, BothCopiesComputeTheBackup) {
+  for (Objective objective : {Objective::kMaximize, Objective::kMinimize}) {
+    const Model m = VariedRowsModel(objective);
+    std::vector<int> lengths(13, 0);
+    for (RowId r = 0; r < m.num_rows(); ++r) ++lengths[m.entry_end(r) - m.entry_begin(r)];
+    for (int k = 1; k <= 11; ++k) ASSERT_GT(lengths[k], 0) << "no row with " << k << " entries";
+
+    const std::vector<double> v = SomeValues(m.num_states(), 5);
+    const std::vector<double> expected = DefinitionBackup(m, v);
+    const double tolerance = 1e-13 * Scale(expected);
+    for (KernelSet k : {KernelSet::kPortable, KernelSet::kGather}) {
+      for (int threads : {1, 2}) {
+        SCOPED_TRACE("kernels " + std::to_string(static_cast<int>(k)) + ", threads " +
+                     std::to_string(threads));
+        std::vector<double> out(m.num_states(), -1.0);
+        const double diff = internal::SyncSweep(m, v.data(), out.data(), threads, k);
+        double expected_diff = 0.0;
+        for (StateId s = 0; s < m.num_states(); ++s) {
+          ASSERT_NEAR(out[s], expected[s], tolerance) << "state " << s;
+          expected_diff = std::max(expected_diff, std::fabs(expected[s] - v[s]));
+        }
+        EXPECT_NEAR(diff, expected_diff, tolerance);
+      }
+    }
+  }
+}
+
+// Gauss-Seidel over states [lo, hi) in index order, from the definition: v starts as the
+// old values and is updated in place, so each backup reads the new values of the states
+// already swept and the old values of all others.
+std::vector<double> DefinitionGaussSeidel(const Model& m, std::vector<double> v, StateId lo,
+                                          StateId hi) {
+  for (StateId s = lo; s < hi; ++s) v[s] = DefinitionBackupAt(m, v, s);
+  return v;
+}
+
+TEST(BellmanKernelsTest, BothCopiesSweepGaussSeidelInOrder) {
+  testing::RandomModelOptions o;
+  o.states = 2000;
+  o.max_outcomes = 12;
+  o.discount = 0.9;
+  const Model m = testing::MustBuild(testing::RandomSpec(47, o));
+  const std::vector<double> v = SomeValues(m.num_states(), 9);
+  const double tolerance = 1e-12 * Scale(v);
+  const std::vector<double> expected = DefinitionGaussSeidel(m, v, 0, m.num_states());
+  for (KernelSet k : {KernelSet::kPortable, KernelSet::kGather}) {
+    SCOPED_TRACE("kernels " + std::to_string(static_cast<int>(k)));
+    std::vector<double> plain = v;
+    internal::GaussSeidelSweep(m, plain.data(), k);
+    for (StateId s = 0; s < m.num_states(); ++s) ASSERT_NEAR(plain[s], expected[s], tolerance);
+
+    // Two blocks: each thread sweeps its half in order, reading the other half's old values.
+    const StateId half = m.num_states() / 2;
+    std::vector<double> block_expected = DefinitionGaussSeidel(m, v, 0, half);
+    const std::vector<double> second = DefinitionGaussSeidel(m, v, half, m.num_states());
+    std::copy(second.begin() + half, second.end(), block_expected.begin() + half);
+    std::vector<double> out(m.num_states(), 0.0);
+    internal::BlockGaussSeidelSweep(m, v.data(), out.data(), 2, k);
+    for (StateId s = 0; s < m.num_states(); ++s) {
+      ASSERT_NEAR(out[s], block_expected[s], tolerance) << "state " << s;
+    }
+  }
+}
+
+// One action per state, `width` outcomes each; next states either s+1..s+width (mod n) or
+// drawn uniformly from all states.
+Model RingOrScatter(StateId n, int width, bool scattered) {
+  ModelSpec spec;
+  spec.action_names = {"go"};
+  spec.criterion.discount = 0.9;
+  std::mt19937_64 rng(3);
+  for (StateId s = 0; s < n; ++s) {
+    spec.AddState("s" + std::to_string(s));
+    spec.AddStateAction(0, 1.0);
+    for (int k = 1; k <= width; ++k) {
+      const StateId next = scattered ? static_cast<StateId>(rng() % n) : (s + k) % n;
+      spec.AddOutcome(next, 1.0 / width);
+    }
+  }
+  return testing::MustBuild(spec);
+}
+
+TEST(BellmanKernelsTest, GatherIsChosenForLargeScatteredModelsOnly) {
+  const Model scattered = RingOrScatter(80000, 4, true);
+  const Model ring = RingOrScatter(80000, 4, false);
+  const Model small = RingOrScatter(2000, 4, true);
+  ASSERT_GE(scattered.num_entries(), internal::kGatherMinEntries);
+  ASSERT_LT(small.num_entries(), internal::kGatherMinEntries);
+  EXPECT_EQ(internal::ChooseKernels(scattered),
+            CpuHasGather() ? KernelSet::kGather : KernelSet::kPortable);
+  EXPECT_EQ(internal::ChooseKernels(ring), KernelSet::kPortable);
+  EXPECT_EQ(internal::ChooseKernels(small), KernelSet::kPortable);
+}
+
+}  // namespace
+}  // namespace mdp
