@@ -21,6 +21,8 @@
 # timed sweeps per configuration; more are timed until 0.5 s has passed),
 # BENCH_INGEST_STATES (100000), BENCH_MEMORY_STATES (service_memory.py's model; default the
 # run's state count), BENCH_BUILD_TYPE (RelWithDebInfo, as the default build),
+# BENCH_QUERY_CONNECTIONS ("64 16": wrk's keep-alive connections, one query run per count;
+# the first count saturates the 2 cores, the second keeps fewer requests in flight),
 # BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1, BENCH_SKIP_MEMORY=1.
 set -euo pipefail
 
@@ -144,11 +146,14 @@ if [[ ${BENCH_SKIP_MEMORY:-0} != 1 ]]; then
 fi
 
 if [[ ${BENCH_SKIP_QUERIES:-0} != 1 ]]; then
-  say "queries against nginx (scripts/bench_queries.sh)"
-  run env MDPSERVE="$BIN/mdpserve" BENCH_KEEP=0 BENCH_SECONDS="$QUERY_SECONDS" \
-    BENCH_ROUNDS="$QUERY_ROUNDS" bash "$ROOT/scripts/bench_queries.sh" \
-    >"$WORK/queries.txt" 2>"$WORK/queries.err"
-  sample_load queries
+  for connections in ${BENCH_QUERY_CONNECTIONS:-64 16}; do
+    say "queries against nginx, $connections connections (scripts/bench_queries.sh)"
+    run env MDPSERVE="$BIN/mdpserve" BENCH_KEEP=0 BENCH_SECONDS="$QUERY_SECONDS" \
+      BENCH_ROUNDS="$QUERY_ROUNDS" BENCH_CONNECTIONS="$connections" \
+      bash "$ROOT/scripts/bench_queries.sh" \
+      >"$WORK/queries-c$connections.txt" 2>"$WORK/queries-c$connections.err"
+    sample_load "queries-c$connections"
+  done
 fi
 
 sample_load end
