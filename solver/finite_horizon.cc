@@ -20,20 +20,6 @@ double StageQ(const Model& m, RowId r, const double* v, double g) {
   return m.row_reward(r) + g * acc;
 }
 
-template <bool kMaximize>
-void BackupStage(const Model& m, const double* next, double g, double* out, int threads) {
-  const StateId n = m.num_states();
-#pragma omp parallel for num_threads(threads) schedule(static, 2048)
-  for (StateId s = 0; s < n; ++s) {
-    double best = 0.0;
-    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-      const double q = StageQ(m, r, next, g);
-      if (r == m.row_begin(s) || internal::Better<kMaximize>(q, best)) best = q;
-    }
-    out[s] = best;  // Terminal states have no rows and stay 0.
-  }
-}
-
 Status CheckOptions(const Model& m, const FiniteHorizonOptions& o) {
   if (o.horizon < 1) return InvalidArgumentError("horizon must be at least 1");
   if (!(o.discount >= 0.0 && o.discount <= 1.0)) {
@@ -90,11 +76,7 @@ Result<FiniteHorizonSolution> BackwardInduction(const Model& m, const FiniteHori
   for (int64_t t = o.horizon - 1; t >= 0; --t) {
     const double* next = table + (t + 1) * out.states;
     double* here = table + t * out.states;
-    if (m.objective() == Objective::kMaximize) {
-      BackupStage<true>(m, next, o.discount, here, threads);
-    } else {
-      BackupStage<false>(m, next, o.discount, here, threads);
-    }
+    internal::StageSweep(m, next, o.discount, here, threads);  // Terminal states stay 0.
     const int64_t done = o.horizon - t;
     if (progress != nullptr && *progress) {
       (*progress)(Progress{done, done, 0.0, 0.0, elapsed(), "stage"});

@@ -22,9 +22,9 @@ namespace {
 
 // One set of entry points per compiled copy of the kernels.
 #define MDP_BELLMAN_ENTRY_POINTS                                                               \
-  double SyncSweep(const Model& m, const double* in, double* out, int threads) {              \
-    return m.objective() == Objective::kMaximize ? SyncSweepT<true>(m, in, out, threads)      \
-                                                 : SyncSweepT<false>(m, in, out, threads);    \
+  double SyncSweep(const Model& m, const double* in, double* out, double g, int threads) {    \
+    return m.objective() == Objective::kMaximize ? SyncSweepT<true>(m, in, out, g, threads)   \
+                                                 : SyncSweepT<false>(m, in, out, g, threads); \
   }                                                                                            \
   double GaussSeidelSweep(const Model& m, double* v) {                                         \
     return m.objective() == Objective::kMaximize ? GaussSeidelSweepT<true>(m, v)              \
@@ -112,7 +112,19 @@ KernelSet ChooseKernels(const Model& m) {
 #endif
 
 double SyncSweep(const Model& m, const double* in, double* out, int threads, KernelSet k) {
-  MDP_BELLMAN_DISPATCH(k, SyncSweep(m, in, out, threads));
+  MDP_BELLMAN_DISPATCH(k, SyncSweep(m, in, out, m.discount(), threads));
+}
+
+void StageSweep(const Model& m, const double* next, double discount, double* out,
+                int threads) {
+  const KernelSet k = ChooseKernels(m);
+#ifdef MDP_BELLMAN_HAVE_GATHER_COPY
+  if (k == KernelSet::kGather && CpuHasGather()) {
+    gather::SyncSweep(m, next, out, discount, threads);
+    return;
+  }
+#endif
+  portable::SyncSweep(m, next, out, discount, threads);
 }
 
 double SyncSweep(const Model& m, const double* in, double* out, int threads) {

@@ -60,6 +60,9 @@ KernelSet ChooseKernels(const Model& m);
 
 // out[s] = (T in)(s) for all s; returns sup |out - in|. `threads` as in SolveOptions.
 double SyncSweep(const Model& m, const double* in, double* out, int threads);
+// out[s] = best over the rows of s of r + discount * sum p next(s'), 0 at terminal states: one
+// stage of backward induction, with the finite horizon's discount instead of the model's.
+void StageSweep(const Model& m, const double* next, double discount, double* out, int threads);
 // In-place Gauss-Seidel sweep over states in index order; returns sup of the changes.
 double GaussSeidelSweep(const Model& m, double* v);
 // Gauss-Seidel in `threads` contiguous blocks of states, one per thread: each block is swept

@@ -31,23 +31,24 @@ bool CpuHasGather() {
 // (T v)(s) from the definition: the max (or min) over the rows of s of
 // r + g * sum p v(next), or 0 at a terminal state. Each row's sum is kept in long double, so
 // this is not the kernels' arithmetic.
-double DefinitionBackupAt(const Model& m, const std::vector<double>& v, StateId s) {
+double DefinitionBackupAt(const Model& m, const std::vector<double>& v, StateId s,
+                          double g) {
   double best = 0.0;
   for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
     long double acc = 0.0L;
     for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
       acc += static_cast<long double>(m.entry_probability(e)) * v[m.entry_next(e)];
     }
-    const double q = static_cast<double>(m.row_reward(r) + m.discount() * acc);
+    const double q = static_cast<double>(m.row_reward(r) + g * acc);
     const bool better = m.objective() == Objective::kMaximize ? q > best : q < best;
     if (r == m.row_begin(s) || better) best = q;
   }
   return best;
 }
 
-std::vector<double> DefinitionBackup(const Model& m, const std::vector<double>& v) {
+std::vector<double> DefinitionBackup(const Model& m, const std::vector<double>& v, double g) {
   std::vector<double> out(m.num_states());
-  for (StateId s = 0; s < m.num_states(); ++s) out[s] = DefinitionBackupAt(m, v, s);
+  for (StateId s = 0; s < m.num_states(); ++s) out[s] = DefinitionBackupAt(m, v, s, g);
   return out;
 }
 
@@ -84,7 +85,7 @@ TEST(BellmanKernelsTest, BothCopiesComputeTheBackup) {
     for (int k = 1; k <= 11; ++k) ASSERT_GT(lengths[k], 0) << "no row with " << k << " entries";
 
     const std::vector<double> v = SomeValues(m.num_states(), 5);
-    const std::vector<double> expected = DefinitionBackup(m, v);
+    const std::vector<double> expected = DefinitionBackup(m, v, m.discount());
     const double tolerance = 1e-13 * Scale(expected);
     for (KernelSet k : {KernelSet::kPortable, KernelSet::kGather}) {
       for (int threads : {1, 2}) {
@@ -108,7 +109,7 @@ TEST(BellmanKernelsTest, BothCopiesComputeTheBackup) {
 // already swept and the old values of all others.
 std::vector<double> DefinitionGaussSeidel(const Model& m, std::vector<double> v, StateId lo,
                                           StateId hi) {
-  for (StateId s = lo; s < hi; ++s) v[s] = DefinitionBackupAt(m, v, s);
+  for (StateId s = lo; s < hi; ++s) v[s] = DefinitionBackupAt(m, v, s, m.discount());
   return v;
 }
 
@@ -168,6 +169,28 @@ TEST(BellmanKernelsTest, GatherIsChosenForLargeScatteredModelsOnly) {
             CpuHasGather() ? KernelSet::kGather : KernelSet::kPortable);
   EXPECT_EQ(internal::ChooseKernels(ring), KernelSet::kPortable);
   EXPECT_EQ(internal::ChooseKernels(small), KernelSet::kPortable);
+}
+
+// A finite horizon's stage uses its own discount (here 1 and 0.5, not the model's 0.97 or
+// 0.9), on a small model (portable copy) and on a large scattered one (the gather copy where
+// the CPU has it).
+TEST(BellmanKernelsTest, StageSweepUsesTheGivenDiscount) {
+  const Model varied = VariedRowsModel(Objective::kMinimize);
+  const Model scattered = RingOrScatter(80000, 4, true);
+  for (const Model* m : {&varied, &scattered}) {
+    const std::vector<double> next = SomeValues(m->num_states(), 13);
+    for (double g : {1.0, 0.5}) {
+      SCOPED_TRACE("states " + std::to_string(m->num_states()) + ", discount " +
+                   std::to_string(g));
+      const std::vector<double> expected = DefinitionBackup(*m, next, g);
+      std::vector<double> out(m->num_states(), -1.0);
+      internal::StageSweep(*m, next.data(), g, out.data(), 2);
+      const double tolerance = 1e-13 * Scale(expected);
+      for (StateId s = 0; s < m->num_states(); ++s) {
+        ASSERT_NEAR(out[s], expected[s], tolerance) << "state " << s;
+      }
+    }
+  }
 }
 
 }  // namespace
