@@ -21,6 +21,9 @@
 # timed sweeps per configuration; more are timed until 0.5 s has passed),
 # BENCH_INGEST_STATES (100000), BENCH_MEMORY_STATES (service_memory.py's model; default the
 # run's state count), BENCH_BUILD_TYPE (RelWithDebInfo, as the default build),
+# BENCH_CRITERIA_STRUCTURES ("random local": solved under the average, total and finite-horizon
+# criteria too), BENCH_CRITERIA_STATES (the run's state count), BENCH_CRITERIA_TIME_LIMIT (120 s
+# per solve), BENCH_SKIP_CRITERIA=1,
 # BENCH_QUERY_CONNECTIONS ("64 16": wrk's keep-alive connections, one query run per count;
 # the first count saturates the 2 cores, the second keeps fewer requests in flight),
 # BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1, BENCH_SKIP_MEMORY=1.
@@ -50,6 +53,9 @@ else
   QUERY_SECONDS=10; QUERY_ROUNDS=3; KERNEL_MIN_TIME=0.2; TIME_LIMIT=1800
 fi
 STRUCTURES=${BENCH_STRUCTURES:-random local local_shuffled grid inventory}
+CRITERIA_STRUCTURES=${BENCH_CRITERIA_STRUCTURES:-random local}
+CRITERIA_STATES=${BENCH_CRITERIA_STATES:-$STATES}
+CRITERIA_TIME_LIMIT=${BENCH_CRITERIA_TIME_LIMIT:-120}
 SOLVE_STRUCTURE=${BENCH_SOLVE_STRUCTURE:-local}
 DEFAULT_METHODS=value_iteration,value_iteration:1,gauss_seidel,policy_iteration
 DEFAULT_METHODS+=,modified_policy_iteration
@@ -116,6 +122,28 @@ for structure in $STRUCTURES; do
   rm -rf "$WORK/arrays-$structure"
   sample_load "$structure"
 done
+
+# The other criteria on the same generators: average reward (gain), total cost until a goal
+# (every 100th state made terminal, the generated rewards + 1.5 read as costs) and a 100-period
+# finite horizon.
+if [[ ${BENCH_SKIP_CRITERIA:-0} != 1 ]]; then
+  for structure in $CRITERIA_STRUCTURES; do
+    for criterion in average total finite_horizon; do
+      case $criterion in
+        average) extra=(--methods=policy_iteration,relative_value_iteration) ;;
+        total) extra=(--methods=policy_iteration --terminal-every=100 --objective=minimize
+                      --reward-shift=1.5) ;;
+        finite_horizon) extra=(--methods=backward_induction --horizon=100) ;;
+      esac
+      say "$structure: $CRITERIA_STATES states, $criterion criterion"
+      run "$BIN/solver_bench" model --structure="$structure" --states="$CRITERIA_STATES" \
+        --sweeps=0 --measure-renumbering=0 --criterion="$criterion" "${extra[@]}" \
+        --tolerance=1e-6 --time-limit="$CRITERIA_TIME_LIMIT" \
+        >"$WORK/criteria-$criterion-$structure.json"
+    done
+    sample_load "criteria-$structure"
+  done
+fi
 
 say "kernel micro-benchmarks"
 run env MDP_KERNEL_BENCH_STATES="$STATES" "$BIN/kernel_bench" --benchmark_format=json \

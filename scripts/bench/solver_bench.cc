@@ -10,6 +10,8 @@
 //       [--tolerance=1e-6] [--solve-threads=0] [--time-limit=1800]
 //       [--renumber=auto|off|on] [--measure-renumbering=1]
 //       [--write-arrays=DIR] [--write-json=FILE]
+//       [--criterion=discounted|average|finite_horizon|total] [--horizon=100]
+//       [--terminal-every=0] [--objective=maximize|minimize] [--reward-shift=0]
 //       Generates the model, builds it, optionally writes it for the baselines, times sweeps
 //       (solver and reference loop, 1 thread and all threads; at least --sweeps of each and
 //       more until --min-seconds have passed) and solves to a bound with
@@ -18,6 +20,12 @@
 //       With sweeps timed and --measure-renumbering=1 (the default), also times the solver's
 //       renumbering (solver/internal/renumber.h) and the same sweeps on the renumbered copy:
 //       the object "renumber" of the output.
+//       --criterion sets the generated model's criterion (finite_horizon: --horizon periods,
+//       discount --discount); --terminal-every=K makes every K-th state (0, K, 2K, ...)
+//       terminal, dropping its actions: the goals a total-reward model needs. With
+//       --objective=minimize the rewards read as costs; --reward-shift adds a constant to
+//       every action's reward (1.5 makes the random and local generators' costs positive,
+//       which makes a total-cost model with goals well posed).
 // Flags are --name=value or --name value. Exit status 2 on bad flags, 1 on a failed step.
 #include <algorithm>
 #include <cmath>
@@ -173,6 +181,8 @@ std::optional<std::vector<JsonObject>> RunSolves(const Model& m,
                          .Add("max_diff_vs_first", diff)
                          .Add("renumbered",
                               solution->options.renumber == Renumber::kOn ? "yes" : "no")
+                         .Add("gain_lower", solution->average.gain_lower)
+                         .Add("gain_upper", solution->average.gain_upper)
                          .Add("peak_rss_bytes", PeakResidentBytes()));
   }
   return solves;
@@ -231,6 +241,37 @@ JsonObject MeasureRenumbering(const Model& m, int sweeps, double min_seconds) {
   return out;
 }
 
+// `spec` with every k-th state terminal: its actions (slots and their outcomes) dropped.
+ModelSpec WithTerminalEvery(const ModelSpec& spec, int64_t k) {
+  ModelSpec out;
+  out.name = spec.name;
+  out.objective = spec.objective;
+  out.criterion = spec.criterion;
+  out.action_names = spec.action_names;
+  for (StateId s = 0; s < spec.num_states(); ++s) {
+    const bool terminal = s % k == 0;
+    out.AddState(spec.state_names[s], terminal);
+    if (terminal) continue;
+    for (SlotId slot = spec.state_first_slot[s]; slot < spec.state_first_slot[s + 1]; ++slot) {
+      out.AddStateAction(spec.slot_action[slot], spec.slot_reward[slot]);
+      for (OutcomeId o = spec.slot_first_outcome[slot]; o < spec.slot_first_outcome[slot + 1];
+           ++o) {
+        out.AddOutcome(spec.outcome_next[o], spec.outcome_probability[o],
+                       spec.outcome_reward.empty() ? 0.0 : spec.outcome_reward[o]);
+      }
+    }
+  }
+  return out;
+}
+
+std::optional<CriterionKind> ParseCriterion(const std::string& name) {
+  for (CriterionKind kind : {CriterionKind::kDiscounted, CriterionKind::kAverage,
+                             CriterionKind::kFiniteHorizon, CriterionKind::kTotal}) {
+    if (name == CriterionKindName(kind)) return kind;
+  }
+  return std::nullopt;
+}
+
 std::optional<Renumber> ParseRenumber(const std::string& name) {
   if (name == "auto") return Renumber::kAuto;
   if (name == "off") return Renumber::kOff;
@@ -258,7 +299,19 @@ int RunModel(Flags& flags) {
   const bool measure_renumbering = flags.Number("measure-renumbering", 1) != 0;
   const std::string arrays_dir = flags.Get("write-arrays", "");
   const std::string json_path = flags.Get("write-json", "");
+  const std::optional<CriterionKind> criterion =
+      ParseCriterion(flags.Get("criterion", "discounted"));
+  const int64_t horizon = static_cast<int64_t>(flags.Number("horizon", 100));
+  const int64_t terminal_every = static_cast<int64_t>(flags.Number("terminal-every", 0));
+  const std::string objective = flags.Get("objective", "maximize");
+  const double reward_shift = flags.Number("reward-shift", 0.0);
   if (!flags.AllKnown()) return 2;
+  if (!criterion || horizon < 1 || terminal_every < 0 ||
+      (objective != "maximize" && objective != "minimize")) {
+    std::fprintf(stderr,
+                 "solver_bench: bad --criterion, --horizon, --terminal-every or --objective\n");
+    return 2;
+  }
   if (!renumber) {
     std::fprintf(stderr, "solver_bench: --renumber must be auto, off or on\n");
     return 2;
@@ -279,7 +332,16 @@ int RunModel(Flags& flags) {
 
   Stopwatch generate_clock;
   ModelSpec spec = GenerateSpec(shape);
+  if (terminal_every > 0) spec = WithTerminalEvery(spec, terminal_every);
+  spec.criterion.kind = *criterion;
+  spec.objective = objective == "minimize" ? Objective::kMinimize : Objective::kMaximize;
+  for (double& r : spec.slot_reward) r += reward_shift;
+  if (*criterion == CriterionKind::kFiniteHorizon) spec.criterion.horizon = horizon;
   report.Add("generate_seconds", generate_clock.seconds());
+  report.Add("criterion", CriterionKindName(*criterion));
+  if (*criterion == CriterionKind::kFiniteHorizon) report.Add("horizon", horizon);
+  report.Add("terminal_every", terminal_every).Add("objective", objective);
+  report.Add("reward_shift", reward_shift);
   if (!json_path.empty()) {
     Stopwatch write_clock;
     const Status written = WriteModelDocument(spec, DocumentEncoding::kObjects, json_path);
