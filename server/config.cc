@@ -33,6 +33,12 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->envname("MDPSERVE_BODY_LIMIT")
       ->capture_default_str()
       ->check(CLI::Range(int64_t{1024}, int64_t{1} << 40));
+  app->add_option("--store-value-limit", c.store_value_limit,
+                  "largest model (stored form) or solution the store keeps, in bytes; 0 = the "
+                  "store's own limit (embedded store: 1,000,000,000); larger models get 413")
+      ->envname("MDPSERVE_STORE_VALUE_LIMIT")
+      ->capture_default_str()
+      ->check(CLI::Range(int64_t{0}, int64_t{1} << 50));
   app->add_option("--cache-bytes", c.cache_bytes, "byte budget of the model/solution cache")
       ->envname("MDPSERVE_CACHE_BYTES")
       ->capture_default_str()

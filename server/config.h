@@ -25,6 +25,7 @@ struct ServerConfig {
   int http_threads = 128;                  // HTTP threads: one per open connection.
   int64_t body_limit = int64_t{256} << 20;  // Request body cap in bytes.
   int64_t cache_bytes = int64_t{2} << 30;   // Model/solution cache budget in bytes.
+  int64_t store_value_limit = 0;  // Largest stored model/solution in bytes; 0: the store's own.
   int64_t queue_length = 64;               // Solve jobs waiting at most.
   std::string token_file;                  // If set, bearer token required (not health).
   std::string log_level = "info";          // trace, debug, info, warn, error, off.

@@ -152,9 +152,11 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
 
   std::unique_ptr<Store> store;
   if (config.memory_store) {
-    store = NewMemoryStore();
+    store = config.store_value_limit > 0 ? NewMemoryStore(config.store_value_limit)
+                                         : NewMemoryStore();
   } else {
-    Result<std::unique_ptr<Store>> opened = OpenSqliteStore(config.data_dir);
+    Result<std::unique_ptr<Store>> opened =
+        OpenSqliteStore(config.data_dir, config.store_value_limit);
     if (!opened.ok()) {
       spdlog::error("cannot open the store in {}: {}", config.data_dir,
                     opened.status().message());

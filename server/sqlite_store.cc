@@ -4,6 +4,7 @@
 // either wholly applied or not at all. The schema and its version are in kMigrations below.
 #include <sqlite3.h>
 
+#include <algorithm>
 #include <charconv>
 #include <cstdint>
 #include <filesystem>
@@ -651,7 +652,8 @@ Result<std::vector<JobRecord>> SqliteStore::ListJobs(const std::string& model_id
 
 }  // namespace
 
-Result<std::unique_ptr<Store>> OpenSqliteStore(const std::string& directory) {
+Result<std::unique_ptr<Store>> OpenSqliteStore(const std::string& directory,
+                                               int64_t max_value_bytes) {
   std::error_code error;
   std::filesystem::create_directories(directory, error);
   if (error) {
@@ -666,6 +668,11 @@ Result<std::unique_ptr<Store>> OpenSqliteStore(const std::string& directory) {
     Status status = SqliteError(db, rc, "open " + path);
     sqlite3_close_v2(db);  // A handle is returned even on failure; closing nullptr is a no-op.
     return status;
+  }
+  if (max_value_bytes > 0) {  // SQLite's length limit is one more than the largest value.
+    const int64_t current = sqlite3_limit(db, SQLITE_LIMIT_LENGTH, -1);
+    const int64_t wanted = std::min(current, max_value_bytes + 1);
+    sqlite3_limit(db, SQLITE_LIMIT_LENGTH, static_cast<int>(wanted));
   }
   auto store = std::make_unique<SqliteStore>(db);
   MDP_RETURN_IF_ERROR(store->Configure());

@@ -95,7 +95,9 @@ class Store {
 };
 
 // Opens (creating if needed) the SQLite store in `directory` (created if missing).
-Result<std::unique_ptr<Store>> OpenSqliteStore(const std::string& directory);
+// `max_value_bytes` > 0 lowers the largest value it keeps (MaxValueBytes) to that.
+Result<std::unique_ptr<Store>> OpenSqliteStore(const std::string& directory,
+                                               int64_t max_value_bytes = 0);
 // A store that lives in memory only; for tests. It refuses documents and blobs over
 // `max_value_bytes` (by default no limit but memory).
 std::unique_ptr<Store> NewMemoryStore(

@@ -1711,6 +1711,30 @@ def scenario_h(api, server):
 
 
 
+def scenario_i(api, server, root, label):
+    """--store-value-limit: a valid model whose stored form is over the store's limit is
+    refused with a 413 problem naming the stored form, nothing is kept, and the service goes
+    on taking models that fit."""
+    client = Client(api, server)
+    big = slow_model(2000, 9)  # 2,000 states x 2 actions x 3 outcomes: tens of kB stored.
+    resp = client.call("POST", "/v1/models", body=big, expect=413,
+                       name="i(%s): model over the store's limit" % label)
+    problem = resp.json() if resp.status == 413 else {}
+    R.check("i(%s): 413 payload-too-large problem naming the stored form" % label,
+            problem.get("type") == PROBLEM + "payload-too-large" and
+            problem.get("status") == 413 and "stored form" in problem.get("detail", ""),
+            short(resp.body))
+    resp = client.call("GET", "/v1/models", expect=200, name="i(%s): list models" % label)
+    R.check("i(%s): nothing was stored" % label, resp.json().get("models") == [],
+            short(resp.body))
+    pump = load_example(root, "pump-maintenance.json")
+    pid = upload(client, pump, 201, "i(%s): a model under the limit still uploads" % label)
+    if pid is not None:
+        view, _ = solve(client, pid, None, "i(%s): and solves" % label)
+        R.check("i(%s): the small model's solve succeeds" % label,
+                view is not None and view["status"] == "succeeded", str(view)[:300])
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--mdpserve", required=True, help="path to the mdpserve binary")
@@ -1759,6 +1783,10 @@ def main():
             token_server = server("token", ["--memory-store", "--token-file", token_file])
             scenario_f(api, token_server, token)
             scenario_h(api, server("criteria", ["--memory-store"]))
+            limit = ["--store-value-limit", "20000"]
+            scenario_i(api, server("limit-memory", ["--memory-store"] + limit), root, "memory")
+            scenario_i(api, server("limit-sqlite", ["--data-dir", os.path.join(work, "limited")]
+                                   + limit), root, "sqlite")
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback
             traceback.print_exc()
