@@ -97,7 +97,8 @@ std::string HexDigits(const unsigned char* bytes, unsigned int length) {
 }
 
 // Writes the canonical text of `spec` into `out`, handing it to `flush` (which empties it)
-// whenever it grows past `flush_bytes`, and once more at the end.
+// whenever it grows past `flush_bytes`, and once more at the end. Stops early, leaving the
+// text unfinished, when `flush` returns false.
 template <typename Flush>
 void WriteCanonicalModel(const ModelSpec& spec, std::string& out, size_t flush_bytes,
                          Flush&& flush) {
@@ -148,7 +149,7 @@ void WriteCanonicalModel(const ModelSpec& spec, std::string& out, size_t flush_b
     out += ",\"terminal\":";
     out += spec.terminal[s] ? "true" : "false";
     out += '}';
-    if (out.size() >= flush_bytes) flush(out);
+    if (out.size() >= flush_bytes && !flush(out)) return;
   }
   out += "]}";
   flush(out);
@@ -159,7 +160,8 @@ void WriteCanonicalModel(const ModelSpec& spec, std::string& out, size_t flush_b
 std::string EncodeCanonicalModel(const ModelSpec& spec) {
   std::string out;
   out.reserve(static_cast<size_t>(spec.num_outcomes()) * 48 + 4096);
-  WriteCanonicalModel(spec, out, std::numeric_limits<size_t>::max(), [](std::string&) {});
+  WriteCanonicalModel(spec, out, std::numeric_limits<size_t>::max(),
+                      [](std::string&) { return true; });
   return out;
 }
 
@@ -177,11 +179,25 @@ std::string CanonicalModelId(const ModelSpec& spec) {
   WriteCanonicalModel(spec, piece, kPieceBytes, [&](std::string& text) {
     EVP_DigestUpdate(context.get(), text.data(), text.size());
     text.clear();
+    return true;
   });
   unsigned char digest[EVP_MAX_MD_SIZE];
   unsigned int length = 0;
   EVP_DigestFinal_ex(context.get(), digest, &length);
   return HexDigits(digest, length).substr(0, 32);
+}
+
+bool WriteCanonicalModelPieces(const ModelSpec& spec, size_t piece_bytes,
+                               const std::function<bool(std::string_view)>& sink) {
+  std::string piece;
+  piece.reserve(piece_bytes + 4096);
+  bool open = true;
+  WriteCanonicalModel(spec, piece, piece_bytes, [&](std::string& text) {
+    open = open && (text.empty() || sink(text));
+    text.clear();
+    return open;
+  });
+  return open;
 }
 
 std::string Sha256Hex(std::string_view bytes) {

@@ -7,6 +7,7 @@
 #ifndef MDP_SERVER_CANONICAL_H_
 #define MDP_SERVER_CANONICAL_H_
 
+#include <functional>
 #include <string>
 #include <string_view>
 
@@ -16,6 +17,11 @@ namespace mdp::server {
 
 // REQUIRES: `spec` passed Validate().
 std::string EncodeCanonicalModel(const ModelSpec& spec);
+// The same text handed to `sink` in pieces of about `piece_bytes`, in order, so that it never
+// exists whole. Stops as soon as `sink` returns false (a client that went away) and returns
+// false then; true once the whole text was handed over. REQUIRES: `spec` passed Validate().
+bool WriteCanonicalModelPieces(const ModelSpec& spec, size_t piece_bytes,
+                               const std::function<bool(std::string_view)>& sink);
 
 // Lower-case hex SHA-256 of `bytes`.
 std::string Sha256Hex(std::string_view bytes);

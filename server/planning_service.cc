@@ -249,6 +249,20 @@ Result<ModelRecord> PlanningService::GetModel(const std::string& id, bool with_d
   return record;
 }
 
+Result<PlanningService::ModelDocument> PlanningService::GetModelDocument(const std::string& id) {
+  Result<ModelRecord> record = store_.GetModel(id, true);
+  if (!record.ok()) return record.status();
+  ModelDocument out;
+  if (IsStoredModelText(record->document)) {
+    out.text = std::move(record->document);
+    return out;
+  }
+  Result<ModelSpec> spec = DecodeStoredModel(record->document);
+  if (!spec.ok()) return InternalError("model " + id + ": " + spec.status().message());
+  out.spec = std::make_shared<const ModelSpec>(std::move(*spec));
+  return out;
+}
+
 Result<std::vector<ModelRecord>> PlanningService::ListModels() { return store_.ListModels(); }
 
 Status PlanningService::DeleteModel(const std::string& id) {

@@ -110,6 +110,15 @@ class PlanningService {
   // `with_document`: `document` is the canonical model text (canonical.h), whatever form
   // the store keeps it in; kInternal if the stored record is corrupt.
   Result<ModelRecord> GetModel(const std::string& id, bool with_document);
+  // The canonical text of a model, for sending: `text` holds it whole for records stored as
+  // text by earlier builds; otherwise `spec` is the decoded model, whose text
+  // WriteCanonicalModelPieces (canonical.h) writes a piece at a time. kNotFound if absent,
+  // kInternal if the stored record is corrupt.
+  struct ModelDocument {
+    std::string text;
+    std::shared_ptr<const ModelSpec> spec;
+  };
+  Result<ModelDocument> GetModelDocument(const std::string& id);
   Result<std::vector<ModelRecord>> ListModels();
   Status DeleteModel(const std::string& id);
 

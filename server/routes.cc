@@ -1,9 +1,12 @@
 // The route table and its handlers: decode -> call the service -> encode. No maths, no
 // locking, no SQL here; status codes for errors come from problem.cc.
 #include <cmath>
+#include <memory>
 #include <string>
+#include <string_view>
 
 #include "server/api_codec.h"
+#include "server/canonical.h"
 #include "server/http_context.h"
 #include "server/http_server.h"
 #include "server/json_codec.h"
@@ -98,10 +101,20 @@ void GetModel(HttpContext& ctx, const Request& req, Response& res) {
   WriteJson(res, 200, EncodeModelRecord(*model).dump());
 }
 
+// Sent in chunks of 1 MiB as it is written: the text of a 1M-state model is 2.4 GB.
 void GetModelDocument(HttpContext& ctx, const Request& req, Response& res) {
-  Result<ModelRecord> model = ctx.service.GetModel(req.matches[1], true);
-  if (!model.ok()) return WriteProblem(res, model.status());
-  WriteJson(res, 200, model->document);
+  Result<PlanningService::ModelDocument> document = ctx.service.GetModelDocument(req.matches[1]);
+  if (!document.ok()) return WriteProblem(res, document.status());
+  if (document->spec == nullptr) return WriteJson(res, 200, document->text);
+  res.status = 200;
+  res.set_chunked_content_provider(
+      "application/json", [spec = document->spec](size_t, httplib::DataSink& sink) {
+        const bool sent = WriteCanonicalModelPieces(
+            *spec, size_t{1} << 20,
+            [&sink](std::string_view piece) { return sink.write(piece.data(), piece.size()); });
+        if (sent) sink.done();
+        return sent;  // False closes the connection: the client went away.
+      });
 }
 
 void DeleteModel(HttpContext& ctx, const Request& req, Response& res) {

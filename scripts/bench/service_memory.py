@@ -8,7 +8,9 @@ Steps: writes a seeded STATES x ACTIONS x OUTCOMES model in the compact arrays e
 server; POSTs the document to /v1/models; solves it (value iteration, loose tolerance: it is
 the memory we measure, not the solve); reads VmRSS/VmHWM again and the byte gauges of
 /metrics (mdpserve_cached_model_bytes, mdpserve_cached_solution_bytes); stops the server by
-PID (SIGTERM, SIGKILL after a timeout).
+PID (SIGTERM, SIGKILL after a timeout). Last, GETs the model's canonical document (checking
+that its SHA-256 starts with the model id) while sampling VmRSS, to show what serving the
+document costs.
 
 Raw bytes (the yardstick) are the numeric arrays the solver needs, each element stored once
 in binary, with the document's counts:
@@ -26,6 +28,7 @@ with 1.5 x raw bytes; the increase over the idle server is reported beside it.
         [--write-only FILE] [--tolerance 1e-2] [--keep-document]
 """
 import argparse
+import hashlib
 import http.client
 import json
 import os
@@ -35,6 +38,7 @@ import signal
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 
 import numpy as np
@@ -185,6 +189,45 @@ class UploadRefused(Exception):
     pass
 
 
+def fetch_document(server, model_id):
+    """GETs the model's canonical document, hashing it as it arrives (its SHA-256 must start
+    with the model id), while a thread samples the server's VmRSS every 20 ms."""
+    samples, done = [], threading.Event()
+
+    def sample():
+        while not done.is_set():
+            samples.append(proc_status(server.proc.pid)["VmRSS"])
+            time.sleep(0.02)
+
+    sampler = threading.Thread(target=sample)
+    sampler.start()
+    conn = http.client.HTTPConnection("127.0.0.1", server.port, timeout=JOB_TIMEOUT)
+    digest, size = hashlib.sha256(), 0
+    start = time.perf_counter()
+    try:
+        conn.request("GET", "/v1/models/%s/document" % model_id)
+        r = conn.getresponse()
+        if r.status != 200:
+            raise RuntimeError("document answered %d: %s" % (r.status, r.read()[:400]))
+        while True:
+            chunk = r.read(1 << 20)
+            if not chunk:
+                break
+            digest.update(chunk)
+            size += len(chunk)
+        chunked = (r.getheader("Transfer-Encoding") or "").lower() == "chunked"
+    finally:
+        conn.close()
+        done.set()
+        sampler.join()
+    seconds = time.perf_counter() - start
+    if digest.hexdigest()[:32] != model_id:
+        raise RuntimeError("the served document does not hash to the model id")
+    return {"served_document_bytes": size, "served_document_seconds": seconds,
+            "served_document_chunked": chunked,
+            "served_document_max_rss_bytes": max(samples) if samples else None}
+
+
 def measure(args, document, workdir):
     server = Server(args.mdpserve, workdir, max(os.path.getsize(document) + (1 << 20), 1 << 20),
                     args.store == "memory")
@@ -224,7 +267,9 @@ def measure(args, document, workdir):
         solved = settle(server.proc.pid)
         status, body = server.request("GET", "/metrics")
         metrics = body.decode()
+        document_step = fetch_document(server, model_id)
         return {
+            **document_step,
             "idle_rss_bytes": idle["VmRSS"],
             "uploaded_rss_bytes": uploaded["VmRSS"],
             "solved_rss_bytes": solved["VmRSS"],

@@ -483,7 +483,16 @@ def service_memory_section(run):
             ("Server VmRSS after the upload", m["uploaded_rss_bytes"]),
             ("**Server VmRSS after the solve**", m["solved_rss_bytes"]),
             ("Server VmHWM (peak, during upload and solve)", m["peak_rss_bytes"])]
+    if m.get("served_document_max_rss_bytes"):
+        rows.append(("Server VmRSS, highest sample while it sent the model's document",
+                     m["served_document_max_rss_bytes"]))
     out += [f"| {name} | {mib(b)} | {b / total:.2f} |" for name, b in rows]
+    if m.get("served_document_bytes"):
+        out += ["", f"`GET /v1/models/{{id}}/document` afterwards sent "
+                f"{m['served_document_bytes'] / 1e6:,.0f} MB of canonical JSON in "
+                f"{secs(m['served_document_seconds'])}"
+                f"{' (chunked, written as it is sent)' if m.get('served_document_chunked') else ''}"
+                "; its SHA-256 matched the model id."]
     return "\n".join(out)
 
 

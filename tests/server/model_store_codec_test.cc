@@ -212,6 +212,35 @@ TEST(ModelStoreCodecTest, PiecewiseIdEqualsTheIdOfTheWholeText) {
   EXPECT_EQ(CanonicalModelId(spec), ModelId(canonical));
 }
 
+// The document route sends the text as WriteCanonicalModelPieces hands it over: in order,
+// byte for byte the whole text, and no further once the receiver says stop.
+TEST(ModelStoreCodecTest, CanonicalPiecesMakeTheWholeTextAndStopWhenAsked) {
+  testing::RandomModelOptions options;
+  options.states = 3000;
+  options.max_outcomes = 8;
+  const ModelSpec spec = testing::RandomSpec(11, options);
+  const std::string canonical = EncodeCanonicalModel(spec);
+  std::string joined;
+  int pieces = 0;
+  EXPECT_TRUE(WriteCanonicalModelPieces(spec, size_t{64} << 10, [&](std::string_view piece) {
+    joined += piece;
+    ++pieces;
+    return true;
+  }));
+  EXPECT_EQ(joined, canonical);
+  EXPECT_GE(pieces, static_cast<int>(canonical.size() / (size_t{80} << 10)));
+
+  int calls = 0;
+  std::string partial;
+  EXPECT_FALSE(WriteCanonicalModelPieces(spec, size_t{64} << 10, [&](std::string_view piece) {
+    partial += piece;
+    return ++calls < 2;
+  }));
+  EXPECT_EQ(calls, 2);
+  EXPECT_EQ(canonical.compare(0, partial.size(), partial), 0);
+  EXPECT_LT(partial.size(), canonical.size());
+}
+
 ModelSpec SmallSpec() {
   ModelDecodeResult decoded = DecodeModel(ReadFile(Examples().front()));
   EXPECT_TRUE(decoded.ok());

@@ -287,6 +287,18 @@ TEST_F(PlanningServiceTest, StoresTheBinaryFormAndServesTheCanonicalText) {
   ASSERT_TRUE(decoded.ok());
   EXPECT_EQ(served->document, EncodeCanonicalModel(decoded.spec));
   EXPECT_EQ(ModelId(served->document), up->record.id);
+  // The document route's form: the decoded model, whose pieces make the same text.
+  Result<PlanningService::ModelDocument> document = service.GetModelDocument(up->record.id);
+  ASSERT_TRUE(document.ok());
+  ASSERT_NE(document->spec, nullptr);
+  EXPECT_TRUE(document->text.empty());
+  std::string joined;
+  EXPECT_TRUE(WriteCanonicalModelPieces(*document->spec, 256, [&](std::string_view piece) {
+    joined += piece;
+    return true;
+  }));
+  EXPECT_EQ(joined, served->document);
+  EXPECT_EQ(service.GetModelDocument("nope").status().code(), StatusCode::kNotFound);
 }
 
 // A record written before the binary form holds the canonical JSON text: it still solves,
@@ -304,6 +316,10 @@ TEST_F(PlanningServiceTest, OldTextRecordsStillLoad) {
   PlanningService service(*store_, ServiceOptions{});
   ASSERT_TRUE(service.Start().ok());
   EXPECT_EQ(service.GetModel(old.id, true)->document, old.document);
+  Result<PlanningService::ModelDocument> document = service.GetModelDocument(old.id);
+  ASSERT_TRUE(document.ok());
+  EXPECT_EQ(document->spec, nullptr);
+  EXPECT_EQ(document->text, old.document);
   Result<SolveStart> start = service.StartSolve(old.id, SolveOptions{});
   ASSERT_TRUE(start.ok() && start->job.has_value());
   const JobView done = WaitForEnd(service, start->job->record.id);
