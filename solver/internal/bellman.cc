@@ -45,6 +45,11 @@ namespace {
                ? ImprovePolicyT<true>(m, v, keep_slack, rows, threads)                        \
                : ImprovePolicyT<false>(m, v, keep_slack, rows, threads);                      \
   }                                                                                            \
+  double CsrCombine(const int64_t* begin, const StateId* next, const double* p, StateId n,    \
+                    const double* base, double sign, const double* x, double* y,               \
+                    int threads) {                                                             \
+    return CsrCombineT(begin, next, p, n, base, sign, x, y, threads);                         \
+  }                                                                                            \
   double GreedySweep(const Model& m, const double* in, double* out, RowId* rows,              \
                      int threads) {                                                            \
     return m.objective() == Objective::kMaximize                                              \
@@ -156,6 +161,12 @@ double PolicySweep(const Model& m, const RowId* rows, const double* in, double* 
 Improvement ImprovePolicy(const Model& m, const double* v, double keep_slack, RowId* rows,
                           int threads) {
   MDP_BELLMAN_DISPATCH(ChooseKernels(m), ImprovePolicy(m, v, keep_slack, rows, threads));
+}
+
+double CsrCombine(const int64_t* begin, const StateId* next, const double* p, StateId n,
+                  const double* base, double sign, const double* x, double* y, int threads,
+                  KernelSet k) {
+  MDP_BELLMAN_DISPATCH(k, CsrCombine(begin, next, p, n, base, sign, x, y, threads));
 }
 
 double GreedySweep(const Model& m, const double* in, double* out, RowId* rows, int threads) {

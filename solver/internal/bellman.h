@@ -86,6 +86,13 @@ Improvement ImprovePolicy(const Model& m, const double* v, double keep_slack, Ro
 // out = T in and rows = the first best row of each state; returns sup |out - in|.
 double GreedySweep(const Model& m, const double* in, double* out, RowId* rows, int threads);
 
+// y[s] = base[s] + sign * sum_e p[e] x[next[e]] over the entries [begin[s], begin[s + 1]) of
+// a CSR matrix of n rows (a policy's rows copied out: internal/policy_matrix.h); returns
+// sup |y - x|. y must not alias x.
+double CsrCombine(const int64_t* begin, const StateId* next, const double* p, StateId n,
+                  const double* base, double sign, const double* x, double* y, int threads,
+                  KernelSet k);
+
 // The same sweeps with the copy named (kGather falls back to kPortable on a CPU without
 // AVX2 and FMA): for tests and benchmarks.
 double SyncSweep(const Model& m, const double* in, double* out, int threads, KernelSet k);

@@ -8,6 +8,7 @@ namespace mdp::internal {
 void PolicyMatrix::Assign(const Model& m, const RowId* rows, int threads) {
   const StateId n = m.num_states();
   discount_ = m.discount();
+  kernels_ = ChooseKernels(m);
   begin_.resize(static_cast<size_t>(n) + 1);
   reward_.resize(n);
   diagonal_.resize(n);
@@ -37,18 +38,8 @@ void PolicyMatrix::Assign(const Model& m, const RowId* rows, int threads) {
 }
 
 double PolicyMatrix::Apply(const double* x, double* y, int threads) const {
-  const StateId n = size();
-  double diff = 0.0;
-#pragma omp parallel for num_threads(threads) reduction(max : diff) schedule(static, 4096)
-  for (StateId s = 0; s < n; ++s) {
-    double acc = reward_[s];
-    for (int64_t e = begin_[s], end = begin_[s + 1]; e < end; ++e) {
-      acc += scaled_probability_[e] * x[next_[e]];
-    }
-    diff = std::max(diff, std::fabs(acc - x[s]));
-    y[s] = acc;
-  }
-  return diff;
+  return CsrCombine(begin_.data(), next_.data(), scaled_probability_.data(), size(),
+                    reward_.data(), 1.0, x, y, threads, kernels_);
 }
 
 double PolicyMatrix::GaussSeidel(double* x) const {
@@ -83,15 +74,8 @@ void PolicyMatrix::LowerSolve(const double* b, double* z) const {
 }
 
 void PolicyMatrix::MultiplySystem(const double* x, double* y, int threads) const {
-  const StateId n = size();
-#pragma omp parallel for num_threads(threads) schedule(static, 4096)
-  for (StateId s = 0; s < n; ++s) {
-    double acc = 0.0;
-    for (int64_t e = begin_[s], end = begin_[s + 1]; e < end; ++e) {
-      acc += scaled_probability_[e] * x[next_[e]];
-    }
-    y[s] = x[s] - acc;
-  }
+  CsrCombine(begin_.data(), next_.data(), scaled_probability_.data(), size(), x, -1.0, x, y,
+             threads, kernels_);
 }
 
 namespace {

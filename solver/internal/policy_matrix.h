@@ -13,6 +13,7 @@
 #include <functional>
 #include <vector>
 
+#include "solver/internal/bellman.h"
 #include "solver/model.h"
 
 namespace mdp::internal {
@@ -43,6 +44,7 @@ class PolicyMatrix {
 
  private:
   double discount_ = 0.0;
+  KernelSet kernels_ = KernelSet::kPortable;  // ChooseKernels of the model (bellman.h).
   std::vector<int64_t> begin_;  // Size states + 1.
   std::vector<StateId> next_;
   std::vector<double> scaled_probability_;  // g p(s' | s, pi(s)).

@@ -171,6 +171,47 @@ TEST(BellmanKernelsTest, GatherIsChosenForLargeScatteredModelsOnly) {
   EXPECT_EQ(internal::ChooseKernels(small), KernelSet::kPortable);
 }
 
+// CsrCombine (policy_matrix.h's products) against its definition, with rows of 0 to 12
+// entries, for both copies and both signs.
+TEST(BellmanKernelsTest, CsrCombineComputesItsDefinition) {
+  std::mt19937_64 rng(21);
+  const StateId n = 3000;
+  std::vector<int64_t> begin = {0};
+  std::vector<StateId> next;
+  std::vector<double> p;
+  for (StateId s = 0; s < n; ++s) {
+    const int length = static_cast<int>(rng() % 13);
+    for (int k = 0; k < length; ++k) {
+      next.push_back(static_cast<StateId>(rng() % n));
+      p.push_back(std::uniform_real_distribution<double>(0.0, 1.0)(rng));
+    }
+    begin.push_back(static_cast<int64_t>(next.size()));
+  }
+  const std::vector<double> x = SomeValues(n, 17), base = SomeValues(n, 19);
+  for (double sign : {1.0, -1.0}) {
+    std::vector<double> expected(n);
+    double expected_diff = 0.0;
+    for (StateId s = 0; s < n; ++s) {
+      long double dot = 0.0L;
+      for (int64_t e = begin[s]; e < begin[s + 1]; ++e) {
+        dot += static_cast<long double>(p[e]) * x[next[e]];
+      }
+      expected[s] = static_cast<double>(base[s] + sign * dot);
+      expected_diff = std::max(expected_diff, std::fabs(expected[s] - x[s]));
+    }
+    const double tolerance = 1e-13 * Scale(expected);
+    for (KernelSet k : {KernelSet::kPortable, KernelSet::kGather}) {
+      SCOPED_TRACE("kernels " + std::to_string(static_cast<int>(k)) + ", sign " +
+                   std::to_string(sign));
+      std::vector<double> y(n, 0.0);
+      const double diff = internal::CsrCombine(begin.data(), next.data(), p.data(), n,
+                                               base.data(), sign, x.data(), y.data(), 2, k);
+      for (StateId s = 0; s < n; ++s) ASSERT_NEAR(y[s], expected[s], tolerance) << "row " << s;
+      EXPECT_NEAR(diff, expected_diff, tolerance);
+    }
+  }
+}
+
 // A finite horizon's stage uses its own discount (here 1 and 0.5, not the model's 0.97 or
 // 0.9), on a small model (portable copy) and on a large scattered one (the gather copy where
 // the CPU has it).
