@@ -151,8 +151,9 @@ struct AverageRewardSolution {
   // by at most max_C |r + P h - h - g|; on the transient states add the gain system's
   // residual times the expected time to absorption (bounded from a solve of its own), plus
   // a rounding allowance. The solves aim at residuals that keep it near options.tolerance /
-  // 100 (the transient gains' aim is divided by the absorption time, LU taking over when
-  // that is below the iterative solver's rounding floor).
+  // 100 (the transient gains' aim is divided by the absorption time, a direct solve taking
+  // over when that is below the iterative solver's rounding floor and its factors fit the
+  // memory budget of internal/mmatrix_lu.h).
   double state_gain_error = 0.0;
   // Residual of (ME1)-(ME2) at (state_gain, bias): the larger of
   // max_s |best_a sum p state_gain - state_gain[s]| and
@@ -198,7 +199,7 @@ struct AverageRewardSolution {
   // differing between states: max_s (state_gain[s] - g^pi(s)) (kMinimize: the reverse) by an
   // exact evaluation of pi (skipped, giving 0, when pi is the evaluated policy), plus
   // optimality_residual: an estimate as good as the evaluation, not a certificate; NaN if
-  // cancelled during that evaluation.
+  // that evaluation was cut short (cancel, the time limit) or could not be done.
   double policy_loss_bound = 0.0;
 
   // Chain structure of the best_row policy.
@@ -225,7 +226,12 @@ Result<AverageRewardSolution> RelativeValueIteration(const Model& m,
 // evaluated exactly, one recurrent class at a time: g + h(s) = r_pi(s) + sum P_pi h on the
 // class with h = 0 at its smallest state (a sparse system in which g takes that state's
 // unknown), then the transient states, whose gain is the absorption-weighted class gains
-// (sparse LU up to a few thousand states, BiCGSTAB beyond). Improvement first seeks a better
+// (Eigen's sparse LU up to 3,000 unknowns; beyond, the M-matrix factors of
+// internal/mmatrix_lu.h when their counted fill fits the budget, else BiCGSTAB). The bias is
+// solved pinned at the class's most visited state, then shifted to 0 at its smallest state.
+// After a factored evaluation, improvement looks 64 Gauss-Seidel sweeps ahead (the gain
+// cannot drop, and no look-ahead step returns to a policy already evaluated, so the loop
+// ends). Improvement first seeks a better
 // gain (best_a sum p g) and, when no state finds one, a better q among the actions that keep
 // the gain, keeping the current action unless another beats it by more than a small slack:
 // Howard's method, in its multichain form (Puterman 1994, sec. 9.2, from memory), which
@@ -236,8 +242,10 @@ Result<AverageRewardSolution> RelativeValueIteration(const Model& m,
 // the policy is stable and optimality_residual and state_gain_error are within
 // options.tolerance.
 // Returns kInvalidArgument for bad options; kResourceExhausted if memory runs out; kInternal
-// if a linear solve fails. A run stopped by a limit or cancel returns the last evaluated
-// policy's gain and bias, with a valid bracket. options.aperiodicity is not used.
+// if the first policy's evaluation fails. A later policy that cannot be evaluated in double
+// precision is retried with half of its switches, and the run ends kStalled if even one
+// switch cannot be. The time limit and cancel are heard inside an evaluation too. A run
+// stopped early returns the evaluated bias with the narrowest bracket, which is valid. options.aperiodicity is not used.
 // `progress` (may be null) is called once per improvement.
 Result<AverageRewardSolution> AverageRewardPolicyIteration(const Model& m,
                                                            const AverageRewardOptions& options,

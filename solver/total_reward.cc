@@ -5,6 +5,7 @@
 #include <Eigen/SparseLU>
 #include <algorithm>
 #include <cmath>
+#include <functional>
 #include <iterator>
 #include <limits>
 #include <new>
@@ -17,6 +18,7 @@
 #include "solver/average_reward.h"
 #include "solver/internal/bellman.h"
 #include "solver/internal/run_control.h"
+#include "solver/internal/total_policy.h"
 
 namespace mdp {
 namespace {
@@ -578,12 +580,16 @@ class PolicySystem {
 };
 
 struct Evaluation {
-  Vector values;              // V on the local states.
-  Vector steps;               // N.
-  double residual = kInf;     // rho, bound on sup|(I - P) V - r|.
-  double steps_bound = kInf;  // Nbar >= max N^mu.
-  double error_bound = kInf;  // rho * Nbar >= sup|V - V^mu|.
+  Vector values;               // V on the local states.
+  Vector steps;                // N.
+  double residual = kInf;      // rho, bound on sup|(I - P) V - r|.
+  double steps_bound = kInf;   // Nbar >= max N^mu.
+  double error_bound = kInf;   // rho * Nbar >= sup|V - V^mu|.
+  bool steps_reported = true;  // N met kStepsResidual, the accuracy expected_steps states.
 };
+
+// Target residual of the expected steps N, in steps (they are reported, so solved tightly).
+constexpr double kStepsResidual = 1e-9;
 
 // Solves for N, then for V aiming at rho * Nbar <= tolerance / 1000 (header, Bounds).
 Status Evaluate(PolicySystem& system, double tolerance, const CancelToken* cancel, Evaluation& e) {
@@ -592,7 +598,7 @@ Status Evaluate(PolicySystem& system, double tolerance, const CancelToken* cance
     e.residual = e.steps_bound = e.error_bound = 0.0;
     return Status::Ok();
   }
-  Result<double> rho_n = system.Solve(ones, 1e-9, cancel, e.steps);
+  Result<double> rho_n = system.Solve(ones, kStepsResidual, cancel, e.steps);
   if (!rho_n.ok()) return rho_n.status();
   e.steps_bound = kInf;
   if (*rho_n < 0.5) e.steps_bound = std::max(0.0, e.steps.maxCoeff()) / (1.0 - *rho_n);
@@ -604,14 +610,19 @@ Status Evaluate(PolicySystem& system, double tolerance, const CancelToken* cance
   return Status::Ok();
 }
 
-// V on every state: the local values, 0 at goals, NaN outside A.
-std::vector<double> FullValues(const Model& m, const Index& index, const Vector& v) {
+// V on every state: the local values, 0 at goals, NaN outside A (and on the local states
+// too when v is null: unknown).
+std::vector<double> FullValues(const Model& m, const Index& index, const double* v) {
   std::vector<double> out(m.num_states(), kNaN);
   for (StateId s = 0; s < m.num_states(); ++s) {
     if (m.terminal(s)) out[s] = 0.0;
   }
+  if (v == nullptr) return out;
   for (size_t i = 0; i < index.states.size(); ++i) out[index.states[i]] = v[i];
   return out;
+}
+std::vector<double> FullValues(const Model& m, const Index& index, const Vector& v) {
+  return FullValues(m, index, v.data());
 }
 
 // ---------------------------------------------------------------------------------------
@@ -831,21 +842,106 @@ void MakePicksProper(const Model& m, const Index& index, const std::vector<uint8
   });
 }
 
-// Expected steps under the picks, and the policy loss bound (header comment).
+// ---------------------------------------------------------------------------------------
+// Step 4 at scale: inexact evaluation (header comment, "Large models").
+
+// Share of the last Bellman residual that an evaluation's error bound may reach while the
+// policy still changes; tenfold tighter whenever an improvement fails to halve the residual
+// (the rule of discounted policy iteration, policy_iteration.cc).
+constexpr double kEvaluationShare = 0.002;
+// Residual of N while the policy still changes: Nbar = max N / (1 - rho_N) then overstates
+// max N^mu by at most 11 %, which is all the slack of an improvement needs.
+constexpr double kLooseStepsResidual = 0.1;
+// Work (products with P_mu) one solve may spend; only a cap against pathological cases, as
+// the time limit and cancel are polled inside.
+constexpr double kSolveWork = 1e5;
+// After a stop, the work the report may still spend on expected steps, unpolled: bounds how
+// far a time limit is overrun.
+constexpr double kGraceWork = 20.0;
+// Work the report may spend on the expected steps of picks other than the final policy.
+constexpr double kReportWork = 2000.0;
+// Final-accuracy rounds on one policy that halve neither residual before the iteration
+// settles for the bound it has (the outcome says stalled if that misses the tolerance).
+constexpr int kStalledRounds = 3;
+
+// kAuto solves exactly up to kDirectMaxStates local states (as evaluate.h); kBiCgStab and
+// kSweeps always take the inexact path (kSweeps with Gauss-Seidel only).
+bool InexactEvaluation(LinearSolver kind, int64_t size) {
+  return kind == LinearSolver::kBiCgStab || kind == LinearSolver::kSweeps ||
+         (kind == LinearSolver::kAuto && size > kDirectMaxStates);
+}
+
+// What the inexact iteration and the report share.
+struct InexactRun {
+  InexactRun(const TotalRewardOptions& options, const internal::RunControl& control)
+      : threads(internal::ThreadCount(options.threads)),
+        factor_band(options.linear_solver == LinearSolver::kAuto),
+        interrupted([&control, limit = options.time_limit_seconds] {
+          return control.cancelled() || (limit > 0 && control.elapsed_seconds() >= limit);
+        }) {
+    plan.sweeps_only = options.linear_solver == LinearSolver::kSweeps;
+  }
+  const int threads;
+  // kAuto also solves narrow-banded policies (chains, small grids) by banded LU: there the
+  // iterations are slowest and the factors cheapest.
+  const bool factor_band;
+  const std::function<bool()> interrupted;  // Cancel or time limit.
+  internal::TotalSolvePlan plan;
+  internal::TotalPolicyMatrix policy;
+};
+
+// Nbar = max N / (1 - rho_N) >= max N^mu when rho_N < 1 (header, Bounds); kept only for
+// rho_N < 0.5, as Evaluate does. At least 1: every local state needs a step.
+double StepsBound(double rho, const double* steps, int64_t size) {
+  if (!(rho < 0.5)) return kInf;
+  double most = 1.0;
+  for (int64_t i = 0; i < size; ++i) most = std::max(most, steps[i]);
+  return most / (1.0 - rho);
+}
+
+// Solves (I - P_rows) N = 1 for the report from the warm start `steps`. Returns whether
+// kStepsResidual was met (else the steps are unknown) and sets `bound` to Nbar.
+Result<bool> SolveReportSteps(const Model& m, const Index& index, const std::vector<RowId>& rows,
+                              LinearSolver kind, InexactRun* run, bool stopped, int64_t& sweeps,
+                              Vector& steps, double& bound) {
+  const int64_t size = static_cast<int64_t>(index.states.size());
+  if (run == nullptr) {
+    PolicySystem system(m, index, rows, kind);
+    Result<double> rho = system.Solve(Vector::Ones(size), kStepsResidual, nullptr, steps);
+    if (!rho.ok()) return rho.status();
+    bound = *rho < 0.5 ? std::max(0.0, steps.maxCoeff()) / (1.0 - *rho) : kInf;
+    return true;
+  }
+  const std::function<bool()> never = [] { return false; };
+  std::vector<double> x(steps.data(), steps.data() + size);
+  run->policy.Assign(m, index.states, index.local, rows, run->threads, run->factor_band);
+  const internal::TotalSolveResult r =
+      internal::SolveTotalSystem(run->policy, std::vector<double>(size, 1.0), kStepsResidual,
+                                 stopped ? kGraceWork : kReportWork, run->threads,
+                                 stopped ? never : run->interrupted, run->plan, x);
+  sweeps += static_cast<int64_t>(std::ceil(r.work));
+  steps = Eigen::Map<const Vector>(x.data(), size);
+  bound = StepsBound(r.residual, x.data(), size);
+  return r.reached;
+}
+
+// Expected steps under the picks, and the policy loss bound (header comment). `run` is null
+// on the exact path.
 template <bool kMaximize>
 Status FinishPicks(const Model& m, const Index& index, const std::vector<double>& v,
                    const std::vector<RowId>& mu, const Evaluation& eval, bool stable,
-                   TotalRewardSolution& out) {
+                   InexactRun* run, TotalRewardSolution& out) {
   Vector steps = eval.steps;
   double steps_bound = eval.steps_bound;
-  if (out.best_row != mu) {
-    PolicySystem system(m, index, out.best_row, out.options.linear_solver);
-    Result<double> rho = system.Solve(Vector::Ones(steps.size()), 1e-9, nullptr, steps);
-    if (!rho.ok()) return rho.status();
-    steps_bound = *rho < 0.5 ? std::max(0.0, steps.maxCoeff()) / (1.0 - *rho) : kInf;
+  bool reported = eval.steps_reported;
+  if (out.best_row != mu || !reported) {
+    Result<bool> met = SolveReportSteps(m, index, out.best_row, out.options.linear_solver, run,
+                                        !stable, out.sweeps, steps, steps_bound);
+    if (!met.ok()) return met.status();
+    reported = *met;
   }
-  out.expected_steps = FullValues(m, index, steps);
-  out.max_expected_steps = steps.size() > 0 ? steps.maxCoeff() : 0.0;
+  out.expected_steps = FullValues(m, index, reported ? steps.data() : nullptr);
+  out.max_expected_steps = !reported ? kNaN : steps.size() > 0 ? steps.maxCoeff() : 0.0;
   double behind = 0.0;  // max_s w(s), header comment.
   double scale = 0.0;
   int64_t terms = 1;
@@ -885,8 +981,6 @@ std::string SomeStates(const Model& m, const std::vector<uint8_t>& in_a) {
 
 // Steps 1 and 2 in the form the rest needs.
 struct Analysis {
-  explicit Analysis(const Model& m) : graph(m), reach(AlmostSureReach(m, graph)) {}
-  Graph graph;
   Reach reach;
   Index index;
   double reward_scale = 1.0;  // max(1, max |r|) over the safe rows.
@@ -895,6 +989,10 @@ struct Analysis {
 Status Analyse(const Model& m, const TotalRewardOptions& options, internal::RunControl& control,
                const CancelToken* cancel, Analysis& a, TotalRewardSolution& out) {
   const StateId n = m.num_states();
+  // The backward graph holds a row id per entry (a quarter of a million-state model's bytes);
+  // only steps 1 and 2 read it, so it is dropped before the end components are solved.
+  std::optional<Graph> graph(std::in_place, m);
+  a.reach = AlmostSureReach(m, *graph);
   bool any_goal = false;
   for (StateId s = 0; s < n && !any_goal; ++s) any_goal = m.terminal(s);
   if (!any_goal) {
@@ -916,7 +1014,8 @@ Status Analyse(const Model& m, const TotalRewardOptions& options, internal::RunC
         "no state can reach a goal (terminal state) with probability 1 under any policy, e.g. " +
         SomeStates(m, a.reach.in_a));
   }
-  const EndComponents ec = FindEndComponents(m, a.graph, a.reach);
+  const EndComponents ec = FindEndComponents(m, *graph, a.reach);
+  graph.reset();
   out.end_components = ec.count;
   return CheckEndComponents(m, ec, 1e-9 * a.reward_scale, options, control, cancel);
 }
@@ -973,6 +1072,108 @@ Status Iterate(const Model& m, const Analysis& a, const TotalRewardOptions& opti
   }
 }
 
+// Step 4 with inexact evaluations, from the attractor (header comment, "Large models").
+// Returns with `it` holding the last policy whose evaluation completed (or, if the first one
+// was interrupted, that partial one): its bounds are computed from its residuals either way.
+template <bool kMaximize>
+Status IterateInexact(const Model& m, const Analysis& a, const TotalRewardOptions& options,
+                      internal::RunControl& control, InexactRun& run, Iteration& it,
+                      TotalRewardSolution& out) {
+  const int64_t size = static_cast<int64_t>(a.index.states.size());
+  const std::vector<double> ones(size, 1.0);
+  std::vector<double> v(size, 0.0), steps(size, 0.0), scratch(size);
+  std::vector<RowId> rows = a.reach.attractor;  // The policy being evaluated.
+  run.policy.Assign(m, a.index.states, a.index.local, rows, run.threads, run.factor_band);
+  double e = a.reward_scale;  // The Bellman residual of V = 0 is at most max |r|.
+  double share = kEvaluationShare;
+  bool final_round = false;  // Evaluating `rows` to the report's accuracy.
+  bool evaluated = false;    // `it` holds an evaluation.
+  bool same_policy = false;  // rows == it.rows.
+  double last_residual = kInf, last_steps_residual = kInf;
+  int stalled_rounds = 0;
+  for (;;) {
+    // N first: its bound Nbar turns every residual target into an error bound.
+    const internal::TotalSolveResult n = internal::SolveTotalSystem(
+        run.policy, ones, final_round ? kStepsResidual : kLooseStepsResidual, kSolveWork,
+        run.threads, run.interrupted, run.plan, steps);
+    out.sweeps += static_cast<int64_t>(std::ceil(n.work));
+    const double nbar = StepsBound(n.residual, steps.data(), size);
+    internal::TotalSolveResult r;  // Without Nbar, V has no target: left for a later round.
+    r.residual = kInf;
+    r.interrupted = n.interrupted;
+    if (!n.interrupted && std::isfinite(nbar)) {
+      // As Evaluate at the end; meanwhile a share of the Bellman residual (inexact Newton).
+      const double final_target = 1e-3 * options.tolerance / nbar;
+      const double target = final_round ? final_target : std::max(final_target, share * e / nbar);
+      r = internal::SolveTotalSystem(run.policy, run.policy.reward(), target, kSolveWork,
+                                     run.threads, run.interrupted, run.plan, v);
+      out.sweeps += static_cast<int64_t>(std::ceil(r.work));
+    }
+    const double eps = std::isfinite(nbar) ? r.residual * nbar : kInf;
+    // A completed evaluation always replaces the last; an interrupted one only if there is
+    // none, or if it is of the same policy with a smaller bound.
+    const bool interrupted = n.interrupted || r.interrupted;
+    if (!interrupted || !evaluated || (same_policy && eps < it.eval.error_bound)) {
+      if (!same_policy) it.rows = rows;
+      it.eval.values = Eigen::Map<const Vector>(v.data(), size);
+      it.eval.steps = Eigen::Map<const Vector>(steps.data(), size);
+      it.eval.residual = r.residual;
+      it.eval.steps_bound = nbar;
+      it.eval.error_bound = eps;
+      it.eval.steps_reported = final_round && n.reached;
+      it.v = FullValues(m, a.index, v.data());
+      evaluated = same_policy = true;
+    }
+    if (interrupted) {
+      it.stop = control.cancelled() ? SolveOutcome::kCancelled : SolveOutcome::kTimeLimit;
+      return Status::Ok();
+    }
+    double v_max = 0.0;
+    for (double x : v) v_max = std::max(v_max, std::fabs(x));
+    std::vector<RowId> next = rows;
+    Improvement step =
+        Improve<kMaximize>(m, a.index, a.reach.safe, it.v.data(), v_max, eps, run.threads, next);
+    if (step.changed > 0) KeepProper(m, a.index, rows, it.v.data(), next, step);
+    ++out.iterations;
+    ++out.sweeps;
+    out.improvement_slack = step.slack;
+    if (step.changed == 0) {
+      // mu may be optimal: evaluate it to the report's accuracy before saying so.
+      if (final_round && n.reached && r.reached) {
+        it.stable = true;
+        return Status::Ok();
+      }
+      if (final_round) {
+        const bool progress =
+            r.residual < 0.5 * last_residual || n.residual < 0.5 * last_steps_residual;
+        stalled_rounds = progress ? 0 : stalled_rounds + 1;
+        if (stalled_rounds >= kStalledRounds) {
+          it.stable = true;  // Outcome stalled unless the bound meets the tolerance.
+          return Status::Ok();
+        }
+      }
+      last_residual = r.residual;
+      last_steps_residual = n.residual;
+      final_round = true;
+    }
+    it.stop =
+        control.After(out.iterations, out.sweeps, step.residual, step.residual * nbar, "improve");
+    if (it.stop) return Status::Ok();
+    if (step.changed == 0) continue;
+    if (step.residual > 0.5 * e) share *= 0.1;
+    e = step.residual;
+    final_round = same_policy = false;
+    stalled_rounds = 0;
+    last_residual = last_steps_residual = kInf;
+    rows.swap(next);
+    run.policy.Assign(m, a.index.states, a.index.local, rows, run.threads, run.factor_band);
+    // Warm start: T_mu' V, one backup of the new policy ahead of V (N keeps mu's).
+    run.policy.Residual(run.policy.reward().data(), v.data(), scratch.data(), run.threads);
+    for (int64_t i = 0; i < size; ++i) v[i] += scratch[i];
+    ++out.sweeps;
+  }
+}
+
 template <bool kMaximize>
 Result<TotalRewardSolution> SolveT(const Model& m, const TotalRewardOptions& options,
                                    const ProgressFn* progress, const CancelToken* cancel) {
@@ -980,10 +1181,16 @@ Result<TotalRewardSolution> SolveT(const Model& m, const TotalRewardOptions& opt
   internal::RunControl control(limits, progress, cancel);
   TotalRewardSolution out;
   out.options = options;
-  Analysis a(m);
+  Analysis a;
   MDP_RETURN_IF_ERROR(Analyse(m, options, control, cancel, a, out));
   Iteration it;
-  MDP_RETURN_IF_ERROR(Iterate<kMaximize>(m, a, options, control, cancel, it, out));
+  std::optional<InexactRun> run;
+  if (InexactEvaluation(options.linear_solver, static_cast<int64_t>(a.index.states.size()))) {
+    run.emplace(options, control);
+    MDP_RETURN_IF_ERROR(IterateInexact<kMaximize>(m, a, options, control, *run, it, out));
+  } else {
+    MDP_RETURN_IF_ERROR(Iterate<kMaximize>(m, a, options, control, cancel, it, out));
+  }
 
   // Step 5.
   out.evaluation_residual = it.eval.residual;
@@ -999,7 +1206,8 @@ Result<TotalRewardSolution> SolveT(const Model& m, const TotalRewardOptions& opt
   out.best_row = Report<kMaximize>(m, a.index, a.reach, it.v, threads, candidate, out);
   MakePicksProper(m, a.index, candidate, it.rows, out.best_row);
   ++out.sweeps;
-  MDP_RETURN_IF_ERROR(FinishPicks<kMaximize>(m, a.index, it.v, it.rows, it.eval, it.stable, out));
+  MDP_RETURN_IF_ERROR(FinishPicks<kMaximize>(m, a.index, it.v, it.rows, it.eval, it.stable,
+                                             run ? &*run : nullptr, out));
   out.reaches_goal = std::move(a.reach.in_a);
   out.safe_row = std::move(a.reach.safe);
   out.solve_seconds = control.elapsed_seconds();

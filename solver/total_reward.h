@@ -66,6 +66,25 @@
 //    proved here directly because their assumption (every improper policy has infinite
 //    cost) fails when zero-reward loops exist.
 //
+// Large models (inexact evaluation). Above 3,000 non-goal states of A (LinearSolver::kAuto),
+// and always with kBiCgStab or kSweeps, no evaluation is exact: each policy's rows are copied
+// out (internal/total_policy.h) and N, then V, are improved from warm starts (the last
+// policy's N and T_mu' V) by restarted BiCGSTAB or Gauss-Seidel sweeps (with kAuto, a policy
+// whose system is narrow-banded, as chains and small grids are, by banded LU instead),
+// polling cancel and the time limit. While the policy changes, N is solved to rho_N <= 0.1
+// and V to an error bound rho Nbar <= share * e (e the last Bellman residual, share 0.002,
+// tenfold tighter whenever an improvement fails to halve e): the improvement rule above,
+// with eps_V = rho Nbar, still makes every switch a true strict improvement, so the argument
+// above holds unchanged. Only when no row improves is the same policy evaluated to the exact
+// path's accuracy (N to 1e-9, V to 1e-3 tolerance / Nbar, or the rounding floor) and
+// improved once more; the run is stable when that changes nothing. If three such rounds in a
+// row halve neither residual, it stops as stable with the bound it has (outcome kStalled
+// unless it meets the tolerance). A stop (cancel, time limit) keeps the last completed
+// evaluation, or the interrupted first one; its bounds are computed from its own residuals,
+// so they are honest, if loose. The expected steps of the report are solved for the picks
+// to the 1e-9 residual; after a stop with only a little more work (unpolled, a bounded
+// overrun), and they are NaN when that residual was not met.
+//
 // Bounds (all sup-norms over A minus the goals).
 //  - evaluation_error_bound: rho_N = sup|(I - P_mu) N - 1| < 1 gives
 //    max N^mu <= max N / (1 - rho_N) =: Nbar, and rho = sup|(I - P_mu) V - r_mu| gives
@@ -103,9 +122,10 @@ struct TotalRewardOptions {
   int64_t max_iterations = 100000;  // Improvement steps; outcome kIterationLimit when reached.
   double time_limit_seconds = 0.0;  // 0 means no limit; else outcome kTimeLimit.
   double tie_tolerance = 1e-9;      // Slack (reward units) when grouping tied actions.
-  // Evaluation: kAuto is sparse LU up to 3000 states, BiCGSTAB beyond (falling back to LU
-  // when it stalls); kSweeps is Gauss-Seidel on the linear system (converges because
-  // I - P_mu is a nonsingular M-matrix for a proper mu).
+  // Evaluation: kAuto is exact (sparse LU) up to 3000 non-goal states of A, and inexact
+  // beyond ("Large models" above); kBiCgStab is inexact at any size; kSweeps is inexact with
+  // Gauss-Seidel sweeps only (they converge because I - P_mu is a nonsingular M-matrix for a
+  // proper mu); kDirect is sparse LU at any size.
   LinearSolver linear_solver = LinearSolver::kAuto;
   int threads = 1;  // Threads for the improvement and final passes; 0 = all cores.
 };
@@ -171,7 +191,9 @@ struct TotalRewardSolution {
   double policy_loss_bound = 0.0;  // sup (V* - V^best_row) (mirror); NaN when stopped.
 
   // Per state: expected steps to a goal under best_row, from (I - P) N = 1; 0 at goals,
-  // NaN outside A. max_expected_steps is its maximum over A (0 if A holds only goals).
+  // NaN outside A. max_expected_steps is its maximum over A (0 if A holds only goals). Both
+  // NaN on the non-goal states of A when an inexact solve did not reach (I - P) N = 1 within
+  // 1e-9 (possible after a stop: "Large models").
   std::vector<double> expected_steps;
   double max_expected_steps = 0.0;
 };
@@ -180,13 +202,15 @@ struct TotalRewardSolution {
 // bad options; kFailedPrecondition if the model has no goal, if no non-goal state can reach
 // one w.p. 1, or if a loop earns in the wrong direction (the message names up to 10 of its
 // states, the actions it takes and its reward per step, and suggests a fix);
-// kResourceExhausted if memory runs out; kInternal if a linear solve fails. Cancel and the
-// time limit are polled once per improvement, and cancel also inside the iterative linear
-// solves of every evaluation but the first; a stopped run returns the last fully evaluated
-// policy. A cancel or time limit during the end-component check that leaves a loop's sign
-// undecided returns kCancelled or kDeadlineExceeded.
-// `progress` (may be null) is called once per improvement that changed the policy, with
-// residual = the Bellman residual of V and error_bound = residual * max N^mu (an estimate).
+// kResourceExhausted if memory runs out; kInternal if a linear solve fails. Exact path:
+// cancel and the time limit are polled once per improvement, and cancel also inside the
+// iterative linear solves of every evaluation but the first; a stopped run returns the last
+// fully evaluated policy. Inexact path: both are polled inside every solve, about once per
+// two products with P_mu ("Large models"). A cancel or time limit during the end-component
+// check that leaves a loop's sign undecided returns kCancelled or kDeadlineExceeded.
+// `progress` (may be null) is called once per improvement that changed the policy (inexact
+// path: and once per improvement that did not, but left the evaluation to be tightened),
+// with residual = the Bellman residual of V and error_bound = residual * Nbar (an estimate).
 Result<TotalRewardSolution> TotalRewardPolicyIteration(const Model& m,
                                                        const TotalRewardOptions& options,
                                                        const ProgressFn* progress,

@@ -6,11 +6,12 @@
 #define MDP_SOLVER_INTERNAL_AVERAGE_CHAINS_H_
 
 #include <cstdint>
+#include <limits>
 #include <span>
 #include <vector>
 
+#include "solver/internal/stop_check.h"
 #include "solver/model.h"
-#include "solver/progress.h"
 #include "solver/status.h"
 
 namespace mdp::internal {
@@ -51,21 +52,55 @@ struct AverageEvaluation {
   std::vector<double> class_gain;  // Per recurrent class.
   std::vector<double> gain;        // Per state: g = P g, the class gain on each class.
   std::vector<double> bias;        // Per state; 0 at the smallest state of each class.
+  // Per state: its stationary probability within its class where a factored solve found it
+  // (classes above EvaluateOptions().direct_max_states states), else 0. The next
+  // evaluation anchors its solve at the most visited state (see the .cc).
+  std::vector<double> stationary;
   // A bound on max_s |gain(s) - g^pi(s)| from the solves' residuals (without the rounding
   // in computing them); may be +infinity.
   double gain_error = 0.0;
+  // The fewest unknowns of a system whose factors this evaluation (or one it followed)
+  // declined, else the largest int32_t. An evaluation given this one as `previous` solves
+  // systems at least as large by BiCGSTAB without planning factors.
+  int32_t declined_factor_size = std::numeric_limits<int32_t>::max();
 };
+
+// How a system of EvaluateAverage is solved.
+enum class AverageSolver {
+  kSmallLu,    // Up to EvaluateOptions().direct_max_states unknowns: Eigen's sparse LU.
+  kFactored,   // Beyond: MMatrixLu (internal/mmatrix_lu.h), when its factors fit the budget.
+  kIterative,  // Beyond, when they do not: BiCGSTAB.
+};
+
+// What EvaluateAverage did, for tests and measurements.
+struct AverageSolveCounts {
+  int64_t small_lu = 0;  // Systems solved by each solver (a system that fell back from
+  int64_t factored = 0;  // BiCGSTAB to factors counts under both).
+  int64_t iterative = 0;
+  int64_t reanchored = 0;  // Factorisations redone at another anchor (average_chains.cc).
+};
+
+// The factored solver is used beyond EvaluateOptions().direct_max_states unknowns iff its
+// factors take at most FactorBudgetBytes(m) and at most kFactorWorkPerEntry multiply-adds
+// per entry of the system plus kFactorWorkFloor (about 500 BiCGSTAB iterations' work, which
+// a badly conditioned system easily needs). When BiCGSTAB then misses its target, the
+// factors are used if they fit the memory budget, whatever the work.
+inline constexpr double kFactorWorkPerEntry = 2000.0;
+inline constexpr double kFactorWorkFloor = 1e9;
+// Four times the bytes of the model's transitions (next state and probability per entry),
+// and at least 512 MiB.
+double FactorBudgetBytes(const Model& m);
 
 // Solves (I - P) g = 0, g + (I - P) h = r for the policy `rows` (as AnalyseChain), with
 // h = 0 at the smallest state of each recurrent class, which makes the solution unique
-// (Puterman 1994, Markov Decision Processes, sec. 8.2 and 9.2, from memory). Sparse LU up
-// to EvaluateOptions().direct_max_states unknowns, BiCGSTAB (aiming at sup-norm residual
-// `target`, falling back to LU) beyond. `previous` (may be empty) is a warm start.
-// Returns kCancelled if `cancel` (may be null) fires during an iterative solve, kInternal if
-// a linear solve fails.
+// (Puterman 1994, Markov Decision Processes, sec. 8.2 and 9.2, from memory). Each system is
+// solved as AverageSolver says; BiCGSTAB aims at sup-norm residual `target`.
+// `previous` (may be empty) is a warm start and gives the anchors of the factored solves.
+// Returns kCancelled or kDeadlineExceeded when `stop` says so (polled inside factorisations
+// and between rounds of BiCGSTAB), kInternal if a linear solve fails. `counts` may be null.
 Status EvaluateAverage(const Model& m, std::span<const RowId> rows, double target,
-                       const CancelToken* cancel, const AverageEvaluation& previous,
-                       AverageEvaluation& out);
+                       const StopCheck& stop, const AverageEvaluation& previous,
+                       AverageEvaluation& out, AverageSolveCounts* counts = nullptr);
 
 }  // namespace mdp::internal
 

@@ -7,12 +7,16 @@
 #include <gtest/gtest.h>
 
 #include <Eigen/Dense>
+#include <Eigen/SparseCore>
+#include <Eigen/SparseLU>
 #include <cmath>
+#include <functional>
 #include <limits>
 #include <random>
 #include <string>
 #include <vector>
 
+#include "solver/internal/total_policy.h"
 #include "tests/testing/status_matchers.h"
 #include "tests/testing/test_models.h"
 
@@ -713,6 +717,333 @@ TEST(TotalRewardTest, MatchesBruteForceWithTrapsLoopsAndMixedSigns) {
   EXPECT_EQ(count[static_cast<int>(Verdict::kLoopRejected)][0], 0);
   EXPECT_GE(count[static_cast<int>(Verdict::kSolved)][1], 20);
   EXPECT_GE(count[static_cast<int>(Verdict::kLoopRejected)][1], 10);
+}
+
+// ---------------------------------------------------------------------------------------
+// Large models: inexact evaluation (total_reward.h, "Large models"; internal/total_policy.h).
+// 4000 non-goal states, above the 3000 up to which kAuto evaluates exactly.
+
+// Random exits: non-goal states 0..n-1 and the goal n. Every state has the same three actions
+// (probability g of stepping into the goal, cost c): express (0.5, 10), walk (0.1, 1), crawl
+// (0.02, 0.3); the rest of the mass goes to 4 random non-goal states (seeded), so no policy's
+// system has a band and each is solved iteratively. Derived here: with the same actions
+// everywhere, "always k" gives the constant V = c_k / g_k (20, 10, 15), and V = 10 solves the
+// Bellman equation V = min_k (c_k + (1 - g_k) V) (express: 10 + 0.5 * 10 = 15, walk: 10,
+// crawl: 0.3 + 0.98 * 10 = 10.1): V* = 10 everywhere, by walking, N = 1 / 0.1 = 10 steps.
+// The constant 20 is a supersolution (c_k + (1 - g_k) 20 <= 20 for each k), so every policy
+// has V^mu <= 20. Maximising rewards -c mirrors all of it.
+constexpr double kExitGoal[3] = {0.5, 0.1, 0.02};
+constexpr double kExitCost[3] = {10.0, 1.0, 0.3};
+
+Model RandomExits(int n, uint64_t seed, Objective objective) {
+  std::mt19937_64 rng(seed);
+  ModelSpec spec;
+  spec.name = "random-exits";
+  spec.objective = objective;
+  spec.action_names = {"express", "walk", "crawl"};
+  const double sign = objective == Objective::kMinimize ? 1.0 : -1.0;
+  for (int s = 0; s <= n; ++s) {
+    spec.AddState("s" + std::to_string(s), s == n);
+    if (s == n) continue;
+    for (int a = 0; a < 3; ++a) {
+      spec.AddStateAction(a, sign * kExitCost[a]);
+      spec.AddOutcome(n, kExitGoal[a]);
+      for (int k = 0; k < 4; ++k) {
+        spec.AddOutcome(static_cast<StateId>(rng() % n), (1.0 - kExitGoal[a]) / 4.0);
+      }
+    }
+  }
+  return testing::MustBuild(spec);
+}
+
+TEST(TotalRewardLargeTest, InexactEvaluationMatchesTheClosedFormOfRandomExits) {
+  const int n = 4000;
+  for (Objective objective : {Objective::kMinimize, Objective::kMaximize}) {
+    const double sign = objective == Objective::kMinimize ? 1.0 : -1.0;
+    const Model m = RandomExits(n, 7, objective);
+    const TotalRewardSolution s = MustSolve(m);
+    EXPECT_EQ(s.outcome, SolveOutcome::kConverged);
+    EXPECT_GE(s.iterations, 2);  // The start policy was improved on.
+    EXPECT_LE(s.value_error_bound, 1e-8);
+    for (StateId st = 0; st < n; ++st) {
+      ASSERT_LE(std::fabs(s.values[st] - sign * 10.0), s.value_error_bound + 1e-12) << st;
+      ASSERT_EQ(s.best_row[st], m.row_begin(st) + 1) << st;  // Walk.
+      ASSERT_NEAR(s.expected_steps[st], 10.0, 1e-9) << st;
+      // q of the other rows against V*: express 10 + 0.5 * 10, crawl 0.3 + 0.98 * 10.
+      ASSERT_NEAR(s.q[m.row_begin(st)], sign * 15.0, s.value_error_bound + 1e-12) << st;
+      ASSERT_NEAR(s.q[m.row_begin(st) + 2], sign * 10.1, s.value_error_bound + 1e-12) << st;
+    }
+    EXPECT_NEAR(s.max_expected_steps, 10.0, 1e-9);
+    EXPECT_LE(s.policy_loss_bound, 1e-7);
+  }
+}
+
+// A ring of n states, every goal_every-th one a goal; 3 actions per state, each with a cost
+// in [0.5, 2] and 4 outcomes at most 10 states away (weights random): slow to reach a goal
+// (hundreds of steps), and the wrap-around leaves no band.
+Model CostRing(int n, int goal_every, uint64_t seed) {
+  std::mt19937_64 rng(seed);
+  std::uniform_real_distribution<double> unit(0.0, 1.0);
+  ModelSpec spec;
+  spec.name = "cost-ring";
+  spec.objective = Objective::kMinimize;
+  spec.action_names = {"a", "b", "c"};
+  for (int s = 0; s < n; ++s) {
+    const bool goal = s % goal_every == 0;
+    spec.AddState("s" + std::to_string(s), goal);
+    if (goal) continue;
+    for (int a = 0; a < 3; ++a) {
+      spec.AddStateAction(a, 0.5 + 1.5 * unit(rng));
+      std::vector<double> w(4);
+      double sum = 0.0;
+      for (double& x : w) sum += (x = 0.1 + unit(rng));
+      for (double x : w) {
+        const int step = static_cast<int>(rng() % 21) - 10;
+        spec.AddOutcome(static_cast<StateId>(((s + step) % n + n) % n), x / sum);
+      }
+    }
+  }
+  return testing::MustBuild(spec);
+}
+
+// Solves (I - P_rows) x = b on the non-goal states with Eigen's sparse LU, for the columns
+// b = rewards and b = 1: the values and expected steps of `rows`, by an independent library.
+Eigen::MatrixXd SparseLuValuesAndSteps(const Model& m, const std::vector<RowId>& rows) {
+  std::vector<int> local(m.num_states(), -1);
+  int size = 0;
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (!m.terminal(s)) local[s] = size++;
+  }
+  std::vector<Eigen::Triplet<double>> triplets;
+  Eigen::MatrixXd b(size, 2);
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (local[s] < 0) continue;
+    triplets.emplace_back(local[s], local[s], 1.0);
+    b(local[s], 0) = m.row_reward(rows[s]);
+    b(local[s], 1) = 1.0;
+    for (int64_t e = m.entry_begin(rows[s]); e < m.entry_end(rows[s]); ++e) {
+      const int j = local[m.entry_next(e)];
+      if (j >= 0) triplets.emplace_back(local[s], j, -m.entry_probability(e));
+    }
+  }
+  Eigen::SparseMatrix<double> a(size, size);
+  a.setFromTriplets(triplets.begin(), triplets.end());
+  Eigen::SparseLU<Eigen::SparseMatrix<double>> lu;
+  lu.compute(a);
+  EXPECT_EQ(lu.info(), Eigen::Success);
+  Eigen::MatrixXd x = lu.solve(b);
+  x += lu.solve(Eigen::MatrixXd(b - a * x));  // One step of refinement.
+  Eigen::MatrixXd out = Eigen::MatrixXd::Constant(m.num_states(), 2, 0.0);
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    if (local[s] >= 0) out.row(s) = x.row(local[s]);
+  }
+  return out;
+}
+
+// The pick's values W (by sparse LU) admit no improving row, so the pick is optimal and W is
+// V* (total_reward.h, Optimality): the reported values must be within their bound of W.
+TEST(TotalRewardLargeTest, InexactEvaluationMatchesSparseLuOnARing) {
+  const Model m = CostRing(4400, 400, 3);
+  const TotalRewardSolution s = MustSolve(m);
+  ASSERT_EQ(s.outcome, SolveOutcome::kConverged);
+  EXPECT_EQ(s.states_not_reaching_goal, 0);
+  EXPECT_GE(s.iterations, 2);
+  const Eigen::MatrixXd w = SparseLuValuesAndSteps(m, s.best_row);
+  double most_steps = 0.0;
+  for (StateId st = 0; st < m.num_states(); ++st) {
+    if (m.terminal(st)) continue;
+    const double scale = std::max(1.0, std::fabs(w(st, 0)));
+    for (RowId r = m.row_begin(st); r < m.row_end(st); ++r) {
+      double q = m.row_reward(r);
+      for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
+        q += m.entry_probability(e) * w(m.entry_next(e), 0);
+      }
+      ASSERT_GE(q, w(st, 0) - 1e-9 * scale) << "row " << r << " improves on the pick";
+    }
+    ASSERT_NEAR(s.values[st], w(st, 0), s.value_error_bound + 1e-11 * scale) << st;
+    ASSERT_NEAR(s.expected_steps[st], w(st, 1), 1e-9 * w(st, 1)) << st;
+    most_steps = std::max(most_steps, w(st, 1));
+  }
+  EXPECT_GT(most_steps, 50.0);  // Not a trivial system.
+  EXPECT_NEAR(s.max_expected_steps, most_steps, 1e-9 * most_steps);
+  EXPECT_LE(s.value_error_bound, 1e-8);
+}
+
+// Cancel and the time limit are polled inside every evaluation on the inexact path: stopped
+// before the start, the run takes no improvement step at all (the exact path finishes its
+// first evaluation and improves once: ProgressCancelAndLimits below). What it reports must
+// still be honest: the values T V of a proper policy's approximate values V satisfy
+// values >= V* - evaluation_error_bound (T is monotone and V^mu >= V*), with V* = 10.
+TEST(TotalRewardLargeTest, CancelAndTimeLimitStopInsideTheFirstEvaluation) {
+  const int n = 4000;
+  const Model m = RandomExits(n, 11, Objective::kMinimize);
+  CancelToken cancelled;
+  cancelled.Cancel();
+  TotalRewardOptions limited;
+  limited.time_limit_seconds = 1e-9;
+  struct Case {
+    const TotalRewardOptions options;
+    const CancelToken* cancel;
+    SolveOutcome outcome;
+  };
+  for (const Case& c : {Case{TotalRewardOptions(), &cancelled, SolveOutcome::kCancelled},
+                        Case{limited, nullptr, SolveOutcome::kTimeLimit}}) {
+    Result<TotalRewardSolution> s = TotalRewardPolicyIteration(m, c.options, nullptr, c.cancel);
+    ASSERT_OK(s);
+    EXPECT_EQ(s->outcome, c.outcome);
+    EXPECT_EQ(s->iterations, 0);
+    EXPECT_TRUE(std::isnan(s->value_error_bound));
+    EXPECT_TRUE(std::isnan(s->policy_loss_bound));
+    for (StateId st = 0; st < n; ++st) {
+      ASSERT_GE(s->values[st] + s->evaluation_error_bound, 10.0 - 1e-12) << st;
+      // The picks are proper (each row enters the goal w.p. >= 0.02); their expected steps,
+      // 1 / g of the row, are reported only if solved to the report's accuracy.
+      const RowId pick = s->best_row[st];
+      ASSERT_GE(pick, m.row_begin(st));
+      const double steps = 1.0 / kExitGoal[pick - m.row_begin(st)];
+      ASSERT_TRUE(std::isnan(s->expected_steps[st]) ||
+                  std::fabs(s->expected_steps[st] - steps) <= 1e-9 * steps)
+          << st;
+    }
+  }
+  // Stopped between improvements (from the progress report after the first one), the run
+  // reports the start policy's completed evaluation V, within eps of V^mu <= 20; so also
+  // values = T V <= T V^mu + eps <= T 20 + eps = min(10 + 0.5 * 20, 1 + 0.9 * 20,
+  // 0.3 + 0.98 * 20) + eps = 19 + eps (T is monotone and moves no value by more than eps).
+  CancelToken cancel;
+  ProgressFn progress = [&](const Progress&) { cancel.Cancel(); };
+  Result<TotalRewardSolution> s = TotalRewardPolicyIteration(m, {}, &progress, &cancel);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->outcome, SolveOutcome::kCancelled);
+  EXPECT_EQ(s->iterations, 1);
+  EXPECT_LT(s->evaluation_error_bound, 1.0);  // A share of the first Bellman residual.
+  for (StateId st = 0; st < n; ++st) {
+    ASSERT_GE(s->values[st], 10.0 - s->evaluation_error_bound - 1e-12) << st;
+    ASSERT_LE(s->values[st], 19.0 + s->evaluation_error_bound + 1e-12) << st;
+  }
+}
+
+// The solver of one policy's systems, on its own: banded LU, BiCGSTAB and Gauss-Seidel
+// sweeps against Eigen's sparse LU on the assembled system, with the reported residual
+// checked as a bound on the recomputed one.
+struct PolicySystemFixture {
+  explicit PolicySystemFixture(const Model& model) : m(model) {
+    local.assign(m.num_states(), -1);
+    rows.assign(m.num_states(), -1);
+    for (StateId s = 0; s < m.num_states(); ++s) {
+      if (m.terminal(s)) continue;
+      local[s] = static_cast<int32_t>(states.size());
+      states.push_back(s);
+      rows[s] = m.row_begin(s);
+    }
+    const Eigen::MatrixXd w = SparseLuValuesAndSteps(m, rows);
+    std::vector<Eigen::Triplet<double>> triplets;
+    for (size_t i = 0; i < states.size(); ++i) {
+      rewards.push_back(m.row_reward(rows[states[i]]));
+      exact.push_back(w(states[i], 0));
+      most_steps = std::max(most_steps, w(states[i], 1));
+      triplets.emplace_back(i, i, 1.0);
+      for (int64_t e = m.entry_begin(rows[states[i]]); e < m.entry_end(rows[states[i]]); ++e) {
+        const int32_t j = local[m.entry_next(e)];
+        if (j >= 0) triplets.emplace_back(i, j, -m.entry_probability(e));
+      }
+    }
+    a.resize(states.size(), states.size());
+    a.setFromTriplets(triplets.begin(), triplets.end());
+  }
+  // sup |b - (I - P) x|, recomputed by Eigen.
+  double Residual(const std::vector<double>& x) const {
+    const Eigen::Map<const Eigen::VectorXd> xv(x.data(), x.size());
+    const Eigen::Map<const Eigen::VectorXd> bv(rewards.data(), rewards.size());
+    return (bv - a * xv).lpNorm<Eigen::Infinity>();
+  }
+  const Model& m;
+  std::vector<StateId> states;
+  std::vector<int32_t> local;
+  std::vector<RowId> rows;
+  std::vector<double> rewards, exact;
+  double most_steps = 0.0;
+  Eigen::SparseMatrix<double> a;
+};
+
+// A chain with one action: from s, steps -2..+2 (weights 1, 2, 3, 2, 1, clipped at the ends)
+// w.p. 0.99 and the goal w.p. 0.01; cost in [1, 2]. Banded, up to 100 expected steps.
+Model LeakyChain(int n, uint64_t seed) {
+  std::mt19937_64 rng(seed);
+  std::uniform_real_distribution<double> unit(0.0, 1.0);
+  ModelSpec spec;
+  spec.name = "leaky-chain";
+  spec.objective = Objective::kMinimize;
+  spec.action_names = {"step"};
+  for (int s = 0; s <= n; ++s) {
+    spec.AddState("s" + std::to_string(s), s == n);
+    if (s == n) continue;
+    spec.AddStateAction(0, 1.0 + unit(rng));
+    spec.AddOutcome(n, 0.01);
+    const double weight[5] = {1, 2, 3, 2, 1};
+    for (int d = -2; d <= 2; ++d) {
+      spec.AddOutcome(std::clamp(s + d, 0, n - 1), 0.99 * weight[d + 2] / 9.0);
+    }
+  }
+  return testing::MustBuild(spec);
+}
+
+TEST(TotalRewardLargeTest, PolicySolvesAgreeWithSparseLu) {
+  const std::function<bool()> never = [] { return false; };
+  const Model chain = LeakyChain(4000, 5);
+  const Model exits = RandomExits(1500, 5, Objective::kMinimize);  // Sparse LU fills in.
+  struct Case {
+    const Model* model;
+    bool factor_band;
+    bool sweeps_only;
+    bool banded;  // Expected: the band was narrow enough to factor.
+  };
+  for (const Case& c : {Case{&chain, true, false, true}, Case{&chain, false, false, false},
+                        Case{&chain, false, true, false}, Case{&exits, true, false, false},
+                        Case{&exits, true, true, false}}) {
+    SCOPED_TRACE(c.model->name() + (c.factor_band ? " band" : "") +
+                 (c.sweeps_only ? " sweeps" : ""));
+    PolicySystemFixture f(*c.model);
+    internal::TotalPolicyMatrix p;
+    p.Assign(*c.model, f.states, f.local, f.rows, 1, c.factor_band);
+    EXPECT_EQ(p.band_factored(), c.banded);
+    internal::TotalSolvePlan plan;
+    plan.sweeps_only = c.sweeps_only;
+    std::vector<double> x(f.states.size(), 0.0);
+    const internal::TotalSolveResult r =
+        internal::SolveTotalSystem(p, f.rewards, 1e-10, 1e6, 1, never, plan, x);
+    EXPECT_TRUE(r.reached);
+    EXPECT_FALSE(r.interrupted);
+    EXPECT_LE(r.residual, std::max(1e-10, r.aim));
+    EXPECT_LE(f.Residual(x), r.residual);
+    // |x - x*| <= residual * max N (total_reward.h, Bounds), plus the reference's rounding.
+    for (size_t i = 0; i < x.size(); ++i) {
+      ASSERT_NEAR(x[i], f.exact[i], r.residual * f.most_steps + 1e-11 * std::fabs(f.exact[i]));
+    }
+  }
+}
+
+// An interruption ends a solve where it is; the residual it reports still bounds the true
+// one. Polls are counted, not timed.
+TEST(TotalRewardLargeTest, AnInterruptedPolicySolveReportsAnHonestResidual) {
+  const Model chain = LeakyChain(4000, 9);
+  PolicySystemFixture f(chain);
+  for (bool sweeps_only : {false, true}) {
+    internal::TotalPolicyMatrix p;
+    p.Assign(chain, f.states, f.local, f.rows, 1, false);
+    internal::TotalSolvePlan plan;
+    plan.sweeps_only = sweeps_only;
+    int polls = 0;
+    const std::function<bool()> after_three = [&] { return ++polls > 3; };
+    std::vector<double> x(f.states.size(), 0.0);
+    const internal::TotalSolveResult r =
+        internal::SolveTotalSystem(p, f.rewards, 1e-12, 1e6, 1, after_three, plan, x);
+    EXPECT_TRUE(r.interrupted);
+    EXPECT_FALSE(r.reached);
+    EXPECT_GT(r.residual, r.aim);
+    EXPECT_LE(f.Residual(x), r.residual);
+    EXPECT_LT(r.work, 100.0);
+  }
 }
 
 // ---------------------------------------------------------------------------------------

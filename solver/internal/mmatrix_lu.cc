@@ -1,0 +1,383 @@
+#include "solver/internal/mmatrix_lu.h"
+
+#include <algorithm>
+#include <cmath>
+#include <utility>
+
+namespace mdp::internal {
+namespace {
+
+// How many rows the factorisation eliminates between two looks at the stop check (a row of
+// a 1M-state ring's factors takes about a microsecond).
+constexpr int32_t kPollRows = 256;
+
+// The pattern of A + A^T without the diagonal, by rows, each neighbour once.
+void SymmetricPattern(const LeakySystem& a, std::vector<int64_t>& begin,
+                      std::vector<int32_t>& adj) {
+  const int32_t n = a.size;
+  begin.assign(static_cast<size_t>(n) + 1, 0);
+  for (int32_t i = 0; i < n; ++i) {
+    for (int64_t e = a.row_begin[i]; e < a.row_begin[i + 1]; ++e) {
+      ++begin[i + 1];
+      ++begin[a.col[e] + 1];
+    }
+  }
+  for (int32_t i = 0; i < n; ++i) begin[i + 1] += begin[i];
+  adj.resize(begin[n]);
+  std::vector<int64_t> fill(begin.begin(), begin.end() - 1);
+  for (int32_t i = 0; i < n; ++i) {
+    for (int64_t e = a.row_begin[i]; e < a.row_begin[i + 1]; ++e) {
+      const int32_t j = a.col[e];
+      adj[fill[i]++] = j;
+      adj[fill[j]++] = i;
+    }
+  }
+  // Drop the second copy of a pair present both ways, compacting in place (rows only move
+  // towards the front).
+  std::vector<int32_t> seen(n, -1);
+  int64_t out = 0;
+  for (int32_t i = 0; i < n; ++i) {
+    const int64_t from = begin[i];
+    const int64_t to = begin[i + 1];
+    begin[i] = out;
+    for (int64_t e = from; e < to; ++e) {
+      if (seen[adj[e]] == i) continue;
+      seen[adj[e]] = i;
+      adj[out++] = adj[e];
+    }
+  }
+  begin[n] = out;
+  adj.resize(out);
+  adj.shrink_to_fit();
+}
+
+// Reverse Cuthill-McKee order (George and Liu 1981, Computer Solution of Large Sparse
+// Positive Definite Systems, ch. 4, from memory): breadth-first from a pseudo-peripheral
+// unknown of each connected part, neighbours in order of increasing degree, then reversed.
+// An unknown then has its pattern neighbours within about two layers of the search, so the
+// factors stay in a band as wide as the widest layers.
+class CuthillMcKee {
+ public:
+  CuthillMcKee(const std::vector<int64_t>& begin, const std::vector<int32_t>& adj)
+      : begin_(begin), adj_(adj), n_(static_cast<int32_t>(begin.size()) - 1), stamp_(n_, -1) {}
+
+  std::vector<int32_t> Order() {
+    std::vector<int32_t> order;
+    order.reserve(n_);
+    std::vector<uint8_t> placed(n_, 0);
+    for (int32_t root = 0; root < n_; ++root) {
+      if (placed[root]) continue;
+      const int32_t start = PseudoPeripheral(root);
+      size_t head = order.size();
+      order.push_back(start);
+      placed[start] = 1;
+      while (head < order.size()) {
+        const int32_t v = order[head++];
+        const size_t first = order.size();
+        for (int64_t e = begin_[v]; e < begin_[v + 1]; ++e) {
+          if (!placed[adj_[e]]) {
+            placed[adj_[e]] = 1;
+            order.push_back(adj_[e]);
+          }
+        }
+        std::sort(order.begin() + first, order.end(), [this](int32_t x, int32_t y) {
+          return Degree(x) != Degree(y) ? Degree(x) < Degree(y) : x < y;
+        });
+      }
+    }
+    std::reverse(order.begin(), order.end());
+    return order;
+  }
+
+ private:
+  int64_t Degree(int32_t v) const { return begin_[v + 1] - begin_[v]; }
+
+  // Breadth-first from `from`; returns the number of layers after the first and leaves the
+  // last layer in last_.
+  int32_t Search(int32_t from) {
+    ++search_;
+    queue_.clear();
+    queue_.push_back(from);
+    stamp_[from] = search_;
+    size_t layer_begin = 0;
+    int32_t depth = 0;
+    for (;;) {
+      const size_t layer_end = queue_.size();
+      for (size_t q = layer_begin; q < layer_end; ++q) {
+        const int32_t v = queue_[q];
+        for (int64_t e = begin_[v]; e < begin_[v + 1]; ++e) {
+          if (stamp_[adj_[e]] != search_) {
+            stamp_[adj_[e]] = search_;
+            queue_.push_back(adj_[e]);
+          }
+        }
+      }
+      if (queue_.size() == layer_end) {
+        last_.assign(queue_.begin() + static_cast<std::ptrdiff_t>(layer_begin),
+                     queue_.begin() + static_cast<std::ptrdiff_t>(layer_end));
+        return depth;
+      }
+      layer_begin = layer_end;
+      ++depth;
+    }
+  }
+
+  // An unknown of near-greatest eccentricity in the part of `root`: search, move to a
+  // least-degree unknown of the last layer, repeat while the depth grows (a few rounds).
+  int32_t PseudoPeripheral(int32_t root) {
+    int32_t x = root;
+    int32_t depth = -1;
+    for (int round = 0; round < 8; ++round) {
+      const int32_t d = Search(x);
+      if (d <= depth) break;
+      depth = d;
+      int32_t best = last_.front();
+      for (int32_t v : last_) {
+        if (Degree(v) < Degree(best)) best = v;
+      }
+      if (best == x) break;
+      x = best;
+    }
+    return x;
+  }
+
+  const std::vector<int64_t>& begin_;
+  const std::vector<int32_t>& adj_;
+  int32_t n_;
+  std::vector<int32_t> stamp_;
+  int32_t search_ = -1;
+  std::vector<int32_t> queue_;
+  std::vector<int32_t> last_;
+};
+
+// The pattern of row k of L (by position): the unknowns met walking up the elimination tree
+// from each neighbour j < k of k until k or an unknown already met (Liu 1990, "The role of
+// elimination trees in sparse factorization", SIAM J. Matrix Anal. Appl. 11(1), from
+// memory). Appends to `out` (unsorted) and marks with `mark[] = k`.
+template <typename Visit>
+void RowSubtree(int32_t k, const std::vector<int32_t>& order, const std::vector<int32_t>& position,
+                const std::vector<int64_t>& begin, const std::vector<int32_t>& adj,
+                const std::vector<int32_t>& parent, std::vector<int32_t>& mark, Visit visit) {
+  mark[k] = k;
+  const int32_t row = order[k];
+  for (int64_t e = begin[row]; e < begin[row + 1]; ++e) {
+    for (int32_t r = position[adj[e]]; r < k && mark[r] != k; r = parent[r]) {
+      mark[r] = k;
+      visit(r);
+    }
+  }
+}
+
+// True iff a breadth-first search from `from` meets a layer of more than `max_width`
+// unknowns before it runs out. Reads the pattern rows of the unknowns it reaches.
+bool HasWideLayer(const std::vector<int64_t>& begin, const std::vector<int32_t>& adj, int32_t from,
+                  int64_t max_width, std::vector<int32_t>& stamp, int32_t id) {
+  std::vector<int32_t> queue = {from};
+  stamp[from] = id;
+  size_t layer_begin = 0;
+  while (layer_begin < queue.size()) {
+    const size_t layer_end = queue.size();
+    if (static_cast<int64_t>(layer_end - layer_begin) > max_width) return true;
+    for (size_t q = layer_begin; q < layer_end; ++q) {
+      for (int64_t e = begin[queue[q]]; e < begin[queue[q] + 1]; ++e) {
+        if (stamp[adj[e]] != id) {
+          stamp[adj[e]] = id;
+          queue.push_back(adj[e]);
+        }
+      }
+    }
+    layer_begin = layer_end;
+  }
+  return false;
+}
+
+}  // namespace
+
+double FactorPlan::bytes() const {
+  const double per_entry = sizeof(int32_t) + sizeof(double);
+  return 2.0 * static_cast<double>(lower_entries) * per_entry +
+         static_cast<double>(order.size()) * (2 * sizeof(int64_t) + sizeof(double));
+}
+
+FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries) {
+  FactorPlan plan;
+  const int32_t n = a.size;
+  std::vector<int64_t>& begin = plan.pattern_begin;
+  std::vector<int32_t>& adj = plan.pattern;
+  SymmetricPattern(a, begin, adj);
+  // A quick look before the order: in a Cuthill-McKee order an unknown's factor row reaches
+  // back about a layer's width, so a layer of w unknowns means some n w / 4 entries or more
+  // in the layers around it; an expander's layers grow geometrically, and searches from two
+  // spread unknowns that meet a layer wider than 4 cap / n make the count pointless (a
+  // guess that can only send a system to the iterative solver, never change an answer).
+  if (n > 0) {
+    const int64_t max_width = std::max<int64_t>(16, 4 * max_lower_entries / n);
+    std::vector<int32_t> stamp(n, -1);
+    if (HasWideLayer(begin, adj, 0, max_width, stamp, 0) ||
+        HasWideLayer(begin, adj, n / 2, max_width, stamp, 1)) {
+      return plan;
+    }
+  }
+  plan.order = CuthillMcKee(begin, adj).Order();
+  plan.position.assign(n, 0);
+  for (int32_t k = 0; k < n; ++k) plan.position[plan.order[k]] = k;
+  // Elimination tree by path compression (Liu 1990, from memory).
+  plan.parent.assign(n, -1);
+  std::vector<int32_t> ancestor(n, -1);
+  for (int32_t k = 0; k < n; ++k) {
+    const int32_t row = plan.order[k];
+    for (int64_t e = begin[row]; e < begin[row + 1]; ++e) {
+      int32_t i = plan.position[adj[e]];
+      while (i != -1 && i < k) {
+        const int32_t next = ancestor[i];
+        ancestor[i] = k;
+        if (next == -1) plan.parent[i] = k;
+        i = next;
+      }
+    }
+  }
+  // Column counts from the row patterns; every step of a walk is one entry of L, so the
+  // count costs no more than the cap.
+  std::vector<int32_t> mark(n, -1);
+  std::vector<int64_t> count(n, 0);
+  int64_t total = 0;
+  for (int32_t k = 0; k < n; ++k) {
+    RowSubtree(k, plan.order, plan.position, begin, adj, plan.parent, mark, [&](int32_t r) {
+      ++count[r];
+      ++total;
+    });
+    if (total > max_lower_entries) return plan;
+  }
+  plan.lower_entries = total;
+  for (int32_t j = 0; j < n; ++j) {
+    plan.multiply_adds += static_cast<double>(count[j]) * static_cast<double>(count[j] + 1);
+  }
+  plan.complete = true;
+  return plan;
+}
+
+Status MMatrixLu::Factorize(const LeakySystem& a, FactorPlan plan, const StopCheck& stop) {
+  const int32_t n = a.size;
+  singular_at_ = -1;
+  const std::vector<int64_t>& begin = plan.pattern_begin;
+  const std::vector<int32_t>& adj = plan.pattern;
+  order_ = std::move(plan.order);
+  const std::vector<int32_t>& position = plan.position;
+  l_begin_.assign(static_cast<size_t>(n) + 1, 0);
+  u_begin_.assign(static_cast<size_t>(n) + 1, 0);
+  l_col_.clear();
+  l_value_.clear();
+  u_col_.clear();
+  u_value_.clear();
+  l_col_.reserve(plan.lower_entries);
+  l_value_.reserve(plan.lower_entries);
+  u_col_.reserve(plan.lower_entries);
+  u_value_.reserve(plan.lower_entries);
+  pivot_.assign(n, 0.0);
+  // schur_leak[k]: the row sum of the Schur complement row that row k's U row is, which is
+  // leak(k) plus the leak it inherits through L; every term is >= 0.
+  std::vector<double> schur_leak(n, 0.0);
+  std::vector<double> w(n, 0.0);        // Row k of the partly eliminated matrix, scattered.
+  std::vector<int32_t> mark(n, -1);     // Row pattern walk.
+  std::vector<int32_t> touched(n, -1);  // == k iff column j of row k has been seen.
+  std::vector<int32_t> lower;
+  std::vector<int32_t> upper(static_cast<size_t>(n) + 1);  // Columns j > k seen in row k.
+  for (int32_t k = 0; k < n; ++k) {
+    if (k % kPollRows == 0) MDP_RETURN_IF_ERROR(stop.Poll());
+    const int32_t row = order_[k];
+    lower.clear();
+    int64_t uppers = 0;
+    RowSubtree(k, order_, position, begin, adj, plan.parent, mark,
+               [&](int32_t r) { lower.push_back(r); });
+    std::sort(lower.begin(), lower.end());
+    // Columns j > k are collected without a branch on data (j > k and first sight vary
+    // unpredictably along a row): each j is written, and kept by advancing the count.
+    for (int64_t e = a.row_begin[row]; e < a.row_begin[row + 1]; ++e) {
+      const int32_t j = position[a.col[e]];
+      w[j] = -a.weight[e];
+      upper[uppers] = j;
+      uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(touched[j] != k);
+      touched[j] = k;
+    }
+    // Row-oriented elimination (the i-k-j form of Gaussian elimination), in increasing order
+    // of the pivots used. Off-diagonal entries only ever receive l * u >= 0 subtracted from
+    // values <= 0: no cancellation. The diagonal, where cancellation would be, is not
+    // updated; it is recovered from the row sum below.
+    double leak = a.leak[row];
+    for (const int32_t i : lower) {
+      const double wi = w[i];
+      if (wi == 0.0) continue;
+      w[i] = 0.0;
+      const double l = wi / pivot_[i];
+      l_col_.push_back(i);
+      l_value_.push_back(l);
+      leak -= l * schur_leak[i];
+      for (int64_t e = u_begin_[i]; e < u_begin_[i + 1]; ++e) {
+        const int32_t j = u_col_[e];
+        w[j] -= l * u_value_[e];  // Into w[k] too, which is discarded.
+        upper[uppers] = j;
+        uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(touched[j] != k);
+        touched[j] = k;
+      }
+    }
+    w[k] = 0.0;
+    // U(k, k) = schur_leak(k) - sum_{j > k} U(k, j): a sum of terms >= 0 (GTH).
+    double diagonal = leak;
+    for (int64_t q = 0; q < uppers; ++q) {
+      const int32_t j = upper[q];
+      const double v = w[j];
+      w[j] = 0.0;
+      if (v == 0.0) continue;
+      u_col_.push_back(j);
+      u_value_.push_back(v);
+      diagonal -= v;
+    }
+    if (!(diagonal > 0.0) || !std::isfinite(diagonal)) {
+      // The unknowns eliminated into this row do not leak, in floating point at least (a
+      // leak below the smallest double, or none at all).
+      singular_at_ = row;
+      return FailedPreconditionError("policy evaluation: the chain never leaves a set of states");
+    }
+    schur_leak[k] = leak;
+    pivot_[k] = diagonal;
+    l_begin_[k + 1] = static_cast<int64_t>(l_col_.size());
+    u_begin_[k + 1] = static_cast<int64_t>(u_col_.size());
+  }
+  return Status::Ok();
+}
+
+// With P the order (row k of the factors is unknown order[k]): P A P^T = L U.
+void MMatrixLu::Solve(std::span<double> x) const {
+  const int32_t n = size();
+  std::vector<double> y(n);
+  for (int32_t k = 0; k < n; ++k) y[k] = x[order_[k]];
+  for (int32_t k = 0; k < n; ++k) {
+    double s = y[k];
+    for (int64_t e = l_begin_[k]; e < l_begin_[k + 1]; ++e) s -= l_value_[e] * y[l_col_[e]];
+    y[k] = s;
+  }
+  for (int32_t k = n - 1; k >= 0; --k) {
+    double s = y[k];
+    for (int64_t e = u_begin_[k]; e < u_begin_[k + 1]; ++e) s -= u_value_[e] * y[u_col_[e]];
+    y[k] = s / pivot_[k];
+  }
+  for (int32_t k = 0; k < n; ++k) x[order_[k]] = y[k];
+}
+
+void MMatrixLu::SolveTransposed(std::span<double> x) const {
+  const int32_t n = size();
+  std::vector<double> y(n);
+  for (int32_t k = 0; k < n; ++k) y[k] = x[order_[k]];
+  for (int32_t k = 0; k < n; ++k) {  // U^T z = y, column by column of U^T.
+    const double z = y[k] / pivot_[k];
+    y[k] = z;
+    for (int64_t e = u_begin_[k]; e < u_begin_[k + 1]; ++e) y[u_col_[e]] -= u_value_[e] * z;
+  }
+  for (int32_t k = n - 1; k >= 0; --k) {  // L^T v = z.
+    const double v = y[k];
+    for (int64_t e = l_begin_[k]; e < l_begin_[k + 1]; ++e) y[l_col_[e]] -= l_value_[e] * v;
+  }
+  for (int32_t k = 0; k < n; ++k) x[order_[k]] = y[k];
+}
+
+}  // namespace mdp::internal

@@ -1,0 +1,96 @@
+// Sparse LU factors of the linear systems of a Markov chain restricted to a set of states:
+// A = I - Q, Q >= 0 the transition probabilities among the set, which the chain leaves with
+// probability leak(i) from state i. Such an A is an M-matrix, nonsingular iff the chain
+// leaves the set from every state eventually. It is factorised without pivoting in a
+// fill-reducing order, each pivot computed from the leaks without subtraction, so the
+// factors, and A^-1 b and A^-T b for b >= 0, are accurate entry by entry however slowly the
+// chain leaves (Grassmann, Taksar and Heyman 1985, "Regenerative analysis and steady state
+// distributions for Markov chains", Operations Research 33(5); from memory).
+// Plain values: a factorisation is immutable once built, so its solves may run on any number
+// of threads at once; it owns its memory. Internal: the server never includes this.
+#ifndef MDP_SOLVER_INTERNAL_MMATRIX_LU_H_
+#define MDP_SOLVER_INTERNAL_MMATRIX_LU_H_
+
+#include <cstdint>
+#include <span>
+#include <vector>
+
+#include "solver/internal/stop_check.h"
+#include "solver/status.h"
+
+namespace mdp::internal {
+
+// A = I - Q by rows: the off-diagonal entries of Q (a self-loop is left out: its probability
+// is neither an entry nor leak) and each row's leak. A(i, i) = leak(i) + sum_j Q(i, j),
+// which is 1 - Q(i, i) when the row's probabilities sum to 1.
+struct LeakySystem {
+  int32_t size = 0;
+  std::vector<int64_t> row_begin = {0};  // Size size + 1.
+  std::vector<int32_t> col;              // j != i, each at most once per row.
+  std::vector<double> weight;            // Q(i, j) > 0.
+  std::vector<double> leak;              // Per row, >= 0.
+
+  int64_t entries() const { return row_begin.back(); }
+};
+
+// The elimination order and the predicted size and work of the factors.
+struct FactorPlan {
+  std::vector<int32_t> order;          // order[k]: the unknown eliminated k-th.
+  std::vector<int32_t> position;       // Inverse of order.
+  std::vector<int32_t> parent;         // Elimination tree (by position), -1 at roots.
+  std::vector<int64_t> pattern_begin;  // The pattern of A + A^T without the diagonal,
+  std::vector<int32_t> pattern;        // by rows (by unknown, not position).
+  // Entries strictly below the diagonal of L, and so strictly above it in U (the pattern is
+  // that of A + A^T). Exact for that pattern, an upper bound for A's own.
+  int64_t lower_entries = 0;
+  double multiply_adds = 0.0;  // The factorisation's work: sum over columns of count^2.
+  // False iff planning gave up (a wide search layer, or the count passed the cap); the
+  // order and the counts are then unset.
+  bool complete = false;
+
+  // Bytes the factors take (indices and values of L and U, the pivots).
+  double bytes() const;
+};
+
+// Orders the unknowns (reverse Cuthill-McKee on the pattern of A + A^T, each connected part
+// searched from a pseudo-peripheral unknown) and counts the factors' entries, giving up with
+// complete = false once they pass max_lower_entries, or before ordering when two searches
+// meet a layer so wide that they would (see the .cc). Time O(entries + min(count, cap)).
+FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries);
+
+class MMatrixLu {
+ public:
+  // Factorises `a` in the order of `plan`. Returns kCancelled or kDeadlineExceeded when
+  // `stop` says so (polled every few rows), kFailedPrecondition if a pivot is not positive:
+  // A is singular, or its leak underflows (some part of the set keeps the chain for more
+  // than about 1e308 steps); singular_at() then names an unknown of that part.
+  // REQUIRES: plan.complete, plan came from PlanFactors(a, ...).
+  Status Factorize(const LeakySystem& a, FactorPlan plan, const StopCheck& stop);
+
+  // After Factorize returned kFailedPrecondition: the unknown whose pivot vanished; else -1.
+  int32_t singular_at() const { return singular_at_; }
+
+  // x <- A^-1 x. REQUIRES: Factorize succeeded, x.size() == size.
+  void Solve(std::span<double> x) const;
+  // x <- A^-T x. Same requirements.
+  void SolveTransposed(std::span<double> x) const;
+
+  int32_t size() const { return static_cast<int32_t>(pivot_.size()); }
+  int64_t lower_entries() const { return static_cast<int64_t>(l_col_.size()); }
+  int64_t upper_entries() const { return static_cast<int64_t>(u_col_.size()); }
+
+ private:
+  std::vector<int32_t> order_;    // As FactorPlan::order.
+  std::vector<int64_t> l_begin_;  // L by rows (unit diagonal not stored), by position.
+  std::vector<int32_t> l_col_;
+  std::vector<double> l_value_;
+  std::vector<int64_t> u_begin_;  // U by rows, strictly upper part, by position.
+  std::vector<int32_t> u_col_;
+  std::vector<double> u_value_;
+  std::vector<double> pivot_;  // U's diagonal.
+  int32_t singular_at_ = -1;
+};
+
+}  // namespace mdp::internal
+
+#endif  // MDP_SOLVER_INTERNAL_MMATRIX_LU_H_

@@ -1,0 +1,438 @@
+#include "solver/internal/total_policy.h"
+
+#include <algorithm>
+#include <cmath>
+
+namespace mdp::internal {
+
+void TotalPolicyMatrix::Assign(const Model& m, const std::vector<StateId>& states,
+                               const std::vector<int32_t>& local, const std::vector<RowId>& rows,
+                               int threads, bool factor_band) {
+  const int64_t n = static_cast<int64_t>(states.size());
+  begin_.resize(static_cast<size_t>(n) + 1);
+  reward_.resize(n);
+  diagonal_.resize(n);
+  begin_[0] = 0;
+  terms_ = 1;
+  for (int64_t i = 0; i < n; ++i) {
+    const RowId r = rows[states[i]];
+    int64_t kept = 0;
+    for (int64_t e = m.entry_begin(r), end = m.entry_end(r); e < end; ++e) {
+      kept += local[m.entry_next(e)] >= 0;
+    }
+    begin_[i + 1] = begin_[i] + kept;
+    terms_ = std::max<int64_t>(terms_, m.entry_end(r) - m.entry_begin(r) + 1);
+  }
+  column_.resize(begin_[n]);
+  probability_.resize(begin_[n]);
+#pragma omp parallel for num_threads(threads) schedule(static, 4096)
+  for (int64_t i = 0; i < n; ++i) {
+    const RowId r = rows[states[i]];
+    reward_[i] = m.row_reward(r);
+    double self = 0.0;
+    int64_t out = begin_[i];
+    for (int64_t e = m.entry_begin(r), end = m.entry_end(r); e < end; ++e) {
+      const int32_t j = local[m.entry_next(e)];
+      if (j < 0) continue;  // A goal: value 0.
+      column_[out] = j;
+      probability_[out++] = m.entry_probability(e);
+      if (j == i) self = m.entry_probability(e);
+    }
+    diagonal_[i] = 1.0 - self;
+  }
+  band_factored_ = factor_band && FactorBand();
+}
+
+// Gaussian elimination without pivoting inside the band. I - P is a nonsingular M-matrix for a
+// proper policy, so every pivot is positive and the factors are M-matrices themselves, with no
+// growth of entries (Fiedler and Ptak 1962, from memory); no pivoting also means no fill
+// outside the band. Returns false (and frees the band) if the band is too wide or a pivot is
+// not positive.
+bool TotalPolicyMatrix::FactorBand() {
+  const int64_t n = size();
+  lower_ = upper_ = 0;
+  for (int64_t i = 0; i < n; ++i) {
+    for (int64_t e = begin_[i]; e < begin_[i + 1]; ++e) {
+      lower_ = std::max<int64_t>(lower_, i - column_[e]);
+      upper_ = std::max<int64_t>(upper_, column_[e] - i);
+    }
+  }
+  const int64_t width = lower_ + upper_ + 1;
+  if (n == 0 || width > kMaxBandEntries / n || lower_ * upper_ > kMaxBandWork / n) {
+    std::vector<double>().swap(band_);
+    return false;
+  }
+  band_.assign(n * width, 0.0);
+  double* a = band_.data();
+  for (int64_t i = 0; i < n; ++i) {
+    double* row = a + i * width + lower_ - i;  // row[j] is column j of row i.
+    row[i] = 1.0;
+    for (int64_t e = begin_[i]; e < begin_[i + 1]; ++e) row[column_[e]] -= probability_[e];
+  }
+  for (int64_t k = 0; k < n; ++k) {
+    const double* pivot_row = a + k * width + lower_ - k;
+    const double pivot = pivot_row[k];
+    if (!(pivot > 0.0) || !std::isfinite(pivot)) {
+      std::vector<double>().swap(band_);
+      return false;
+    }
+    const int64_t last_row = std::min(n - 1, k + lower_);
+    const int64_t last_column = std::min(n - 1, k + upper_);
+    for (int64_t i = k + 1; i <= last_row; ++i) {
+      double* row = a + i * width + lower_ - i;
+      if (row[k] == 0.0) continue;
+      const double l = row[k] / pivot;
+      row[k] = l;
+      for (int64_t j = k + 1; j <= last_column; ++j) row[j] -= l * pivot_row[j];
+    }
+  }
+  return true;
+}
+
+void TotalPolicyMatrix::SolveBand(const double* b, double* x) const {
+  const int64_t n = size();
+  const int64_t width = lower_ + upper_ + 1;
+  const double* a = band_.data();
+  for (int64_t i = 0; i < n; ++i) {  // L y = b, L unit lower triangular.
+    const double* row = a + i * width + lower_ - i;
+    double acc = b[i];
+    for (int64_t k = std::max<int64_t>(0, i - lower_); k < i; ++k) acc -= row[k] * x[k];
+    x[i] = acc;
+  }
+  for (int64_t i = n - 1; i >= 0; --i) {  // U x = y.
+    const double* row = a + i * width + lower_ - i;
+    double acc = x[i];
+    for (int64_t j = i + 1, end = std::min(n - 1, i + upper_); j <= end; ++j) {
+      acc -= row[j] * x[j];
+    }
+    x[i] = acc / row[i];
+  }
+}
+
+double TotalPolicyMatrix::Residual(const double* b, const double* x, double* res,
+                                   int threads) const {
+  const int64_t n = size();
+  double sup = 0.0;
+#pragma omp parallel for num_threads(threads) reduction(max : sup) schedule(static, 4096)
+  for (int64_t i = 0; i < n; ++i) {
+    double acc = b[i];
+    for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
+      acc += probability_[e] * x[column_[e]];
+    }
+    res[i] = acc - x[i];
+    sup = std::max(sup, std::fabs(res[i]));
+  }
+  return sup;
+}
+
+void TotalPolicyMatrix::MultiplySystem(const double* x, double* y, int threads) const {
+  const int64_t n = size();
+#pragma omp parallel for num_threads(threads) schedule(static, 4096)
+  for (int64_t i = 0; i < n; ++i) {
+    double acc = 0.0;
+    for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
+      acc += probability_[e] * x[column_[e]];
+    }
+    y[i] = x[i] - acc;
+  }
+}
+
+void TotalPolicyMatrix::GaussSeidel(const double* b, double* x) const {
+  for (int64_t i = 0, n = size(); i < n; ++i) {
+    double acc = b[i];
+    for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
+      if (column_[e] != i) acc += probability_[e] * x[column_[e]];
+    }
+    x[i] = acc / diagonal_[i];
+  }
+}
+
+void TotalPolicyMatrix::LowerSolve(const double* b, double* z) const {
+  for (int64_t i = 0, n = size(); i < n; ++i) {
+    double acc = b[i];
+    for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
+      if (column_[e] < i) acc += probability_[e] * z[column_[e]];
+    }
+    z[i] = acc / diagonal_[i];
+  }
+}
+
+namespace {
+
+constexpr double kUnitRoundoff = 1.2e-16;  // 2^-53, rounded up.
+// The lowest aim, in rounding allowances: the computed residual must then fall to one
+// allowance, a worst case that actual rounding (of order u max|x| sqrt(terms)) stays far
+// below; so the bound can still come within twice its floor.
+constexpr double kFloor = 2.0;
+// How close to its aim a stagnating BiCGSTAB pass must be to be restarted (Krylov::Pass).
+constexpr double kNearAim = 10.0;
+
+double SupNorm(const std::vector<double>& v, int threads) {
+  double sup = 0.0;
+  const int64_t n = static_cast<int64_t>(v.size());
+#pragma omp parallel for num_threads(threads) reduction(max : sup) schedule(static, 4096)
+  for (int64_t i = 0; i < n; ++i) sup = std::max(sup, std::fabs(v[i]));
+  return sup;
+}
+
+// BiCGSTAB (van der Vorst 1992), right-preconditioned, on (I - P) dx = res, applied to x in
+// place: one pass from the true residual `res` (which holds the recursive residual on
+// return) until its sup norm reaches `aim`, `budget` work is spent, or it breaks down.
+// Returns the work spent.
+class Krylov {
+ public:
+  Krylov(const TotalPolicyMatrix& p, int threads)
+      : p_(p),
+        threads_(threads),
+        n_(p.size()),
+        rhat_(n_),
+        dir_(n_),
+        v_(n_),
+        y_(n_),
+        z_(n_),
+        t_(n_) {}
+
+  // Every kLookEvery work units, look(x) recomputes the true residual of x (one product,
+  // counted by the caller): the pass ends when it meets the aim (the recursive residual can
+  // stagnate above the aim while the true one is below it), or when, within kNearAim times
+  // the aim, its 2-norm has not reached a new low (by 10 %) for kStaleLooks looks. Near the
+  // aim a restart from the true residual is cheap and cures stagnation (on a 1,000,000-state
+  // grid one pass stuck 10 % above its aim for 4,000 products; the restarted one met it
+  // within 66); far from it the Krylov space built so far is worth keeping (restarts there
+  // made a 100,000-state ring 60 % slower).
+  struct Look {
+    bool meets = false;
+    bool near = false;  // Within kNearAim times the aim.
+    double norm = 0.0;
+  };
+  double Pass(Preconditioner preconditioner, double aim, double budget,
+              const std::function<bool()>& interrupted,
+              const std::function<Look(const std::vector<double>&)>& look, std::vector<double>& x,
+              std::vector<double>& res) {
+    constexpr double kLookEvery = 64.0;
+    constexpr int kStaleLooks = 8;
+    const bool lower = preconditioner == Preconditioner::kLowerTriangle;
+    const double half_step = lower ? 1.0 + kLowerSolveCost : 1.0;
+    rhat_ = res;
+    std::fill(dir_.begin(), dir_.end(), 0.0);
+    std::fill(v_.begin(), v_.end(), 0.0);
+    double rho = 1.0, alpha = 1.0, omega = 1.0, work = 0.0, next_look = kLookEvery;
+    double lowest = std::sqrt(Dot(res, res));
+    int stale = 0;
+    while (work + 2.0 * half_step <= budget && !interrupted()) {
+      if (work >= next_look) {
+        next_look = work + kLookEvery;
+        const Look seen = look(x);
+        if (seen.meets) break;
+        if (seen.norm < 0.9 * lowest) {
+          lowest = seen.norm;
+          stale = 0;
+        } else if (++stale >= kStaleLooks && seen.near) {
+          break;
+        }
+      }
+      const double rho_next = Dot(rhat_, res);
+      if (rho_next == 0.0 || !std::isfinite(rho_next)) break;
+      const double beta = (rho_next / rho) * (alpha / omega);
+      rho = rho_next;
+#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
+      for (int64_t i = 0; i < n_; ++i) dir_[i] = res[i] + beta * (dir_[i] - omega * v_[i]);
+      Precondition(lower, dir_, y_);
+      p_.MultiplySystem(y_.data(), v_.data(), threads_);
+      work += half_step;
+      const double rv = Dot(rhat_, v_);
+      if (rv == 0.0 || !std::isfinite(rv)) break;
+      alpha = rho / rv;
+      double sup_s = 0.0;
+#pragma omp parallel for num_threads(threads_) reduction(max : sup_s) schedule(static, 4096)
+      for (int64_t i = 0; i < n_; ++i) {
+        res[i] -= alpha * v_[i];
+        sup_s = std::max(sup_s, std::fabs(res[i]));
+      }
+      if (sup_s <= aim) {
+#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
+        for (int64_t i = 0; i < n_; ++i) x[i] += alpha * y_[i];
+        break;
+      }
+      Precondition(lower, res, z_);
+      p_.MultiplySystem(z_.data(), t_.data(), threads_);
+      work += half_step;
+      const double tt = Dot(t_, t_);
+      omega = tt == 0.0 ? 0.0 : Dot(t_, res) / tt;
+      double sup_r = 0.0;
+#pragma omp parallel for num_threads(threads_) reduction(max : sup_r) schedule(static, 4096)
+      for (int64_t i = 0; i < n_; ++i) {
+        x[i] += alpha * y_[i] + omega * z_[i];
+        res[i] -= omega * t_[i];
+        sup_r = std::max(sup_r, std::fabs(res[i]));
+      }
+      if (sup_r <= aim || omega == 0.0 || !std::isfinite(sup_r)) break;
+    }
+    return work;
+  }
+
+ private:
+  void Precondition(bool lower, const std::vector<double>& in, std::vector<double>& out) const {
+    if (lower) {
+      p_.LowerSolve(in.data(), out.data());
+      return;
+    }
+    const double* d = p_.diagonal().data();
+#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
+    for (int64_t i = 0; i < n_; ++i) out[i] = in[i] / d[i];
+  }
+  double Dot(const std::vector<double>& a, const std::vector<double>& b) const {
+    double sum = 0.0;
+#pragma omp parallel for num_threads(threads_) reduction(+ : sum) schedule(static, 4096)
+    for (int64_t i = 0; i < n_; ++i) sum += a[i] * b[i];
+    return sum;
+  }
+
+  const TotalPolicyMatrix& p_;
+  const int threads_;
+  const int64_t n_;
+  std::vector<double> rhat_, dir_, v_, y_, z_, t_;
+};
+
+// The true residual of x: its sup norm as a bound (what the caller's error bounds need) and
+// its 2-norm (what BiCGSTAB reduces; the sup norm can lag behind it for many iterations, so
+// progress is judged by the 2-norm).
+class Tracker {
+ public:
+  Tracker(const TotalPolicyMatrix& p, const std::vector<double>& b, double target, int threads)
+      : p_(p),
+        b_(b),
+        target_(target),
+        threads_(threads),
+        b_sup_(SupNorm(b, threads)),
+        res_(p.size()) {}
+
+  // Recomputes the residual of x (one product); returns true iff it meets the aim.
+  bool Check(const std::vector<double>& x, TotalSolveResult& out) {
+    const double computed = p_.Residual(b_.data(), x.data(), res_.data(), threads_);
+    out.work += 1.0;
+    double sum = 0.0;
+    const int64_t n = p_.size();
+#pragma omp parallel for num_threads(threads_) reduction(+ : sum) schedule(static, 4096)
+    for (int64_t i = 0; i < n; ++i) sum += res_[i] * res_[i];
+    norm_ = std::sqrt(sum);
+    // Each entry of the computed b + P x - x carries at most (terms + 2) u (|b| + 2 max|x|) of
+    // rounding, P being substochastic (the gamma_k bound: Higham 2002, Accuracy and Stability
+    // of Numerical Algorithms, ch. 3, from memory).
+    allowance_ =
+        static_cast<double>(p_.terms() + 2) * kUnitRoundoff * (b_sup_ + 2.0 * SupNorm(x, threads_));
+    out.residual = std::isfinite(computed) ? computed + allowance_ : computed;
+    out.aim = std::max(target_, kFloor * allowance_);
+    return out.residual <= out.aim;
+  }
+  // Whether x meets the aim, and its residual's 2-norm, computed into a scratch vector (the
+  // Krylov state stays intact) and left out of `out` but for the work.
+  Krylov::Look Look(const std::vector<double>& x, TotalSolveResult& out) {
+    scratch_.resize(res_.size());
+    const double computed = p_.Residual(b_.data(), x.data(), scratch_.data(), threads_);
+    out.work += 1.0;
+    const double allowance =
+        static_cast<double>(p_.terms() + 2) * kUnitRoundoff * (b_sup_ + 2.0 * SupNorm(x, threads_));
+    double sum = 0.0;
+    const int64_t n = p_.size();
+#pragma omp parallel for num_threads(threads_) reduction(+ : sum) schedule(static, 4096)
+    for (int64_t i = 0; i < n; ++i) sum += scratch_[i] * scratch_[i];
+    const double aim = std::max(target_, kFloor * allowance);
+    return {computed + allowance <= aim, computed + allowance <= kNearAim * aim, std::sqrt(sum)};
+  }
+  // What BiCGSTAB's recursive residual should reach so that the true one meets the aim.
+  double KrylovAim(const TotalSolveResult& out) const { return 0.5 * (out.aim - allowance_); }
+  double norm() const { return norm_; }  // 2-norm of the last checked residual.
+  std::vector<double>& residual() { return res_; }
+
+ private:
+  const TotalPolicyMatrix& p_;
+  const std::vector<double>& b_;
+  const double target_;
+  const int threads_;
+  const double b_sup_;
+  std::vector<double> res_, scratch_;
+  double allowance_ = 0.0;
+  double norm_ = 0.0;
+};
+
+}  // namespace
+
+TotalSolveResult SolveTotalSystem(const TotalPolicyMatrix& p, const std::vector<double>& b,
+                                  double target, double max_work, int threads,
+                                  const std::function<bool()>& interrupted, TotalSolvePlan& plan,
+                                  std::vector<double>& x) {
+  TotalSolveResult out;
+  if (p.size() == 0) {
+    out.reached = true;
+    return out;
+  }
+  for (double& value : x) {
+    if (!std::isfinite(value)) value = 0.0;  // A warm start gone wrong.
+  }
+  Tracker tracker(p, b, target, threads);
+  out.reached = tracker.Check(x, out);
+  auto go_on = [&] { return !out.reached && out.work < max_work && !interrupted(); };
+  if (p.band_factored() && !plan.sweeps_only) {
+    // Iterative refinement with the exact factors: one round reaches the rounding floor
+    // unless the system is badly conditioned; the others mop up.
+    std::vector<double> correction(p.size());
+    for (int round = 0; round < 3 && go_on(); ++round) {
+      p.SolveBand(tracker.residual().data(), correction.data());
+      for (int64_t i = 0; i < p.size(); ++i) x[i] += correction[i];
+      out.work += 1.0;
+      out.reached = tracker.Check(x, out);
+    }
+  }
+  if (!plan.sweeps_only && go_on()) {
+    // BiCGSTAB, restarted only after kPassWork. Its residual is far from monotone (on a
+    // 100,000-state grid with one goal it grew 10^7-fold within 25 iterations before
+    // converging), so short passes judged one by one fail where one long pass succeeds. A
+    // pass that does not halve the residual is undone if it grew it; then the other
+    // preconditioner is tried if none has succeeded yet, else sweeps take over.
+    Krylov krylov(p, threads);
+    Preconditioner preconditioner = plan.preconditioner == Preconditioner::kUnknown
+                                        ? Preconditioner::kDiagonal
+                                        : plan.preconditioner;
+    const std::function<Krylov::Look(const std::vector<double>&)> look =
+        [&](const std::vector<double>& y) { return tracker.Look(y, out); };
+    std::vector<double> start;
+    while (go_on()) {
+      const double before = tracker.norm();
+      start = x;
+      out.work += krylov.Pass(preconditioner, tracker.KrylovAim(out),
+                              std::min(kPassWork, max_work - out.work), interrupted, look, x,
+                              tracker.residual());
+      out.reached = tracker.Check(x, out);
+      if (tracker.norm() < 0.5 * before) {
+        plan.preconditioner = preconditioner;  // It works: later solves start with it.
+        continue;
+      }
+      if (!(tracker.norm() <= before)) {  // Grown, or not a number.
+        x.swap(start);
+        out.reached = tracker.Check(x, out);
+      }
+      if (plan.preconditioner != Preconditioner::kUnknown ||
+          preconditioner == Preconditioner::kLowerTriangle) {
+        break;
+      }
+      preconditioner = Preconditioner::kLowerTriangle;
+    }
+  }
+  // Forward Gauss-Seidel: converges for a proper policy, if slowly. It stops early only when
+  // kSweepStall checks in a row bring no new smallest residual (rounding noise).
+  constexpr int kSweepsPerCheck = 4;
+  constexpr int kSweepStall = 256;
+  double smallest = tracker.norm();
+  for (int since = 0; go_on() && since < kSweepStall;) {
+    for (int k = 0; k < kSweepsPerCheck; ++k) p.GaussSeidel(b.data(), x.data());
+    out.work += kSweepsPerCheck;
+    out.reached = tracker.Check(x, out);
+    since = tracker.norm() < smallest ? 0 : since + 1;
+    smallest = std::min(smallest, tracker.norm());
+  }
+  out.interrupted = !out.reached && interrupted();
+  return out;
+}
+
+}  // namespace mdp::internal
