@@ -871,21 +871,63 @@ bool InexactEvaluation(LinearSolver kind, int64_t size) {
          (kind == LinearSolver::kAuto && size > kDirectMaxStates);
 }
 
+// Factors of a policy's system (kAuto only) must fit in four times the bytes of the model's
+// transitions, and at least 512 MiB (the average criterion's budget, average_chains.cc), and
+// cost at most kFactorWorkFloor + kFactorWorkPerEntry multiply-adds per entry of the system:
+// about what a few hundred products cost. They pay where iterations are slowest: next states
+// near the state (chains, rings, bands), where the fill stays small however slowly the
+// policy reaches a goal (a 100,000-state stock model with one goal: 36 s by BiCGSTAB and LU,
+// under a second factored). On an expander the fill is refused before any is spent.
+constexpr double kFactorWorkFloor = 1e9;
+constexpr double kFactorWorkPerEntry = 500.0;
+
+double FactorBudgetBytes(const Model& m) {
+  constexpr double kFloor = 512.0 * 1024 * 1024;
+  const double transitions =
+      static_cast<double>(m.num_entries()) * (sizeof(StateId) + sizeof(double));
+  return std::max(kFloor, 4.0 * transitions);
+}
+
 // What the inexact iteration and the report share.
 struct InexactRun {
-  InexactRun(const TotalRewardOptions& options, const internal::RunControl& control)
+  InexactRun(const Model& m, const TotalRewardOptions& options, const CancelToken* cancel,
+             const internal::RunControl& control)
       : threads(internal::ThreadCount(options.threads)),
-        factor_band(options.linear_solver == LinearSolver::kAuto),
+        factor(options.linear_solver == LinearSolver::kAuto),
+        budget_bytes(FactorBudgetBytes(m)),
         interrupted([&control, limit = options.time_limit_seconds] {
           return control.cancelled() || (limit > 0 && control.elapsed_seconds() >= limit);
         }) {
     plan.sweeps_only = options.linear_solver == LinearSolver::kSweeps;
+    stop.cancel = cancel;
+    if (options.time_limit_seconds > 0) {
+      stop.deadline = internal::StopCheck::DeadlineIn(
+          std::max(0.0, options.time_limit_seconds - control.elapsed_seconds()));
+      if (stop.deadline == internal::StopCheck::Clock::time_point::max()) {
+        stop.deadline = internal::StopCheck::Clock::now();  // The limit has passed.
+      }
+    }
   }
+
+  // Assigns `rows` to `policy` and, unless declined before or after a stop, factors it.
+  // A stop while factoring is seen by the next solve, which polls `interrupted` at once.
+  void Assign(const Model& m, const Index& index, const std::vector<RowId>& rows, bool stopped) {
+    policy.Assign(m, index.states, index.local, rows, threads);
+    if (!factor || declined || stopped) return;
+    const double max_work = kFactorWorkFloor + kFactorWorkPerEntry *
+                                                   static_cast<double>(policy.size()) *
+                                                   static_cast<double>(policy.terms());
+    const Status status = policy.Factor(budget_bytes, max_work, stop);
+    // Policies of one model share their structure: one refusal stands for the run.
+    declined = status.ok() && !policy.factored();
+  }
+
   const int threads;
-  // kAuto also solves narrow-banded policies (chains, small grids) by banded LU: there the
-  // iterations are slowest and the factors cheapest.
-  const bool factor_band;
+  const bool factor;  // kAuto: factor each policy when it pays.
+  const double budget_bytes;
   const std::function<bool()> interrupted;  // Cancel or time limit.
+  internal::StopCheck stop;                 // The same, for factorisations.
+  bool declined = false;
   internal::TotalSolvePlan plan;
   internal::TotalPolicyMatrix policy;
 };
@@ -914,7 +956,7 @@ Result<bool> SolveReportSteps(const Model& m, const Index& index, const std::vec
   }
   const std::function<bool()> never = [] { return false; };
   std::vector<double> x(steps.data(), steps.data() + size);
-  run->policy.Assign(m, index.states, index.local, rows, run->threads, run->factor_band);
+  run->Assign(m, index, rows, stopped);
   const internal::TotalSolveResult r =
       internal::SolveTotalSystem(run->policy, std::vector<double>(size, 1.0), kStepsResidual,
                                  stopped ? kGraceWork : kReportWork, run->threads,
@@ -1083,7 +1125,7 @@ Status IterateInexact(const Model& m, const Analysis& a, const TotalRewardOption
   const std::vector<double> ones(size, 1.0);
   std::vector<double> v(size, 0.0), steps(size, 0.0), scratch(size);
   std::vector<RowId> rows = a.reach.attractor;  // The policy being evaluated.
-  run.policy.Assign(m, a.index.states, a.index.local, rows, run.threads, run.factor_band);
+  run.Assign(m, a.index, rows, false);
   double e = a.reward_scale;  // The Bellman residual of V = 0 is at most max |r|.
   double share = kEvaluationShare;
   bool final_round = false;  // Evaluating `rows` to the report's accuracy.
@@ -1166,7 +1208,7 @@ Status IterateInexact(const Model& m, const Analysis& a, const TotalRewardOption
     stalled_rounds = 0;
     last_residual = last_steps_residual = kInf;
     rows.swap(next);
-    run.policy.Assign(m, a.index.states, a.index.local, rows, run.threads, run.factor_band);
+    run.Assign(m, a.index, rows, false);
     // Warm start: T_mu' V, one backup of the new policy ahead of V (N keeps mu's).
     run.policy.Residual(run.policy.reward().data(), v.data(), scratch.data(), run.threads);
     for (int64_t i = 0; i < size; ++i) v[i] += scratch[i];
@@ -1186,7 +1228,7 @@ Result<TotalRewardSolution> SolveT(const Model& m, const TotalRewardOptions& opt
   Iteration it;
   std::optional<InexactRun> run;
   if (InexactEvaluation(options.linear_solver, static_cast<int64_t>(a.index.states.size()))) {
-    run.emplace(options, control);
+    run.emplace(m, options, cancel, control);
     MDP_RETURN_IF_ERROR(IterateInexact<kMaximize>(m, a, options, control, *run, it, out));
   } else {
     MDP_RETURN_IF_ERROR(Iterate<kMaximize>(m, a, options, control, cancel, it, out));

@@ -69,21 +69,21 @@
 // Large models (inexact evaluation). Above 3,000 non-goal states of A (LinearSolver::kAuto),
 // and always with kBiCgStab or kSweeps, no evaluation is exact: each policy's rows are copied
 // out (internal/total_policy.h) and N, then V, are improved from warm starts (the last
-// policy's N and T_mu' V) by restarted BiCGSTAB or Gauss-Seidel sweeps (with kAuto, a policy
-// whose system is narrow-banded, as chains and small grids are, by banded LU instead),
-// polling cancel and the time limit. While the policy changes, N is solved to rho_N <= 0.1
-// and V to an error bound rho Nbar <= share * e (e the last Bellman residual, share 0.002,
-// tenfold tighter whenever an improvement fails to halve e): the improvement rule above,
-// with eps_V = rho Nbar, still makes every switch a true strict improvement, so the argument
-// above holds unchanged. Only when no row improves is the same policy evaluated to the exact
-// path's accuracy (N to 1e-9, V to 1e-3 tolerance / Nbar, or the rounding floor) and
-// improved once more; the run is stable when that changes nothing. If three such rounds in a
-// row halve neither residual, it stops as stable with the bound it has (outcome kStalled
-// unless it meets the tolerance). A stop (cancel, time limit) keeps the last completed
-// evaluation, or the interrupted first one; its bounds are computed from its own residuals,
-// so they are honest, if loose. The expected steps of the report are solved for the picks
-// to the 1e-9 residual; after a stop with only a little more work (unpolled, a bounded
-// overrun), and they are NaN when that residual was not met.
+// policy's N and T_mu' V) by restarted BiCGSTAB or Gauss-Seidel sweeps, or (kAuto) through
+// the sparse factors of I - P_mu when their fill, counted first, is small (next states near
+// the state: chains, rings, bands), polling cancel and the time limit. While the policy
+// changes, N is solved to rho_N <= 0.1 and V to an error bound rho Nbar <= share * e (e the
+// last Bellman residual, share 0.002, tenfold tighter whenever an improvement fails to halve
+// e): the improvement rule above, with eps_V = rho Nbar, still makes every switch a true
+// strict improvement, so the argument above holds unchanged. Only when no row improves is
+// the same policy evaluated to the exact path's accuracy (N to 1e-9, V to 1e-3 tolerance /
+// Nbar, or the rounding floor) and improved once more; the run is stable when that changes
+// nothing. If three such rounds in a row halve neither residual, it stops as stable with the
+// bound it has (outcome kStalled unless it meets the tolerance). A stop (cancel, time limit)
+// keeps the last completed evaluation, or the interrupted first one; its bounds are computed
+// from its own residuals, so they are honest, if loose. The expected steps of the report are
+// solved for the picks to the 1e-9 residual; after a stop with only a little more work
+// (unpolled, a bounded overrun), and they are NaN when that residual was not met.
 //
 // Bounds (all sup-norms over A minus the goals).
 //  - evaluation_error_bound: rho_N = sup|(I - P_mu) N - 1| < 1 gives

@@ -7,11 +7,12 @@ namespace mdp::internal {
 
 void TotalPolicyMatrix::Assign(const Model& m, const std::vector<StateId>& states,
                                const std::vector<int32_t>& local, const std::vector<RowId>& rows,
-                               int threads, bool factor_band) {
+                               int threads) {
   const int64_t n = static_cast<int64_t>(states.size());
   begin_.resize(static_cast<size_t>(n) + 1);
   reward_.resize(n);
   diagonal_.resize(n);
+  leak_.resize(n);
   begin_[0] = 0;
   terms_ = 1;
   for (int64_t i = 0; i < n; ++i) {
@@ -29,84 +30,56 @@ void TotalPolicyMatrix::Assign(const Model& m, const std::vector<StateId>& state
   for (int64_t i = 0; i < n; ++i) {
     const RowId r = rows[states[i]];
     reward_[i] = m.row_reward(r);
-    double self = 0.0;
+    double self = 0.0, leak = 0.0;
     int64_t out = begin_[i];
     for (int64_t e = m.entry_begin(r), end = m.entry_end(r); e < end; ++e) {
       const int32_t j = local[m.entry_next(e)];
-      if (j < 0) continue;  // A goal: value 0.
+      if (j < 0) {  // A goal: value 0.
+        leak += m.entry_probability(e);
+        continue;
+      }
       column_[out] = j;
       probability_[out++] = m.entry_probability(e);
       if (j == i) self = m.entry_probability(e);
     }
     diagonal_[i] = 1.0 - self;
+    leak_[i] = leak;
   }
-  band_factored_ = factor_band && FactorBand();
+  factors_ = MMatrixLu();
+  factored_ = false;
 }
 
-// Gaussian elimination without pivoting inside the band. I - P is a nonsingular M-matrix for a
-// proper policy, so every pivot is positive and the factors are M-matrices themselves, with no
-// growth of entries (Fiedler and Ptak 1962, from memory); no pivoting also means no fill
-// outside the band. Returns false (and frees the band) if the band is too wide or a pivot is
-// not positive.
-bool TotalPolicyMatrix::FactorBand() {
+Status TotalPolicyMatrix::Factor(double budget_bytes, double max_multiply_adds,
+                                 const StopCheck& stop) {
+  factored_ = false;
   const int64_t n = size();
-  lower_ = upper_ = 0;
+  LeakySystem system;
+  system.size = static_cast<int32_t>(n);
+  system.row_begin.assign(static_cast<size_t>(n) + 1, 0);
+  system.col.reserve(column_.size());
+  system.weight.reserve(column_.size());
+  system.leak = leak_;
   for (int64_t i = 0; i < n; ++i) {
     for (int64_t e = begin_[i]; e < begin_[i + 1]; ++e) {
-      lower_ = std::max<int64_t>(lower_, i - column_[e]);
-      upper_ = std::max<int64_t>(upper_, column_[e] - i);
+      if (column_[e] == i) continue;  // A self-loop is neither an entry nor leak.
+      system.col.push_back(column_[e]);
+      system.weight.push_back(probability_[e]);
     }
+    system.row_begin[i + 1] = static_cast<int64_t>(system.col.size());
   }
-  const int64_t width = lower_ + upper_ + 1;
-  if (n == 0 || width > kMaxBandEntries / n || lower_ * upper_ > kMaxBandWork / n) {
-    std::vector<double>().swap(band_);
-    return false;
+  // Each entry of L and of U holds an index and a value (FactorPlan::bytes).
+  constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
+  FactorPlan plan = PlanFactors(system, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
+  if (!plan.complete || plan.bytes() > budget_bytes || plan.multiply_adds > max_multiply_adds) {
+    return Status::Ok();
   }
-  band_.assign(n * width, 0.0);
-  double* a = band_.data();
-  for (int64_t i = 0; i < n; ++i) {
-    double* row = a + i * width + lower_ - i;  // row[j] is column j of row i.
-    row[i] = 1.0;
-    for (int64_t e = begin_[i]; e < begin_[i + 1]; ++e) row[column_[e]] -= probability_[e];
+  const Status status = factors_.Factorize(system, std::move(plan), stop);
+  factored_ = status.ok();
+  if (!factored_) factors_ = MMatrixLu();
+  if (status.code() == StatusCode::kCancelled || status.code() == StatusCode::kDeadlineExceeded) {
+    return status;
   }
-  for (int64_t k = 0; k < n; ++k) {
-    const double* pivot_row = a + k * width + lower_ - k;
-    const double pivot = pivot_row[k];
-    if (!(pivot > 0.0) || !std::isfinite(pivot)) {
-      std::vector<double>().swap(band_);
-      return false;
-    }
-    const int64_t last_row = std::min(n - 1, k + lower_);
-    const int64_t last_column = std::min(n - 1, k + upper_);
-    for (int64_t i = k + 1; i <= last_row; ++i) {
-      double* row = a + i * width + lower_ - i;
-      if (row[k] == 0.0) continue;
-      const double l = row[k] / pivot;
-      row[k] = l;
-      for (int64_t j = k + 1; j <= last_column; ++j) row[j] -= l * pivot_row[j];
-    }
-  }
-  return true;
-}
-
-void TotalPolicyMatrix::SolveBand(const double* b, double* x) const {
-  const int64_t n = size();
-  const int64_t width = lower_ + upper_ + 1;
-  const double* a = band_.data();
-  for (int64_t i = 0; i < n; ++i) {  // L y = b, L unit lower triangular.
-    const double* row = a + i * width + lower_ - i;
-    double acc = b[i];
-    for (int64_t k = std::max<int64_t>(0, i - lower_); k < i; ++k) acc -= row[k] * x[k];
-    x[i] = acc;
-  }
-  for (int64_t i = n - 1; i >= 0; --i) {  // U x = y.
-    const double* row = a + i * width + lower_ - i;
-    double acc = x[i];
-    for (int64_t j = i + 1, end = std::min(n - 1, i + upper_); j <= end; ++j) {
-      acc -= row[j] * x[j];
-    }
-    x[i] = acc / row[i];
-  }
+  return Status::Ok();  // Else factored, or a pivot was not positive: iterate instead.
 }
 
 double TotalPolicyMatrix::Residual(const double* b, const double* x, double* res,
@@ -373,12 +346,13 @@ TotalSolveResult SolveTotalSystem(const TotalPolicyMatrix& p, const std::vector<
   Tracker tracker(p, b, target, threads);
   out.reached = tracker.Check(x, out);
   auto go_on = [&] { return !out.reached && out.work < max_work && !interrupted(); };
-  if (p.band_factored() && !plan.sweeps_only) {
-    // Iterative refinement with the exact factors: one round reaches the rounding floor
-    // unless the system is badly conditioned; the others mop up.
-    std::vector<double> correction(p.size());
+  if (p.factored() && !plan.sweeps_only) {
+    // Iterative refinement with the factors: one round reaches the rounding floor unless the
+    // system is badly conditioned; the others mop up.
+    std::vector<double> correction;
     for (int round = 0; round < 3 && go_on(); ++round) {
-      p.SolveBand(tracker.residual().data(), correction.data());
+      correction = tracker.residual();
+      p.SolveFactored(correction);
       for (int64_t i = 0; i < p.size(); ++i) x[i] += correction[i];
       out.work += 1.0;
       out.reached = tracker.Check(x, out);

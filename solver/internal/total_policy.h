@@ -11,21 +11,24 @@
 
 #include <cstdint>
 #include <functional>
+#include <span>
 #include <vector>
 
+#include "solver/internal/mmatrix_lu.h"
 #include "solver/internal/policy_matrix.h"
+#include "solver/internal/stop_check.h"
 #include "solver/model.h"
+#include "solver/status.h"
 
 namespace mdp::internal {
 
 class TotalPolicyMatrix {
  public:
   // Local row i is row rows[states[i]]; next state t becomes column local[t], and is dropped
-  // when local[t] < 0. REQUIRES: every such t is a goal. With `factor_band`, also factors
-  // I - P by banded LU when its band (in index order) is narrow: at most kMaxBandEntries
-  // stored and kMaxBandWork multiply-adds. Reuses its buffers across calls.
+  // when local[t] < 0. REQUIRES: every such t is a goal. Drops the last policy's factors.
+  // Reuses its buffers across calls.
   void Assign(const Model& m, const std::vector<StateId>& states, const std::vector<int32_t>& local,
-              const std::vector<RowId>& rows, int threads, bool factor_band);
+              const std::vector<RowId>& rows, int threads);
 
   int64_t size() const { return static_cast<int64_t>(reward_.size()); }
   const std::vector<double>& reward() const { return reward_; }
@@ -42,28 +45,27 @@ class TotalPolicyMatrix {
   void LowerSolve(const double* b, double* z) const;
   // 1 - p(s | s): the diagonal of I - P, positive for a proper policy.
   const std::vector<double>& diagonal() const { return diagonal_; }
-  // True iff Assign factored I - P; then SolveBand(b, x) sets x = (I - P)^-1 b up to rounding.
-  bool band_factored() const { return band_factored_; }
-  void SolveBand(const double* b, double* x) const;
+
+  // Factors I - P (internal/mmatrix_lu.h: no pivoting, in a fill-reducing order, the fill
+  // counted before a byte is spent on it) if the factors take at most budget_bytes and
+  // max_multiply_adds; else, or if a pivot is not positive, leaves the policy unfactored.
+  // Returns kCancelled or kDeadlineExceeded (unfactored) if `stop` fires while it factors.
+  Status Factor(double budget_bytes, double max_multiply_adds, const StopCheck& stop);
+  bool factored() const { return factored_; }
+  // x <- (I - P)^-1 x, up to rounding. REQUIRES: factored().
+  void SolveFactored(std::span<double> x) const { factors_.Solve(x); }
 
  private:
-  bool FactorBand();
-
-  int64_t lower_ = 0, upper_ = 0;  // Band widths: -lower_ <= column - row <= upper_.
-  std::vector<double> band_;       // Row i, column j at i * (lower_ + upper_ + 1) + j - i + lower_.
-  bool band_factored_ = false;
   std::vector<int64_t> begin_;  // Size size() + 1.
   std::vector<int32_t> column_;
   std::vector<double> probability_;
   std::vector<double> reward_;
   std::vector<double> diagonal_;
+  std::vector<double> leak_;  // Probability of stepping into a goal, summed, not subtracted.
   int64_t terms_ = 1;
+  MMatrixLu factors_;
+  bool factored_ = false;
 };
-
-// Limits of the banded LU: stored entries (8 bytes each), and multiply-adds of one
-// factorisation (about n lower upper; a few tenths of a second).
-inline constexpr int64_t kMaxBandEntries = int64_t{1} << 24;
-inline constexpr int64_t kMaxBandWork = int64_t{400} << 20;
 
 // Work of one BiCGSTAB pass before it restarts from the true residual.
 inline constexpr double kPassWork = 4000.0;
@@ -85,9 +87,9 @@ struct TotalSolveResult {
   double work = 0.0;         // Products with P spent (a lower-triangle solve counts 0.8).
 };
 
-// Improves x (the warm start on entry, size p.size()) towards (I - P)^-1 b: if p is
-// band-factored (and not plan.sweeps_only), by up to three rounds of the banded LU
-// correction x += (I - P)^-1 (b + P x - x); then, or else, by BiCGSTAB passes
+// Improves x (the warm start on entry, size p.size()) towards (I - P)^-1 b: if p is factored
+// (and not plan.sweeps_only), by up to three rounds of the correction
+// x += (I - P)^-1 (b + P x - x) through the factors; then, or else, by BiCGSTAB passes
 // of up to kPassWork restarted from the true residual (diagonal preconditioner first, the
 // lower triangle if that fails, then what `plan` learnt), then forward Gauss-Seidel sweeps
 // if Krylov stops making progress (or only those, with plan.sweeps_only). Stops at the aim,

@@ -725,11 +725,12 @@ TEST(TotalRewardTest, MatchesBruteForceWithTrapsLoopsAndMixedSigns) {
 
 // Random exits: non-goal states 0..n-1 and the goal n. Every state has the same three actions
 // (probability g of stepping into the goal, cost c): express (0.5, 10), walk (0.1, 1), crawl
-// (0.02, 0.3); the rest of the mass goes to 4 random non-goal states (seeded), so no policy's
-// system has a band and each is solved iteratively. Derived here: with the same actions
-// everywhere, "always k" gives the constant V = c_k / g_k (20, 10, 15), and V = 10 solves the
-// Bellman equation V = min_k (c_k + (1 - g_k) V) (express: 10 + 0.5 * 10 = 15, walk: 10,
-// crawl: 0.3 + 0.98 * 10 = 10.1): V* = 10 everywhere, by walking, N = 1 / 0.1 = 10 steps.
+// (0.02, 0.3); the rest of the mass goes to 4 random non-goal states (seeded), so a policy's
+// factors would fill in (about n^3 / 3 multiply-adds, past their cap) and each system is
+// solved iteratively. Derived here: with the same actions everywhere, "always k" gives the
+// constant V = c_k / g_k (20, 10, 15), and V = 10 solves the Bellman equation
+// V = min_k (c_k + (1 - g_k) V) (express: 10 + 0.5 * 10 = 15, walk: 10, crawl:
+// 0.3 + 0.98 * 10 = 10.1): V* = 10 everywhere, by walking, N = 1 / 0.1 = 10 steps.
 // The constant 20 is a supersolution (c_k + (1 - g_k) 20 <= 20 for each k), so every policy
 // has V^mu <= 20. Maximising rewards -c mirrors all of it.
 constexpr double kExitGoal[3] = {0.5, 0.1, 0.02};
@@ -780,7 +781,8 @@ TEST(TotalRewardLargeTest, InexactEvaluationMatchesTheClosedFormOfRandomExits) {
 
 // A ring of n states, every goal_every-th one a goal; 3 actions per state, each with a cost
 // in [0.5, 2] and 4 outcomes at most 10 states away (weights random): slow to reach a goal
-// (hundreds of steps), and the wrap-around leaves no band.
+// (hundreds of steps). A fill-reducing order turns the ring into a band, so kAuto factors its
+// systems; kBiCgStab iterates.
 Model CostRing(int n, int goal_every, uint64_t seed) {
   std::mt19937_64 rng(seed);
   std::uniform_real_distribution<double> unit(0.0, 1.0);
@@ -842,9 +844,7 @@ Eigen::MatrixXd SparseLuValuesAndSteps(const Model& m, const std::vector<RowId>&
 
 // The pick's values W (by sparse LU) admit no improving row, so the pick is optimal and W is
 // V* (total_reward.h, Optimality): the reported values must be within their bound of W.
-TEST(TotalRewardLargeTest, InexactEvaluationMatchesSparseLuOnARing) {
-  const Model m = CostRing(4400, 400, 3);
-  const TotalRewardSolution s = MustSolve(m);
+void CheckRingAgainstSparseLu(const Model& m, const TotalRewardSolution& s) {
   ASSERT_EQ(s.outcome, SolveOutcome::kConverged);
   EXPECT_EQ(s.states_not_reaching_goal, 0);
   EXPECT_GE(s.iterations, 2);
@@ -867,6 +867,16 @@ TEST(TotalRewardLargeTest, InexactEvaluationMatchesSparseLuOnARing) {
   EXPECT_GT(most_steps, 50.0);  // Not a trivial system.
   EXPECT_NEAR(s.max_expected_steps, most_steps, 1e-9 * most_steps);
   EXPECT_LE(s.value_error_bound, 1e-8);
+}
+
+TEST(TotalRewardLargeTest, InexactEvaluationMatchesSparseLuOnARing) {
+  const Model m = CostRing(4400, 400, 3);
+  for (LinearSolver solver : {LinearSolver::kAuto, LinearSolver::kBiCgStab}) {
+    SCOPED_TRACE(solver == LinearSolver::kAuto ? "auto" : "bicgstab");
+    TotalRewardOptions options;
+    options.linear_solver = solver;
+    CheckRingAgainstSparseLu(m, MustSolve(m, options));
+  }
 }
 
 // Cancel and the time limit are polled inside every evaluation on the inexact path: stopped
@@ -923,8 +933,8 @@ TEST(TotalRewardLargeTest, CancelAndTimeLimitStopInsideTheFirstEvaluation) {
   }
 }
 
-// The solver of one policy's systems, on its own: banded LU, BiCGSTAB and Gauss-Seidel
-// sweeps against Eigen's sparse LU on the assembled system, with the reported residual
+// The solver of one policy's systems, on its own: through its factors, BiCGSTAB and
+// Gauss-Seidel sweeps against Eigen's sparse LU on the assembled system, with the reported residual
 // checked as a bound on the recomputed one.
 struct PolicySystemFixture {
   explicit PolicySystemFixture(const Model& model) : m(model) {
@@ -991,22 +1001,25 @@ Model LeakyChain(int n, uint64_t seed) {
 TEST(TotalRewardLargeTest, PolicySolvesAgreeWithSparseLu) {
   const std::function<bool()> never = [] { return false; };
   const Model chain = LeakyChain(4000, 5);
-  const Model exits = RandomExits(1500, 5, Objective::kMinimize);  // Sparse LU fills in.
+  const Model exits = RandomExits(1000, 5, Objective::kMinimize);  // The factors fill in.
   struct Case {
     const Model* model;
-    bool factor_band;
+    double factor_work;  // Cap on the factorisation's multiply-adds; 0: no factors.
     bool sweeps_only;
-    bool banded;  // Expected: the band was narrow enough to factor.
+    bool factored;  // Expected.
   };
-  for (const Case& c : {Case{&chain, true, false, true}, Case{&chain, false, false, false},
-                        Case{&chain, false, true, false}, Case{&exits, true, false, false},
-                        Case{&exits, true, true, false}}) {
-    SCOPED_TRACE(c.model->name() + (c.factor_band ? " band" : "") +
+  for (const Case& c : {Case{&chain, 1e8, false, true}, Case{&chain, 0, false, false},
+                        Case{&chain, 0, true, false}, Case{&exits, 1e8, false, false},
+                        Case{&exits, 1e10, false, true}, Case{&exits, 0, true, false}}) {
+    SCOPED_TRACE(c.model->name() + " factor work " + std::to_string(c.factor_work) +
                  (c.sweeps_only ? " sweeps" : ""));
     PolicySystemFixture f(*c.model);
     internal::TotalPolicyMatrix p;
-    p.Assign(*c.model, f.states, f.local, f.rows, 1, c.factor_band);
-    EXPECT_EQ(p.band_factored(), c.banded);
+    p.Assign(*c.model, f.states, f.local, f.rows, 1);
+    if (c.factor_work > 0) {
+      EXPECT_OK(p.Factor(64e6, c.factor_work, internal::StopCheck()));
+    }
+    EXPECT_EQ(p.factored(), c.factored);
     internal::TotalSolvePlan plan;
     plan.sweeps_only = c.sweeps_only;
     std::vector<double> x(f.states.size(), 0.0);
@@ -1028,9 +1041,19 @@ TEST(TotalRewardLargeTest, PolicySolvesAgreeWithSparseLu) {
 TEST(TotalRewardLargeTest, AnInterruptedPolicySolveReportsAnHonestResidual) {
   const Model chain = LeakyChain(4000, 9);
   PolicySystemFixture f(chain);
+  {  // A factorisation stopped by its StopCheck leaves the policy unfactored.
+    CancelToken cancelled;
+    cancelled.Cancel();
+    internal::StopCheck stop;
+    stop.cancel = &cancelled;
+    internal::TotalPolicyMatrix p;
+    p.Assign(chain, f.states, f.local, f.rows, 1);
+    EXPECT_EQ(p.Factor(64e6, 1e8, stop).code(), StatusCode::kCancelled);
+    EXPECT_FALSE(p.factored());
+  }
   for (bool sweeps_only : {false, true}) {
     internal::TotalPolicyMatrix p;
-    p.Assign(chain, f.states, f.local, f.rows, 1, false);
+    p.Assign(chain, f.states, f.local, f.rows, 1);
     internal::TotalSolvePlan plan;
     plan.sweeps_only = sweeps_only;
     int polls = 0;
