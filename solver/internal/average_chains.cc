@@ -343,11 +343,10 @@ StateId CollectingState(const Model& m, std::span<const RowId> rows, std::span<c
   return cls[std::max_element(x.begin(), x.end()) - x.begin()];
 }
 
-// I - P on the class without `anchor`: the chain's leak from a state is its probability of
-// stepping to the anchor (a class is closed). Sets local[s] for the class's other states to
-// their index in the system, local[anchor] = -1; `states` lists them by index.
-LeakySystem ClassSystem(const Model& m, std::span<const RowId> rows, std::span<const StateId> cls,
-                        StateId anchor, std::vector<int32_t>& local, std::vector<StateId>& states) {
+// Lists the states of `cls` other than `anchor` in `states`, in class order, and sets
+// local[s] to each one's index there, local[anchor] = -1.
+void IndexClassWithout(std::span<const StateId> cls, StateId anchor, std::vector<int32_t>& local,
+                       std::vector<StateId>& states) {
   states.clear();
   for (const StateId s : cls) {
     if (s == anchor) continue;
@@ -355,6 +354,14 @@ LeakySystem ClassSystem(const Model& m, std::span<const RowId> rows, std::span<c
     states.push_back(s);
   }
   local[anchor] = -1;
+}
+
+// I - P on the class without `anchor`: the chain's leak from a state is its probability of
+// stepping to the anchor (a class is closed). Sets local[s] for the class's other states to
+// their index in the system, local[anchor] = -1; `states` lists them by index.
+LeakySystem ClassSystem(const Model& m, std::span<const RowId> rows, std::span<const StateId> cls,
+                        StateId anchor, std::vector<int32_t>& local, std::vector<StateId>& states) {
+  IndexClassWithout(cls, anchor, local, states);
   LeakySystem system;
   system.size = static_cast<int32_t>(states.size());
   system.row_begin.reserve(states.size() + 1);
@@ -429,13 +436,7 @@ Status EvaluateClassFactored(const Model& m, std::span<const RowId> rows,
       }
       if (attempt > 0) ++context.counts.reanchored;
     } else {  // `system` was built by ClassSystem in class order; `local` may since differ.
-      states.clear();
-      for (const StateId s : cls) {
-        if (s == anchor) continue;
-        local[s] = static_cast<int32_t>(states.size());
-        states.push_back(s);
-      }
-      local[anchor] = -1;
+      IndexClassWithout(cls, anchor, local, states);
     }
     MMatrixLu factors;
     ++context.counts.factored;
