@@ -16,6 +16,7 @@
 #include <utility>
 
 #include "solver/average_reward.h"
+#include "solver/internal/average_chains.h"
 #include "solver/internal/bellman.h"
 #include "solver/internal/run_control.h"
 #include "solver/internal/total_policy.h"
@@ -871,9 +872,9 @@ bool InexactEvaluation(LinearSolver kind, int64_t size) {
          (kind == LinearSolver::kAuto && size > kDirectMaxStates);
 }
 
-// Factors of a policy's system (kAuto only) must fit in four times the bytes of the model's
-// transitions, and at least 512 MiB (the average criterion's budget, average_chains.cc), and
-// cost at most kFactorWorkFloor + kFactorWorkPerEntry multiply-adds per entry of the system:
+// Factors of a policy's system (kAuto only) must fit the average criterion's memory budget
+// (internal::FactorBudgetBytes: four times the bytes of the model's transitions, and at least
+// 512 MiB), and cost at most kFactorWorkFloor + kFactorWorkPerEntry multiply-adds per entry of the system:
 // about what a few hundred products cost. They pay where iterations are slowest: next states
 // near the state (chains, rings, bands), where the fill stays small however slowly the
 // policy reaches a goal (a 1,000,000-state ring with a goal every 10,000 states and 8
@@ -882,20 +883,13 @@ bool InexactEvaluation(LinearSolver kind, int64_t size) {
 constexpr double kFactorWorkFloor = 1e9;
 constexpr double kFactorWorkPerEntry = 500.0;
 
-double FactorBudgetBytes(const Model& m) {
-  constexpr double kFloor = 512.0 * 1024 * 1024;
-  const double transitions =
-      static_cast<double>(m.num_entries()) * (sizeof(StateId) + sizeof(double));
-  return std::max(kFloor, 4.0 * transitions);
-}
-
 // What the inexact iteration and the report share.
 struct InexactRun {
   InexactRun(const Model& m, const TotalRewardOptions& options, const CancelToken* cancel,
              const internal::RunControl& control)
       : threads(internal::ThreadCount(options.threads)),
         factor(options.linear_solver == LinearSolver::kAuto),
-        budget_bytes(FactorBudgetBytes(m)),
+        budget_bytes(internal::FactorBudgetBytes(m)),
         interrupted([&control, limit = options.time_limit_seconds] {
           return control.cancelled() || (limit > 0 && control.elapsed_seconds() >= limit);
         }) {

@@ -88,7 +88,7 @@ struct AverageSolveCounts {
 inline constexpr double kFactorWorkPerEntry = 2000.0;
 inline constexpr double kFactorWorkFloor = 1e9;
 // Four times the bytes of the model's transitions (next state and probability per entry),
-// and at least 512 MiB.
+// and at least 512 MiB. The total criterion's factored evaluations (total_reward.cc) share it.
 double FactorBudgetBytes(const Model& m);
 
 // Solves (I - P) g = 0, g + (I - P) h = r for the policy `rows` (as AnalyseChain), with
