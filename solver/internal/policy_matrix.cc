@@ -80,96 +80,6 @@ void PolicyMatrix::MultiplySystem(const double* x, double* y, int threads) const
 
 namespace {
 
-// One BiCGSTAB pass (van der Vorst 1992, right-preconditioned) on (I - g P) dx = res,
-// applied to x in place. res holds the true residual on entry and the recursive one on
-// return. Stops when the recursive residual's sup norm reaches `aim`, after `budget` work
-// units (a product is 1, a lower-triangle solve kLowerSolveCost), or at a breakdown.
-// Returns the work spent.
-class BiCgStab {
- public:
-  BiCgStab(const PolicyMatrix& p, int threads)
-      : p_(p), threads_(threads), n_(p.size()), rhat_(n_), dir_(n_, 0.0), v_(n_, 0.0), y_(n_),
-        z_(n_), t_(n_) {}
-
-  double Pass(Preconditioner preconditioner, double aim, double budget,
-              const std::function<bool()>& interrupted, std::vector<double>& x,
-              std::vector<double>& res) {
-    const bool lower = preconditioner == Preconditioner::kLowerTriangle;
-    const double step_cost = lower ? 2.0 + 2.0 * kLowerSolveCost : 2.0;
-    const double* d = p_.diagonal().data();
-    std::copy(res.begin(), res.end(), rhat_.begin());
-    std::fill(dir_.begin(), dir_.end(), 0.0);
-    std::fill(v_.begin(), v_.end(), 0.0);
-    double rho = 1.0, alpha = 1.0, omega = 1.0;
-    double work = 0.0;
-    while (work + step_cost <= budget) {
-      if (interrupted()) break;
-      const double rho_next = Dot(rhat_, res);
-      if (rho_next == 0.0 || !std::isfinite(rho_next)) break;
-      const double beta = (rho_next / rho) * (alpha / omega);
-      rho = rho_next;
-#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
-      for (StateId s = 0; s < n_; ++s) {
-        dir_[s] = res[s] + beta * (dir_[s] - omega * v_[s]);
-        y_[s] = dir_[s] / d[s];
-      }
-      if (lower) p_.LowerSolve(dir_.data(), y_.data());
-      p_.MultiplySystem(y_.data(), v_.data(), threads_);
-      work += step_cost / 2.0;
-      const double rv = Dot(rhat_, v_);
-      if (rv == 0.0 || !std::isfinite(rv)) break;
-      alpha = rho / rv;
-      double sup_s = 0.0;
-#pragma omp parallel for num_threads(threads_) reduction(max : sup_s) schedule(static, 4096)
-      for (StateId s = 0; s < n_; ++s) {
-        res[s] -= alpha * v_[s];
-        z_[s] = res[s] / d[s];
-        sup_s = std::max(sup_s, std::fabs(res[s]));
-      }
-      if (lower) p_.LowerSolve(res.data(), z_.data());
-      if (sup_s <= aim) {
-        Axpy(alpha, y_, x);
-        break;
-      }
-      p_.MultiplySystem(z_.data(), t_.data(), threads_);
-      work += step_cost / 2.0;
-      double ts = 0.0, tt = 0.0;
-#pragma omp parallel for num_threads(threads_) reduction(+ : ts, tt) schedule(static, 4096)
-      for (StateId s = 0; s < n_; ++s) {
-        ts += t_[s] * res[s];
-        tt += t_[s] * t_[s];
-      }
-      omega = tt == 0.0 ? 0.0 : ts / tt;
-      double sup_r = 0.0;
-#pragma omp parallel for num_threads(threads_) reduction(max : sup_r) schedule(static, 4096)
-      for (StateId s = 0; s < n_; ++s) {
-        x[s] += alpha * y_[s] + omega * z_[s];
-        res[s] -= omega * t_[s];
-        sup_r = std::max(sup_r, std::fabs(res[s]));
-      }
-      if (sup_r <= aim || omega == 0.0 || !std::isfinite(sup_r)) break;
-    }
-    return work;
-  }
-
- private:
-  double Dot(const std::vector<double>& a, const std::vector<double>& b) const {
-    double sum = 0.0;
-#pragma omp parallel for num_threads(threads_) reduction(+ : sum) schedule(static, 4096)
-    for (StateId s = 0; s < n_; ++s) sum += a[s] * b[s];
-    return sum;
-  }
-  void Axpy(double a, const std::vector<double>& from, std::vector<double>& to) const {
-#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
-    for (StateId s = 0; s < n_; ++s) to[s] += a * from[s];
-  }
-
-  const PolicyMatrix& p_;
-  const int threads_;
-  const StateId n_;
-  std::vector<double> rhat_, dir_, v_, y_, z_, t_;
-};
-
 // True residual res = r + g P x - x; returns its sup norm. `scratch` receives T_pi x.
 double TrueResidual(const PolicyMatrix& p, const std::vector<double>& x,
                     std::vector<double>& scratch, std::vector<double>& res, int threads) {
@@ -201,7 +111,8 @@ EvaluationResult SolvePolicyValues(const PolicyMatrix& p, double target, double 
   std::vector<double> scratch(p.size()), res(p.size());
   out.residual = TrueResidual(p, x, scratch, res, threads);
   out.work += 1.0;
-  BiCgStab krylov(p, threads);
+  // No looks: the true residual is checked after each pass.
+  BiCgStab<PolicyMatrix> krylov(p, threads);
   // Aim below the target: the recursive residual drifts from the true one.
   const double aim = 0.5 * target;
   if (plan.preconditioner == Preconditioner::kUnknown && out.residual > target) {
@@ -215,7 +126,7 @@ EvaluationResult SolvePolicyValues(const PolicyMatrix& p, double target, double 
     for (Preconditioner c : {Preconditioner::kDiagonal, Preconditioner::kLowerTriangle}) {
       x = start;
       res = start_res;
-      const double work = krylov.Pass(c, aim, kProbeWork, interrupted, x, res) + 1.0;
+      const double work = krylov.Pass(c, aim, kProbeWork, interrupted, {}, x, res) + 1.0;
       const double after = TrueResidual(p, x, scratch, res, threads);
       out.work += work;
       const int i = c == Preconditioner::kDiagonal ? 0 : 1;
@@ -237,7 +148,7 @@ EvaluationResult SolvePolicyValues(const PolicyMatrix& p, double target, double 
   while (failures < 2 && out.residual > target && out.work < max_work && !interrupted()) {
     const double before = out.residual;
     const std::vector<double> start = x;
-    out.work += krylov.Pass(plan.preconditioner, aim, max_work - out.work, interrupted, x, res);
+    out.work += krylov.Pass(plan.preconditioner, aim, max_work - out.work, interrupted, {}, x, res);
     out.residual = TrueResidual(p, x, scratch, res, threads);
     out.work += 1.0;
     if (std::isfinite(out.residual) && out.residual < 0.5 * before) continue;

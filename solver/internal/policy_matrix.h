@@ -14,6 +14,7 @@
 #include <vector>
 
 #include "solver/internal/bellman.h"
+#include "solver/internal/bicgstab.h"  // Preconditioner, kLowerSolveCost.
 #include "solver/model.h"
 
 namespace mdp::internal {
@@ -52,18 +53,8 @@ class PolicyMatrix {
   std::vector<double> diagonal_;
 };
 
-// Work units: one product with P_pi is 1; a lower-triangle solve reads about half the
-// entries, sequentially.
-inline constexpr double kLowerSolveCost = 0.8;
 // Work spent on each preconditioner when SolvePolicyValues probes them.
 inline constexpr double kProbeWork = 24.0;
-
-enum class Preconditioner {
-  kUnknown,        // Not chosen yet: the next solve probes both.
-  kDiagonal,       // Jacobi: cheap and parallel; good when next states scatter.
-  kLowerTriangle,  // Forward Gauss-Seidel (D - L): sequential, but follows transitions to
-                   // lower indices in one pass (stock that drains, queues that empty).
-};
 
 // What the evaluations of one solve learn and keep: policies of one model share their
 // structure, so the preconditioner probed on the first serves the others.

@@ -137,7 +137,8 @@ constexpr double kUnitRoundoff = 1.2e-16;  // 2^-53, rounded up.
 // allowance, a worst case that actual rounding (of order u max|x| sqrt(terms)) stays far
 // below; so the bound can still come within twice its floor.
 constexpr double kFloor = 2.0;
-// How close to its aim a stagnating BiCGSTAB pass must be to be restarted (Krylov::Pass).
+// How close to its aim a stagnating BiCGSTAB pass must be to be restarted (BiCgStab::Pass in
+// bicgstab.h).
 constexpr double kNearAim = 10.0;
 
 double SupNorm(const std::vector<double>& v, int threads) {
@@ -147,125 +148,6 @@ double SupNorm(const std::vector<double>& v, int threads) {
   for (int64_t i = 0; i < n; ++i) sup = std::max(sup, std::fabs(v[i]));
   return sup;
 }
-
-// BiCGSTAB (van der Vorst 1992), right-preconditioned, on (I - P) dx = res, applied to x in
-// place: one pass from the true residual `res` (which holds the recursive residual on
-// return) until its sup norm reaches `aim`, `budget` work is spent, or it breaks down.
-// Returns the work spent.
-class Krylov {
- public:
-  Krylov(const TotalPolicyMatrix& p, int threads)
-      : p_(p),
-        threads_(threads),
-        n_(p.size()),
-        rhat_(n_),
-        dir_(n_),
-        v_(n_),
-        y_(n_),
-        z_(n_),
-        t_(n_) {}
-
-  // Every kLookEvery work units, look(x) recomputes the true residual of x (one product,
-  // counted by the caller): the pass ends when it meets the aim (the recursive residual can
-  // stagnate above the aim while the true one is below it), or when, within kNearAim times
-  // the aim, its 2-norm has not reached a new low (by 10 %) for kStaleLooks looks. Near the
-  // aim a restart from the true residual is cheap and cures stagnation (on a 1,000,000-state
-  // grid one pass stuck 10 % above its aim for 4,000 products; the restarted one met it
-  // within 66); far from it the Krylov space built so far is worth keeping (restarts there
-  // made a 100,000-state ring 60 % slower).
-  struct Look {
-    bool meets = false;
-    bool near = false;  // Within kNearAim times the aim.
-    double norm = 0.0;
-  };
-  double Pass(Preconditioner preconditioner, double aim, double budget,
-              const std::function<bool()>& interrupted,
-              const std::function<Look(const std::vector<double>&)>& look, std::vector<double>& x,
-              std::vector<double>& res) {
-    constexpr double kLookEvery = 64.0;
-    constexpr int kStaleLooks = 8;
-    const bool lower = preconditioner == Preconditioner::kLowerTriangle;
-    const double half_step = lower ? 1.0 + kLowerSolveCost : 1.0;
-    rhat_ = res;
-    std::fill(dir_.begin(), dir_.end(), 0.0);
-    std::fill(v_.begin(), v_.end(), 0.0);
-    double rho = 1.0, alpha = 1.0, omega = 1.0, work = 0.0, next_look = kLookEvery;
-    double lowest = std::sqrt(Dot(res, res));
-    int stale = 0;
-    while (work + 2.0 * half_step <= budget && !interrupted()) {
-      if (work >= next_look) {
-        next_look = work + kLookEvery;
-        const Look seen = look(x);
-        if (seen.meets) break;
-        if (seen.norm < 0.9 * lowest) {
-          lowest = seen.norm;
-          stale = 0;
-        } else if (++stale >= kStaleLooks && seen.near) {
-          break;
-        }
-      }
-      const double rho_next = Dot(rhat_, res);
-      if (rho_next == 0.0 || !std::isfinite(rho_next)) break;
-      const double beta = (rho_next / rho) * (alpha / omega);
-      rho = rho_next;
-#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
-      for (int64_t i = 0; i < n_; ++i) dir_[i] = res[i] + beta * (dir_[i] - omega * v_[i]);
-      Precondition(lower, dir_, y_);
-      p_.MultiplySystem(y_.data(), v_.data(), threads_);
-      work += half_step;
-      const double rv = Dot(rhat_, v_);
-      if (rv == 0.0 || !std::isfinite(rv)) break;
-      alpha = rho / rv;
-      double sup_s = 0.0;
-#pragma omp parallel for num_threads(threads_) reduction(max : sup_s) schedule(static, 4096)
-      for (int64_t i = 0; i < n_; ++i) {
-        res[i] -= alpha * v_[i];
-        sup_s = std::max(sup_s, std::fabs(res[i]));
-      }
-      if (sup_s <= aim) {
-#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
-        for (int64_t i = 0; i < n_; ++i) x[i] += alpha * y_[i];
-        break;
-      }
-      Precondition(lower, res, z_);
-      p_.MultiplySystem(z_.data(), t_.data(), threads_);
-      work += half_step;
-      const double tt = Dot(t_, t_);
-      omega = tt == 0.0 ? 0.0 : Dot(t_, res) / tt;
-      double sup_r = 0.0;
-#pragma omp parallel for num_threads(threads_) reduction(max : sup_r) schedule(static, 4096)
-      for (int64_t i = 0; i < n_; ++i) {
-        x[i] += alpha * y_[i] + omega * z_[i];
-        res[i] -= omega * t_[i];
-        sup_r = std::max(sup_r, std::fabs(res[i]));
-      }
-      if (sup_r <= aim || omega == 0.0 || !std::isfinite(sup_r)) break;
-    }
-    return work;
-  }
-
- private:
-  void Precondition(bool lower, const std::vector<double>& in, std::vector<double>& out) const {
-    if (lower) {
-      p_.LowerSolve(in.data(), out.data());
-      return;
-    }
-    const double* d = p_.diagonal().data();
-#pragma omp parallel for num_threads(threads_) schedule(static, 4096)
-    for (int64_t i = 0; i < n_; ++i) out[i] = in[i] / d[i];
-  }
-  double Dot(const std::vector<double>& a, const std::vector<double>& b) const {
-    double sum = 0.0;
-#pragma omp parallel for num_threads(threads_) reduction(+ : sum) schedule(static, 4096)
-    for (int64_t i = 0; i < n_; ++i) sum += a[i] * b[i];
-    return sum;
-  }
-
-  const TotalPolicyMatrix& p_;
-  const int threads_;
-  const int64_t n_;
-  std::vector<double> rhat_, dir_, v_, y_, z_, t_;
-};
 
 // The true residual of x: its sup norm as a bound (what the caller's error bounds need) and
 // its 2-norm (what BiCGSTAB reduces; the sup norm can lag behind it for many iterations, so
@@ -300,7 +182,7 @@ class Tracker {
   }
   // Whether x meets the aim, and its residual's 2-norm, computed into a scratch vector (the
   // Krylov state stays intact) and left out of `out` but for the work.
-  Krylov::Look Look(const std::vector<double>& x, TotalSolveResult& out) {
+  BiCgStabLook Look(const std::vector<double>& x, TotalSolveResult& out) {
     scratch_.resize(res_.size());
     const double computed = p_.Residual(b_.data(), x.data(), scratch_.data(), threads_);
     out.work += 1.0;
@@ -364,12 +246,11 @@ TotalSolveResult SolveTotalSystem(const TotalPolicyMatrix& p, const std::vector<
     // converging), so short passes judged one by one fail where one long pass succeeds. A
     // pass that does not halve the residual is undone if it grew it; then the other
     // preconditioner is tried if none has succeeded yet, else sweeps take over.
-    Krylov krylov(p, threads);
+    BiCgStab<TotalPolicyMatrix> krylov(p, threads);
     Preconditioner preconditioner = plan.preconditioner == Preconditioner::kUnknown
                                         ? Preconditioner::kDiagonal
                                         : plan.preconditioner;
-    const std::function<Krylov::Look(const std::vector<double>&)> look =
-        [&](const std::vector<double>& y) { return tracker.Look(y, out); };
+    const BiCgStabLookFn look = [&](const std::vector<double>& y) { return tracker.Look(y, out); };
     std::vector<double> start;
     while (go_on()) {
       const double before = tracker.norm();

@@ -14,8 +14,8 @@
 #include <span>
 #include <vector>
 
+#include "solver/internal/bicgstab.h"
 #include "solver/internal/mmatrix_lu.h"
-#include "solver/internal/policy_matrix.h"
 #include "solver/internal/stop_check.h"
 #include "solver/model.h"
 #include "solver/status.h"
