@@ -111,6 +111,36 @@ Timing TimeSweeps(const Model& m, SweepKernel kernel, int threads, int repetitio
   return Summarise(std::move(seconds));
 }
 
+PairedTiming TimePairedWithProbe(const Model& m, BandwidthProbe& probe, int threads, int rounds) {
+  std::vector<double> a(m.num_states(), 0.0), b(m.num_states(), 0.0);
+  double sink = 0.0;
+  auto sweep = [&] {
+    sink += internal::SyncSweep(m, a.data(), b.data(), threads);
+    a.swap(b);
+  };
+  sweep();
+  sweep();
+  (void)probe.Measure(threads, 1);
+  const double sweep_bytes = static_cast<double>(SweepBytes(m));
+  const double probe_bytes = static_cast<double>(probe.bytes());
+  std::vector<double> probe_seconds, sweep_seconds;
+  PairedTiming out;
+  for (int r = 0; r < rounds; ++r) {
+    const double p = probe.Measure(threads, 1).best;
+    Stopwatch clock;
+    sweep();
+    const double s = clock.seconds();
+    probe_seconds.push_back(p);
+    sweep_seconds.push_back(s);
+    out.ratio.push_back((sweep_bytes / s) / (probe_bytes / p));
+  }
+  if (std::isnan(sink)) sweep_seconds.clear();  // Never true; keeps the residuals observable.
+  std::sort(out.ratio.begin(), out.ratio.end());
+  out.probe = Summarise(std::move(probe_seconds));
+  out.sweep = Summarise(std::move(sweep_seconds));
+  return out;
+}
+
 int64_t SweepBytes(const Model& m) {
   const int64_t states = m.num_states(), rows = m.num_rows(), entries = m.num_entries();
   return 8 * (states + 1) + 8 * rows + 8 * (rows + 1) + 4 * entries + 8 * entries + 8 * states;

@@ -62,6 +62,17 @@ enum class SweepKernel {
 Timing TimeSweeps(const Model& m, SweepKernel kernel, int threads, int repetitions,
                   double min_seconds);
 
+// The probe and the solver's sweep timed in alternation, one of each per round, so that both
+// see the same moment of a shared machine: `rounds` pairs after 2 untimed sweeps and one
+// untimed probe. ratio[i] is round i's sweep rate (sweep_bytes per second) over its probe
+// rate; its median is what the bandwidth target is judged on.
+struct PairedTiming {
+  Timing probe;
+  Timing sweep;
+  std::vector<double> ratio;  // Sorted.
+};
+PairedTiming TimePairedWithProbe(const Model& m, BandwidthProbe& probe, int threads, int rounds);
+
 // One synchronous sweep with the reference loop; returns sup |out - in|. Maximising models.
 double ReferenceSweep(const Model& m, const double* in, double* out, int threads);
 

@@ -12,6 +12,7 @@
 //       [--write-arrays=DIR] [--write-json=FILE]
 //       [--criterion=discounted|average|finite_horizon|total] [--horizon=100]
 //       [--terminal-every=0] [--objective=maximize|minimize] [--reward-shift=0]
+//       [--paired-probe-bytes=0] [--paired-rounds=15]
 //       Generates the model, builds it, optionally writes it for the baselines, times sweeps
 //       (solver and reference loop, 1 thread and all threads; at least --sweeps of each and
 //       more until --min-seconds have passed) and solves to a bound with
@@ -26,6 +27,9 @@
 //       --objective=minimize the rewards read as costs; --reward-shift adds a constant to
 //       every action's reward (1.5 makes the random and local generators' costs positive,
 //       which makes a total-cost model with goals well posed).
+//       --paired-probe-bytes=N (N > 0): last, after the peak RSS is recorded, times the
+//       read-bandwidth probe over N bytes and the solver's sweep in alternation,
+//       --paired-rounds pairs per thread count (1 and all): the object "paired_probe".
 // Flags are --name=value or --name value. Exit status 2 on bad flags, 1 on a failed step.
 #include <algorithm>
 #include <cmath>
@@ -213,6 +217,29 @@ std::vector<JsonObject> TimeAllSweeps(const Model& m, int sweeps, double min_sec
   return timings;
 }
 
+// The probe and the solver's sweep in alternation (TimePairedWithProbe), 1 thread and all.
+std::vector<JsonObject> TimeAllPaired(const Model& m, int64_t probe_bytes, int rounds) {
+  BandwidthProbe probe(probe_bytes);
+  std::vector<JsonObject> out;
+  const int all_threads = internal::ThreadCount(0);
+  for (int threads : {1, all_threads}) {
+    const PairedTiming t = TimePairedWithProbe(m, probe, threads, rounds);
+    const std::vector<double>& ratio = t.ratio;
+    out.push_back(JsonObject()
+                      .Add("threads", threads)
+                      .Add("rounds", rounds)
+                      .Add("probe_bytes", probe.bytes())
+                      .Add("sweep_bytes", SweepBytes(m))
+                      .Add("probe", TimingJson("sum", threads, t.probe))
+                      .Add("sweep", TimingJson("project", threads, t.sweep))
+                      .Add("ratio_min", ratio.front())
+                      .Add("ratio_median", ratio[ratio.size() / 2])
+                      .Add("ratio_max", ratio.back()));
+    if (threads == all_threads) break;
+  }
+  return out;
+}
+
 // Renumbering as Solve() does it: what the automatic rule decides and costs, the locality
 // score, the order's and the copy's cost, the copy's resident memory (measured while it is
 // alive: the order's temporary arrays are freed before the copy is built, so this is the
@@ -298,6 +325,8 @@ int RunModel(Flags& flags) {
   const std::optional<Renumber> renumber = ParseRenumber(flags.Get("renumber", "auto"));
   const bool measure_renumbering = flags.Number("measure-renumbering", 1) != 0;
   const std::string arrays_dir = flags.Get("write-arrays", "");
+  const auto paired_bytes = static_cast<int64_t>(flags.Number("paired-probe-bytes", 0));
+  const int paired_rounds = static_cast<int>(flags.Number("paired-rounds", 15));
   const std::string json_path = flags.Get("write-json", "");
   const std::optional<CriterionKind> criterion =
       ParseCriterion(flags.Get("criterion", "discounted"));
@@ -386,6 +415,9 @@ int RunModel(Flags& flags) {
   report.Add("tolerance", options.tolerance).Add("solve_threads", options.threads);
   report.Add("solves", *solves);
   report.Add("peak_rss_bytes", PeakResidentBytes());
+  if (paired_bytes > 0 && paired_rounds > 0) {
+    report.Add("paired_probe", TimeAllPaired(m, paired_bytes, paired_rounds));
+  }
   std::printf("%s\n", report.str().c_str());
   return 0;
 }
