@@ -84,30 +84,9 @@ bool CpuHasGather() {
 #endif
 }
 
-// Entries of the sampled states whose next state lies more than this many ids away: their
-// values are then rarely in L1 (4096 doubles = 32 KiB).
-constexpr StateId kGatherNearWindow = 4096;
-constexpr StateId kGatherSampleStates = 512;
-
 }  // namespace
 
-KernelSet ChooseKernels(const Model& m) {
-  if (!CpuHasGather() || m.num_entries() < kGatherMinEntries) return KernelSet::kPortable;
-  const StateId n = m.num_states();
-  const RowId* rb = m.state_row_begin_data();
-  const int64_t* eb = m.row_entry_begin_data();
-  const StateId* next = m.entry_next_data();
-  int64_t far = 0, seen = 0;
-  for (StateId i = 0; i < kGatherSampleStates; ++i) {
-    const StateId s = static_cast<StateId>(int64_t{n} * i / kGatherSampleStates);
-    for (int64_t e = eb[rb[s]], end = eb[rb[s + 1]]; e < end; ++e, ++seen) {
-      far += std::abs(int64_t{next[e]} - s) > kGatherNearWindow ? 1 : 0;
-    }
-  }
-  return seen > 0 && static_cast<double>(far) >= static_cast<double>(seen) * kGatherMinFarShare
-             ? KernelSet::kGather
-             : KernelSet::kPortable;
-}
+KernelSet ChooseKernels(const Model& /*m*/) { return KernelSet::kPortable; }
 
 #ifdef MDP_BELLMAN_HAVE_GATHER_COPY
 #define MDP_BELLMAN_DISPATCH(kernels, call) \

@@ -20,14 +20,6 @@ namespace {
 
 using internal::KernelSet;
 
-bool CpuHasGather() {
-#if defined(__GNUC__) && (defined(__x86_64__) || defined(__i386__))
-  return __builtin_cpu_supports("avx2") && __builtin_cpu_supports("fma");
-#else
-  return false;
-#endif
-}
-
 // (T v)(s) from the definition: the max (or min) over the rows of s of
 // r + g * sum p v(next), or 0 at a terminal state. Each row's sum is kept in long double, so
 // this is not the kernels' arithmetic.
@@ -159,16 +151,21 @@ Model RingOrScatter(StateId n, int width, bool scattered) {
   return testing::MustBuild(spec);
 }
 
-TEST(BellmanKernelsTest, GatherIsChosenForLargeScatteredModelsOnly) {
+// The solver's own sweeps take the portable copy (bellman.h says why): on a large scattered
+// model, where the gather copy used to be chosen, the automatic sweep is the portable one bit
+// for bit.
+TEST(BellmanKernelsTest, SolverSweepsUseThePortableCopy) {
   const Model scattered = RingOrScatter(80000, 4, true);
-  const Model ring = RingOrScatter(80000, 4, false);
-  const Model small = RingOrScatter(2000, 4, true);
-  ASSERT_GE(scattered.num_entries(), internal::kGatherMinEntries);
-  ASSERT_LT(small.num_entries(), internal::kGatherMinEntries);
-  EXPECT_EQ(internal::ChooseKernels(scattered),
-            CpuHasGather() ? KernelSet::kGather : KernelSet::kPortable);
-  EXPECT_EQ(internal::ChooseKernels(ring), KernelSet::kPortable);
-  EXPECT_EQ(internal::ChooseKernels(small), KernelSet::kPortable);
+  EXPECT_EQ(internal::ChooseKernels(scattered), KernelSet::kPortable);
+  const std::vector<double> in = SomeValues(scattered.num_states(), 5);
+  std::vector<double> automatic(scattered.num_states()), portable(scattered.num_states());
+  const double d_auto = internal::SyncSweep(scattered, in.data(), automatic.data(), 2);
+  const double d_portable =
+      internal::SyncSweep(scattered, in.data(), portable.data(), 2, KernelSet::kPortable);
+  EXPECT_EQ(d_auto, d_portable);
+  for (StateId s = 0; s < scattered.num_states(); ++s) {
+    ASSERT_EQ(automatic[s], portable[s]) << "state " << s;
+  }
 }
 
 // CsrCombine (policy_matrix.h's products) against its definition, with rows of 0 to 12
@@ -213,8 +210,7 @@ TEST(BellmanKernelsTest, CsrCombineComputesItsDefinition) {
 }
 
 // A finite horizon's stage uses its own discount (here 1 and 0.5, not the model's 0.97 or
-// 0.9), on a small model (portable copy) and on a large scattered one (the gather copy where
-// the CPU has it).
+// 0.9), on a small model and on a large scattered one.
 TEST(BellmanKernelsTest, StageSweepUsesTheGivenDiscount) {
   const Model varied = VariedRowsModel(Objective::kMinimize);
   const Model scattered = RingOrScatter(80000, 4, true);
