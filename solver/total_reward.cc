@@ -874,9 +874,9 @@ bool InexactEvaluation(LinearSolver kind, int64_t size) {
 
 // Factors of a policy's system (kAuto only) must fit the average criterion's memory budget
 // (internal::FactorBudgetBytes: four times the bytes of the model's transitions, and at least
-// 512 MiB), and cost at most kFactorWorkFloor + kFactorWorkPerEntry multiply-adds per entry of the system:
-// about what a few hundred products cost. They pay where iterations are slowest: next states
-// near the state (chains, rings, bands), where the fill stays small however slowly the
+// 512 MiB), and cost at most kFactorWorkFloor + kFactorWorkPerEntry multiply-adds per entry
+// of the system: about what a few hundred products cost. They pay where iterations are slowest:
+// next states near the state (chains, rings, bands), where the fill stays small however slowly the
 // policy reaches a goal (a 1,000,000-state ring with a goal every 10,000 states and 8
 // outcomes within 16 states: 267 s with exact Krylov and LU evaluations, 158 s inexact, 19 s
 // factored). On an expander the fill is refused before any is spent.
