@@ -120,9 +120,13 @@ for structure in $STRUCTURES; do
   say "$structure: $STATES states${methods:+, solves: $methods}"
   run "$BIN/solver_bench" model --structure="$structure" --states="$STATES" --sweeps="$SWEEPS" \
     "${solves[@]}" --write-arrays="$WORK/arrays-$structure" >"$WORK/model-$structure.json"
+  # Last, numpy's sweep and the solver's alternate round by round (the solver in its own
+  # process, on the same model generated again): the sweep targets are judged on these rounds.
   say "$structure: numpy/scipy baseline"
   run "$PY" "$ROOT/scripts/bench/baseline_sweep.py" "$WORK/arrays-$structure" \
-    --sweeps "$SWEEPS" "${solve[@]}" >"$WORK/numpy-$structure.json"
+    --sweeps "$SWEEPS" "${solve[@]}" --paired-rounds 15 \
+    --paired-solver "$(printf %q "$BIN/solver_bench") sweep-on-request --structure=$structure --states=$STATES" \
+    >"$WORK/numpy-$structure.json"
   rm -rf "$WORK/arrays-$structure"
   sample_load "$structure"
 done

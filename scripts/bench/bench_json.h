@@ -15,12 +15,7 @@ namespace mdp::bench {
 
 class JsonObject {
  public:
-  JsonObject& Add(std::string_view key, double value) {
-    if (!std::isfinite(value)) return AddRaw(key, "null");
-    char text[32];
-    std::snprintf(text, sizeof text, "%.9g", value);
-    return AddRaw(key, text);
-  }
+  JsonObject& Add(std::string_view key, double value) { return AddRaw(key, Number(value)); }
   JsonObject& Add(std::string_view key, int64_t value) {
     return AddRaw(key, std::to_string(value));
   }
@@ -39,6 +34,11 @@ class JsonObject {
     for (size_t i = 0; i < values.size(); ++i) list += (i ? ", " : "") + values[i].str();
     return AddRaw(key, list + "]");
   }
+  JsonObject& Add(std::string_view key, const std::vector<double>& values) {
+    std::string list = "[";
+    for (size_t i = 0; i < values.size(); ++i) list += (i ? ", " : "") + Number(values[i]);
+    return AddRaw(key, list + "]");
+  }
   // `json` must already be valid JSON.
   JsonObject& AddRaw(std::string_view key, std::string_view json) {
     if (!body_.empty()) body_ += ", ";
@@ -48,6 +48,12 @@ class JsonObject {
   std::string str() const { return "{" + body_ + "}"; }
 
  private:
+  static std::string Number(double value) {
+    if (!std::isfinite(value)) return "null";
+    char text[32];
+    std::snprintf(text, sizeof text, "%.9g", value);
+    return text;
+  }
   static std::string Quote(std::string_view s) {
     std::string out = "\"";
     for (char c : s) {

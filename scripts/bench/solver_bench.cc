@@ -30,6 +30,15 @@
 //       --paired-probe-bytes=N (N > 0): last, after the peak RSS is recorded, times the
 //       read-bandwidth probe over N bytes and the solver's sweep in alternation,
 //       --paired-rounds pairs per thread count (1 and all): the object "paired_probe".
+//   solver_bench sweep-on-request --structure=... [--states=100000] [--actions=4]
+//       [--outcomes=8] [--seed=1] [--discount=0.99] [--reach=16]
+//       Generates and builds the same model as `model` with the same flags, prints one JSON
+//       line {"ready": true, "states", "entries", "check_sum": the sum of V after 3 sweeps
+//       from 0}, then answers each line "THREADS COUNT" on standard input with COUNT timed
+//       sweeps of the solver's kernel on THREADS threads (0 = all) as one JSON line
+//       {"threads", "seconds": [...]}, until "quit" or the end of input. Lets a baseline in
+//       another process alternate its sweeps with the solver's (baseline_sweep.py
+//       --paired-solver), so both are timed under the same machine conditions.
 // Flags are --name=value or --name value. Exit status 2 on bad flags, 1 on a failed step.
 #include <algorithm>
 #include <cmath>
@@ -306,7 +315,8 @@ std::optional<Renumber> ParseRenumber(const std::string& name) {
   return std::nullopt;
 }
 
-int RunModel(Flags& flags) {
+// The generator flags shared by `model` and `sweep-on-request`; nullopt for a bad structure.
+std::optional<ModelShape> ShapeFlags(Flags& flags) {
   ModelShape shape;
   const std::optional<Structure> structure = ParseStructure(flags.Get("structure", "random"));
   shape.states = static_cast<int64_t>(flags.Number("states", 100000));
@@ -315,6 +325,18 @@ int RunModel(Flags& flags) {
   shape.seed = static_cast<uint64_t>(flags.Number("seed", 1));
   shape.discount = flags.Number("discount", 0.99);
   shape.reach = static_cast<int64_t>(flags.Number("reach", 16));
+  if (!structure || shape.states < 1 || shape.actions < 1 || shape.outcomes < 1 ||
+      (*structure == Structure::kGrid && (shape.actions > 8 || shape.outcomes > 8))) {
+    return std::nullopt;
+  }
+  shape.structure = *structure;
+  return shape;
+}
+
+constexpr char kBadShape[] = "solver_bench: bad --structure or size (grid: at most 8 and 8)\n";
+
+int RunModel(Flags& flags) {
+  const std::optional<ModelShape> parsed_shape = ShapeFlags(flags);
   const int sweeps = static_cast<int>(flags.Number("sweeps", 10));
   const double min_seconds = flags.Number("min-seconds", 0.5);
   const std::vector<std::string> methods = SplitCommas(flags.Get("methods", ""));
@@ -346,12 +368,11 @@ int RunModel(Flags& flags) {
     return 2;
   }
   options.renumber = *renumber;
-  if (!structure || shape.states < 1 || shape.actions < 1 || shape.outcomes < 1 ||
-      (*structure == Structure::kGrid && (shape.actions > 8 || shape.outcomes > 8))) {
-    std::fprintf(stderr, "solver_bench: bad --structure or size (grid: at most 8 and 8)\n");
+  if (!parsed_shape) {
+    std::fputs(kBadShape, stderr);
     return 2;
   }
-  shape.structure = *structure;
+  const ModelShape shape = *parsed_shape;
 
   JsonObject report;
   report.Add("kind", "model").Add("structure", StructureName(shape.structure));
@@ -422,16 +443,70 @@ int RunModel(Flags& flags) {
   return 0;
 }
 
+// solver_bench sweep-on-request: see the top of the file.
+int RunSweepOnRequest(Flags& flags) {
+  const std::optional<ModelShape> shape = ShapeFlags(flags);
+  if (!flags.AllKnown()) return 2;
+  if (!shape) {
+    std::fputs(kBadShape, stderr);
+    return 2;
+  }
+  Result<Model> built = BuildModel(GenerateSpec(*shape));
+  if (!built.ok()) {
+    std::fprintf(stderr, "solver_bench: %s\n", built.status().ToString().c_str());
+    return 1;
+  }
+  const Model& m = *built;
+  double check_sum = 0.0;
+  for (double x : CheckValues(m, 3)) check_sum += x;
+  std::printf("%s\n", JsonObject()
+                          .AddRaw("ready", "true")
+                          .Add("states", m.num_states())
+                          .Add("entries", m.num_entries())
+                          .Add("check_sum", check_sum)
+                          .str()
+                          .c_str());
+  std::fflush(stdout);
+  std::vector<double> a(m.num_states(), 0.0), b(m.num_states(), 0.0);
+  double sink = 0.0;
+  char line[256];
+  while (std::fgets(line, sizeof line, stdin) != nullptr) {
+    if (std::string(line).rfind("quit", 0) == 0) break;
+    int threads = -1, count = 0;
+    if (std::sscanf(line, "%d %d", &threads, &count) != 2 || threads < 0 || count < 1 ||
+        count > 1000) {
+      std::fprintf(stderr, "solver_bench: expected \"THREADS COUNT\" or \"quit\", got %s", line);
+      return 2;
+    }
+    const int used = internal::ThreadCount(threads);
+    std::vector<double> seconds;
+    for (int i = 0; i < count; ++i) {
+      Stopwatch clock;
+      sink += internal::SyncSweep(m, a.data(), b.data(), used);
+      seconds.push_back(clock.seconds());
+      a.swap(b);
+    }
+    if (std::isnan(sink)) seconds.clear();  // Never true; keeps the residuals observable.
+    std::printf("%s\n", JsonObject().Add("threads", used).Add("seconds", seconds).str().c_str());
+    std::fflush(stdout);
+  }
+  return 0;
+}
+
 }  // namespace
 }  // namespace mdp::bench
 
 int main(int argc, char** argv) {
   const std::string command = argc > 1 ? argv[1] : "";
   mdp::bench::Flags flags;
-  if (command != "probe" && command != "model") {
-    std::fprintf(stderr, "usage: solver_bench probe|model [--flag=value ...] (see the source)\n");
+  if (command != "probe" && command != "model" && command != "sweep-on-request") {
+    std::fprintf(stderr,
+                 "usage: solver_bench probe|model|sweep-on-request [--flag=value ...] "
+                 "(see the source)\n");
     return 2;
   }
   if (!flags.Parse(argc, argv, 2)) return 2;
-  return command == "probe" ? mdp::bench::RunProbe(flags) : mdp::bench::RunModel(flags);
+  if (command == "probe") return mdp::bench::RunProbe(flags);
+  if (command == "model") return mdp::bench::RunModel(flags);
+  return mdp::bench::RunSweepOnRequest(flags);
 }
