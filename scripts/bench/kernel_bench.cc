@@ -6,7 +6,11 @@
 //   kernel_bench [--benchmark_*]    e.g. --benchmark_format=json --benchmark_min_time=0.2
 //
 // Environment: MDP_KERNEL_BENCH_STATES (default 100000) states per model, 4 actions x 8
-// outcomes; MDP_KERNEL_BENCH_STRUCTURES (default "random,local,local_shuffled").
+// outcomes; MDP_KERNEL_BENCH_STRUCTURES (default "random,local,local_shuffled");
+// MDP_KERNEL_BENCH_SPANS (default "4096,65536,524288"): SyncSweepSpan/<span> sweeps the random
+// model with every next state folded into [0, span) (next % span), so V's footprint is
+// span x 8 bytes while the row and entry counts stay (up to the few outcomes the fold
+// merges): how much of the random sweep's time is its scattered reads of V, by cache level.
 #include <benchmark/benchmark.h>
 
 #include <cstdlib>
@@ -43,6 +47,37 @@ const Model& CachedModel(Structure structure) {
     slot = std::make_unique<Model>(std::move(built).value());
   }
   return *slot;
+}
+
+// The random model with each next state j replaced by j % span (outcomes that land on the
+// same state merge), built once per span.
+const Model& CachedSpanModel(int64_t span) {
+  static std::map<int64_t, std::unique_ptr<Model>> models;
+  std::unique_ptr<Model>& slot = models[span];
+  if (!slot) {
+    ModelShape shape;
+    shape.structure = Structure::kRandom;
+    shape.states = std::atoll(EnvOr("MDP_KERNEL_BENCH_STATES", "100000").c_str());
+    ModelSpec spec = GenerateSpec(shape);
+    for (StateId& j : spec.outcome_next) j = static_cast<StateId>(j % span);
+    Result<Model> built = BuildModel(spec);
+    if (!built.ok()) std::abort();
+    slot = std::make_unique<Model>(std::move(built).value());
+  }
+  return *slot;
+}
+
+void RunSpan(benchmark::State& state, int64_t span, int threads) {
+  const Model& m = CachedSpanModel(span);
+  std::vector<double> a(m.num_states(), 0.0), b(m.num_states(), 0.0);
+  for (auto _ : state) {
+    benchmark::DoNotOptimize(internal::SyncSweep(m, a.data(), b.data(), threads));
+    a.swap(b);
+  }
+  state.SetBytesProcessed(state.iterations() * SweepBytes(m));
+  state.counters["states"] = m.num_states();
+  state.counters["entries"] = static_cast<double>(m.num_entries());
+  state.counters["v_bytes"] = static_cast<double>(8 * span);
 }
 
 // kSync sweeps with the kernel copy the solver would choose for the model; kSyncPortable and
@@ -91,6 +126,20 @@ void RegisterAll() {
       {"ReferenceSweep", Kernel::kReference},
       {"PolicySweep", Kernel::kPolicy}, {"GreedySweep", Kernel::kGreedy},
       {"GaussSeidelSweep", Kernel::kGaussSeidel}};
+  const int64_t states = std::atoll(EnvOr("MDP_KERNEL_BENCH_STATES", "100000").c_str());
+  std::stringstream spans(EnvOr("MDP_KERNEL_BENCH_SPANS", "4096,65536,524288"));
+  for (std::string text; std::getline(spans, text, ',');) {
+    const int64_t span = std::atoll(text.c_str());
+    if (span < 1 || span >= states) continue;
+    for (int threads : {1, all}) {
+      const std::string label =
+          "SyncSweepSpan/" + std::to_string(span) + "/threads:" + std::to_string(threads);
+      benchmark::RegisterBenchmark(label.c_str(), RunSpan, span, threads)
+          ->Unit(benchmark::kMillisecond)
+          ->UseRealTime();
+      if (threads == all) break;
+    }
+  }
   for (std::string name; std::getline(list, name, ',');) {
     const std::optional<Structure> structure = ParseStructure(name);
     if (!structure) continue;

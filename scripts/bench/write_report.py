@@ -759,7 +759,11 @@ def report(run, mode, started, finished, solve_structure):
         "",
         "## Kernel micro-benchmarks (Google Benchmark)",
         "`kernel_bench`: the Bellman kernels of `solver/internal/bellman.h`; GB/s counts the "
-        "same bytes as above.",
+        "same bytes as above. *SyncSweepSpan/N* is the solver's sweep on the random model with "
+        "every next state folded into the first N states (next % N): the same rows and "
+        "entries, with V's scattered reads confined to N x 8 bytes (32 KB, 512 KB and 4 MB by "
+        "default, against 8 MB at 1M states), so the rows show how much of the random sweep's "
+        "time those reads cost at each cache level.",
         "",
         kernels_section(run),
         "",
