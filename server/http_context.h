@@ -21,12 +21,18 @@ struct HttpContext {
 };
 
 using Handler = std::function<void(HttpContext&, const httplib::Request&, httplib::Response&)>;
+// A handler given the request body to keep: `body` is the request's whole body, read by the
+// server into a string of its own (not req.body), which the handler may move away and free
+// early.
+using BodyHandler =
+    std::function<void(HttpContext&, const httplib::Request&, std::string body, httplib::Response&)>;
 
 struct Route {
   const char* method;    // "GET", "POST", "DELETE".
   const char* route;     // Template for metrics and logs, e.g. "/v1/models/{id}".
   const char* pattern;   // Regex matched against the path.
-  Handler handler;
+  Handler handler;       // For requests without a body (and every request if no body_handler).
+  BodyHandler body_handler = nullptr;  // POST only: for requests with a body.
 };
 
 // The route table (routes.cc): every URL leads to its handler from here.

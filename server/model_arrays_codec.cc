@@ -1069,19 +1069,23 @@ bool DecodeInto(std::string_view text, const DecodeLimits& limits, ArraysDecoder
     }
     input = copy;
   }
-  od::parser parser;
-  if (parser.allocate(input.size(), static_cast<size_t>(std::max(1, limits.max_depth))) !=
-      SUCCESS) {
-    decoder.Error("", "out of memory while reading the document");
-    return false;
+  {
+    // The parser's index (4 bytes per structural character: about half the text's size for
+    // columns of numbers) is freed before Assemble() fills in the spec's defaults.
+    od::parser parser;
+    if (parser.allocate(input.size(), static_cast<size_t>(std::max(1, limits.max_depth))) !=
+        SUCCESS) {
+      decoder.Error("", "out of memory while reading the document");
+      return false;
+    }
+    od::document doc;
+    const error_code e = parser.iterate(input).get(doc);
+    if (e) {
+      decoder.Error("", "malformed JSON: " + SyntaxProblem(e));
+      return false;
+    }
+    if (!decoder.Read(doc, std::string_view(input.data(), input.size()))) return false;
   }
-  od::document doc;
-  const error_code e = parser.iterate(input).get(doc);
-  if (e) {
-    decoder.Error("", "malformed JSON: " + SyntaxProblem(e));
-    return false;
-  }
-  if (!decoder.Read(doc, std::string_view(input.data(), input.size()))) return false;
   return decoder.Assemble();
 }
 
@@ -1142,11 +1146,13 @@ SpecDecodeResult DecodeArraysModelSpec(std::string_view text, const DecodeLimits
   return out;
 }
 
-ModelDecodeResult DecodeArraysModel(std::string_view text, const DecodeLimits& limits) {
+ModelDecodeResult DecodeArraysModel(std::string_view text, const DecodeLimits& limits,
+                                    const TextReleased& released) {
   ModelDecodeResult out;
   try {
     ArraysDecoder decoder(limits);
     const bool complete = DecodeInto(text, limits, decoder);
+    if (released) released();  // The spec holds copies of everything it needs.
     out.errors = std::move(decoder.errors());
     out.errors_not_listed = decoder.errors_not_listed();
     out.malformed = decoder.malformed();

@@ -23,7 +23,9 @@ bool IsArraysModelDocument(std::string_view text);
 
 // DecodeModel for the arrays encoding: decodes, validates and compiles, reporting every problem
 // (up to limits.max_errors) with an RFC 6901 pointer into the arrays document.
-ModelDecodeResult DecodeArraysModel(std::string_view text, const DecodeLimits& limits = {});
+// `released` as for DecodeModel.
+ModelDecodeResult DecodeArraysModel(std::string_view text, const DecodeLimits& limits = {},
+                                    const TextReleased& released = nullptr);
 
 // DecodeModelSpec for the arrays encoding: the spec as written plus the decoder's own findings
 // (types, names, lengths, indices, caps); Validate()'s findings are not included. The spec is

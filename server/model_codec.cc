@@ -597,9 +597,10 @@ SpecDecodeResult DecodeModelSpec(std::string_view text, const DecodeLimits& limi
   return DecodeSpecWith(text, limits, decoder);
 }
 
-ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits) {
+ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits,
+                              const TextReleased& released) {
   // The compact encoding (api-schema/model-arrays.schema.json) is told by its `format`.
-  if (IsArraysModelDocument(text)) return DecodeArraysModel(text, limits);
+  if (IsArraysModelDocument(text)) return DecodeArraysModel(text, limits, released);
   ModelDecodeResult out;
   if (text.find_first_not_of(" \t\r\n") == std::string_view::npos) {
     out.errors.push_back({"", "the document is empty"});
@@ -607,6 +608,7 @@ ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits)
   }
   Decoder decoder(limits);
   SpecDecodeResult decoded = DecodeSpecWith(text, limits, decoder);
+  if (released) released();  // The spec holds copies of everything it needs.
   out.errors = std::move(decoded.errors);
   out.errors_not_listed = decoded.errors_not_listed;
   out.malformed = decoded.malformed;

@@ -7,6 +7,7 @@
 #define MDP_SERVER_MODEL_CODEC_H_
 
 #include <cstdint>
+#include <functional>
 #include <optional>
 #include <string>
 #include <string_view>
@@ -48,8 +49,15 @@ struct ModelDecodeResult {
 size_t CodePoints(std::string_view s);
 bool HasControlCharacter(std::string_view s);
 
-// Decodes, validates and compiles.
-ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits = {});
+// Called once the decoder has read all it needs of the text, before validation and
+// compilation: a caller that owns a large text frees it there, so that the text and the
+// compiled model are never held at once.
+using TextReleased = std::function<void()>;
+
+// Decodes, validates and compiles. `released` (optional) is called at most once, after the
+// last read of `text`; `text` must not be used by the decoder after it.
+ModelDecodeResult DecodeModel(std::string_view text, const DecodeLimits& limits = {},
+                              const TextReleased& released = nullptr);
 
 // Decodes without compiling: the spec as written plus the decoder's own findings (types,
 // names, structure); Validate()'s findings are not included. For tests and tools.

@@ -8,6 +8,7 @@
 #include <ctime>
 #include <limits>
 #include <random>
+#include <utility>
 
 #include "server/api_codec.h"
 #include "server/canonical.h"
@@ -191,10 +192,21 @@ void PlanningService::Shutdown(double deadline_seconds) {
   queue_->Shutdown();  // Joins the workers; queued jobs stay queued in the store.
 }
 
+Result<UploadResult> PlanningService::UploadModelOwned(std::string&& document) {
+  std::string owned = std::move(document);
+  return Upload(owned, [&owned] { std::string().swap(owned); });
+}
+
 Result<UploadResult> PlanningService::UploadModel(std::string_view document) {
+  return Upload(document, nullptr);
+}
+
+Result<UploadResult> PlanningService::Upload(std::string_view document,
+                                             const TextReleased& released) {
   if (!accepting()) return Status(StatusCode::kUnavailable, "the service is shutting down");
   const ReturnFreedMemoryAtExit trim(document.size() >= kTrimAfterUploadBytes);
-  ModelDecodeResult decoded = DecodeModel(document, options_.limits);
+  ModelDecodeResult decoded = DecodeModel(document, options_.limits, released);
+  document = std::string_view();  // Possibly freed by `released`.
   UploadResult result;
   result.warnings = std::move(decoded.warnings);
   if (!decoded.ok()) {

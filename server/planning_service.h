@@ -107,6 +107,10 @@ class PlanningService {
 
   // Models.
   Result<UploadResult> UploadModel(std::string_view document);
+  // The same, taking the text over: it is freed as soon as it has been read, before the
+  // model is validated, compiled and stored, so a large upload does not hold its text and
+  // its compiled model at once.
+  Result<UploadResult> UploadModelOwned(std::string&& document);
   // `with_document`: `document` is the canonical model text (canonical.h), whatever form
   // the store keeps it in; kInternal if the stored record is corrupt.
   Result<ModelRecord> GetModel(const std::string& id, bool with_document);
@@ -156,6 +160,9 @@ class PlanningService {
 
  private:
   struct ActiveJob;
+
+  // UploadModel's work; `released` as for DecodeModel.
+  Result<UploadResult> Upload(std::string_view document, const TextReleased& released);
 
   Result<std::shared_ptr<const Model>> LoadModel(const std::string& model_id);
   Result<std::shared_ptr<const Solution>> LoadSolution(const std::string& solution_id,

@@ -64,9 +64,11 @@ Problem BodyProblem(const Request& req, const Status& status) {
   return MakeProblem(status);
 }
 
-void UploadModel(HttpContext& ctx, const Request& req, Response& res) {
+// The body is the handler's own: the service frees it once read, before the model is
+// compiled and stored (a 1M-state document is over 1 GB of text).
+void UploadModelBody(HttpContext& ctx, const Request& req, std::string body, Response& res) {
   if (!RequireJsonBody(req, res)) return;
-  Result<UploadResult> upload = ctx.service.UploadModel(req.body);
+  Result<UploadResult> upload = ctx.service.UploadModelOwned(std::move(body));
   if (!upload.ok()) return WriteProblem(res, upload.status());
   if (!upload->too_large.empty()) {
     return WriteProblem(res, MakeProblem(ResourceExhaustedError(upload->too_large),
@@ -85,6 +87,11 @@ void UploadModel(HttpContext& ctx, const Request& req, Response& res) {
   }
   res.set_header("Location", "/v1/models/" + upload->record.id);
   WriteJson(res, upload->created ? 201 : 200, EncodeUpload(*upload).dump());
+}
+
+// A request with no body at all.
+void UploadModel(HttpContext& ctx, const Request& req, Response& res) {
+  UploadModelBody(ctx, req, req.body, res);
 }
 
 void ListModels(HttpContext& ctx, const Request&, Response& res) {
@@ -337,7 +344,7 @@ const std::vector<Route>& ApiRoutes() {
   // The hot query first: cpp-httplib tries the patterns of a method in this order.
   static const std::vector<Route> routes = {
       {"GET", "/v1/models/{id}/policy", "/v1/models/([0-9a-zA-Z_-]{1,64})/policy", BestAction},
-      {"POST", "/v1/models", "/v1/models", UploadModel},
+      {"POST", "/v1/models", "/v1/models", UploadModel, UploadModelBody},
       {"GET", "/v1/models", "/v1/models", ListModels},
       {"GET", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", GetModel},
       {"DELETE", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", DeleteModel},

@@ -7,6 +7,7 @@
 #include <chrono>
 #include <ostream>
 #include <thread>
+#include <utility>
 
 #include "server/api_codec.h"
 #include "server/file_io.h"
@@ -76,7 +77,7 @@ Status Preload(PlanningService& service, const std::vector<std::string>& files,
   for (const std::string& file : files) {
     Result<std::string> text = ReadWholeFile(file);
     if (!text.ok()) return text.status();
-    Result<UploadResult> upload = service.UploadModel(*text);
+    Result<UploadResult> upload = service.UploadModelOwned(std::move(*text));
     if (!upload.ok()) return upload.status();
     if (!upload->errors.empty()) {
       return InvalidArgumentError(file + ": " + upload->errors.front().pointer + ": " +

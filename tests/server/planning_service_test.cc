@@ -121,6 +121,29 @@ TEST_F(PlanningServiceTest, InvalidModelsReportEveryErrorAndStoreNothing) {
   EXPECT_TRUE(service.ListModels()->empty());
 }
 
+TEST_F(PlanningServiceTest, AnUploadThatTakesItsTextOverStoresTheSameModel) {
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  Result<UploadResult> owned = service.UploadModelOwned(std::string(kGreenhouse));
+  ASSERT_TRUE(owned.ok());
+  ASSERT_TRUE(owned->errors.empty());
+  EXPECT_TRUE(owned->created);
+  Result<UploadResult> viewed = service.UploadModel(kGreenhouse);
+  ASSERT_TRUE(viewed.ok());
+  EXPECT_FALSE(viewed->created);
+  EXPECT_EQ(viewed->record.id, owned->record.id);
+  EXPECT_EQ(service.GetModel(owned->record.id, true)->document,
+            service.GetModel(viewed->record.id, true)->document);
+
+  std::string bad(kGreenhouse);
+  bad.replace(bad.find("\"discount\": 0.5"), 15, "\"discount\": 1.5");
+  Result<UploadResult> refused = service.UploadModelOwned(std::string(bad));
+  ASSERT_TRUE(refused.ok());
+  ASSERT_EQ(refused->errors.size(), 1u);
+  EXPECT_EQ(refused->errors[0].pointer, service.UploadModel(bad)->errors[0].pointer);
+  EXPECT_EQ(service.ListModels()->size(), 1u);
+}
+
 TEST_F(PlanningServiceTest, FullQueueRefusesAndCancelStopsARunningSolve) {
   ServiceOptions options;
   options.workers = 1;
