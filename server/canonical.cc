@@ -122,6 +122,12 @@ void WriteCanonicalModel(const ModelSpec& spec, std::string& out, size_t flush_b
     AppendJsonString(out, spec.reward_unit);
   }
   out += ",\"states\":[";
+  // Each outcome names its next state: a read at a scattered place in state_names, which
+  // for large models misses every cache. Asking for the name kAhead outcomes early lets
+  // those reads overlap: CanonicalModelId of a 1M x 4 x 8 model with random next states
+  // took 4.9-7.4 s with it and 9.3-10.9 s without (3 runs each, alternating builds).
+  constexpr OutcomeId kAhead = 16;
+  const OutcomeId outcomes = spec.num_outcomes();
   for (StateId s = 0; s < spec.num_states(); ++s) {
     if (s) out += ',';
     out += "{\"actions\":[";
@@ -132,6 +138,9 @@ void WriteCanonicalModel(const ModelSpec& spec, std::string& out, size_t flush_b
       out += ",\"outcomes\":[";
       for (OutcomeId o = spec.slot_first_outcome[slot]; o < spec.slot_first_outcome[slot + 1]; ++o) {
         if (o > spec.slot_first_outcome[slot]) out += ',';
+        if (o + kAhead < outcomes) {
+          __builtin_prefetch(&spec.state_names[spec.outcome_next[o + kAhead]]);
+        }
         out += "{\"next\":";
         AppendJsonString(out, spec.state_names[spec.outcome_next[o]]);
         out += ",\"probability\":";
