@@ -1094,24 +1094,31 @@ def scenario_d(api, server, m):
 # --------------------------------------------------------------------------------------------
 # (e) Bad requests
 
-def raw_exchange(port, data):
-    """Sends raw bytes on a new connection; returns the first response (read until the
-    connection closes, the declared body is complete, or 10 s pass)."""
+def read_response(sock):
+    """The bytes of one response on `sock`: read until the connection closes, the declared
+    body is complete, or the socket's timeout passes."""
     received = b""
+    try:
+        while True:
+            part = sock.recv(65536)
+            if not part:
+                break
+            received += part
+            head, sep, body = received.partition(b"\r\n\r\n")
+            length = re.search(rb"content-length: *(\d+)", head, re.I)
+            if sep and length and len(body) >= int(length.group(1)):
+                break
+    except socket.timeout:
+        pass
+    return received
+
+
+def raw_exchange(port, data):
+    """Sends raw bytes on a new connection; returns the first response (read_response, with
+    10 s to answer)."""
     with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
         s.sendall(data)
-        try:
-            while True:
-                part = s.recv(65536)
-                if not part:
-                    break
-                received += part
-                head, sep, body = received.partition(b"\r\n\r\n")
-                length = re.search(rb"content-length: *(\d+)", head, re.I)
-                if sep and length and len(body) >= int(length.group(1)):
-                    break
-        except socket.timeout:
-            pass
+        received = read_response(s)
     head, _, body = received.partition(b"\r\n\r\n")
     lines = head.decode("latin-1").split("\r\n")
     first = lines[0].split()
@@ -1139,19 +1146,11 @@ def upload_head(headers):
 
 def upload_cut_short(port, doc):
     """Declares the whole document's length, sends half of it and stops sending (the write
-    side closed); returns the response, if any, as raw_exchange does."""
+    side closed); returns (status, body) of the response, status 0 if none came."""
     with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
         s.sendall(upload_head(b"Content-Length: %d\r\n" % len(doc)) + doc[:len(doc) // 2])
         s.shutdown(socket.SHUT_WR)
-        received = b""
-        try:
-            while True:
-                part = s.recv(65536)
-                if not part:
-                    break
-                received += part
-        except socket.timeout:
-            pass
+        received = read_response(s)
     head, _, body = received.partition(b"\r\n\r\n")
     first = head.decode("latin-1").split("\r\n")[0].split()
     status = int(first[1]) if len(first) > 1 and first[1].isdigit() else 0
@@ -1384,20 +1383,7 @@ def scenario_e(api, server, root):
     with socket.create_connection(("127.0.0.1", server.port), timeout=10) as s:
         for request in (over, then):
             s.sendall(request)
-            received = b""
-            try:
-                while True:
-                    part = s.recv(65536)
-                    if not part:
-                        break
-                    received += part
-                    head, sep, body = received.partition(b"\r\n\r\n")
-                    length = re.search(rb"content-length: *(\d+)", head, re.I)
-                    if sep and length and len(body) >= int(length.group(1)):
-                        break
-            except socket.timeout:
-                pass
-            statuses += re.findall(rb"^HTTP/1\.1 (\d{3})", received, re.M)
+            statuses += re.findall(rb"^HTTP/1\.1 (\d{3})", read_response(s), re.M)
     R.check("e: after a chunked body over the limit the connection reads its next request",
             statuses == [b"413", b"200"], str(statuses))
     resp = raw_exchange(server.port, upload_head(b"Content-Length: 0\r\n"))
