@@ -6,6 +6,7 @@
 
 #include <chrono>
 #include <cstdlib>
+#include <new>
 #include <optional>
 #include <string>
 #include <utility>
@@ -82,7 +83,14 @@ struct HttpServer::Impl {
     const std::string declared = req.get_header_value("Content-Length");
     char* end = nullptr;
     const unsigned long long length = std::strtoull(declared.c_str(), &end, 10);
-    if (!declared.empty() && *end == '\0' && length <= limit) body.reserve(length);
+    if (!declared.empty() && *end == '\0' && length <= limit) {
+      // Address space only: pages cost memory when the body fills them. A declared length
+      // the process cannot even reserve is read with growth instead.
+      try {
+        body.reserve(length);
+      } catch (const std::bad_alloc&) {
+      }
+    }
     bool over_limit = false;
     const bool read = reader([&](const char* data, size_t size) {
       if (!over_limit && size > limit - body.size()) {
