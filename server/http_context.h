@@ -24,8 +24,8 @@ using Handler = std::function<void(HttpContext&, const httplib::Request&, httpli
 // A handler given the request body to keep: `body` is the request's whole body, read by the
 // server into a string of its own (not req.body), which the handler may move away and free
 // early.
-using BodyHandler =
-    std::function<void(HttpContext&, const httplib::Request&, std::string body, httplib::Response&)>;
+using BodyHandler = std::function<void(HttpContext&, const httplib::Request&, std::string body,
+                                       httplib::Response&)>;
 
 struct Route {
   const char* method;    // "GET", "POST", "DELETE".

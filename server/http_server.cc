@@ -25,6 +25,12 @@ thread_local const char* tl_route = "unmatched";
 
 bool IsPublic(const std::string& path) { return path == "/healthz" || path == "/readyz"; }
 
+// The problem for a request body over --body-limit (read here or refused by cpp-httplib).
+Problem BodyOverLimit() {
+  return MakeProblem(InvalidArgumentError("the request body is over the limit"),
+                     ProblemKind::kPayloadTooLarge);
+}
+
 }  // namespace
 
 void WriteJson(httplib::Response& res, int status, const std::string& body) {
@@ -102,8 +108,7 @@ struct HttpServer::Impl {
     });
     if (read && !over_limit) return body;
     if (over_limit || res.status == 413) {
-      WriteProblem(res, MakeProblem(InvalidArgumentError("the request body is over the limit"),
-                                    ProblemKind::kPayloadTooLarge));
+      WriteProblem(res, BodyOverLimit());
     } else {
       WriteProblem(res, MakeProblem(InvalidArgumentError(
                             "the request body could not be read to its end")));
@@ -174,8 +179,7 @@ struct HttpServer::Impl {
     server.set_error_handler([](const httplib::Request& req, httplib::Response& res) {
       if (!res.body.empty()) return;
       if (res.status == 413) {
-        WriteProblem(res, MakeProblem(InvalidArgumentError("the request body is over the limit"),
-                                      ProblemKind::kPayloadTooLarge));
+        WriteProblem(res, BodyOverLimit());
       } else if (res.status == 404) {
         WriteProblem(res, MakeProblem(NotFoundError("no route for " + req.method + " " + req.path),
                                       ProblemKind::kNotFoundRoute));

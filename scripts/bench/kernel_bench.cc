@@ -34,18 +34,27 @@ std::string EnvOr(const char* name, const char* fallback) {
   return v != nullptr && *v != '\0' ? v : fallback;
 }
 
+int64_t BenchStates() { return std::atoll(EnvOr("MDP_KERNEL_BENCH_STATES", "100000").c_str()); }
+
+// The generator's spec of `structure` at BenchStates() states.
+ModelSpec BenchSpec(Structure structure) {
+  ModelShape shape;
+  shape.structure = structure;
+  shape.states = BenchStates();
+  return GenerateSpec(shape);
+}
+
+std::unique_ptr<Model> BuildOrAbort(const ModelSpec& spec) {
+  Result<Model> built = BuildModel(spec);
+  if (!built.ok()) std::abort();
+  return std::make_unique<Model>(std::move(built).value());
+}
+
 // Models are built once per structure, on first use, and live until exit.
 const Model& CachedModel(Structure structure) {
   static std::map<Structure, std::unique_ptr<Model>> models;
   std::unique_ptr<Model>& slot = models[structure];
-  if (!slot) {
-    ModelShape shape;
-    shape.structure = structure;
-    shape.states = std::atoll(EnvOr("MDP_KERNEL_BENCH_STATES", "100000").c_str());
-    Result<Model> built = BuildModel(GenerateSpec(shape));
-    if (!built.ok()) std::abort();
-    slot = std::make_unique<Model>(std::move(built).value());
-  }
+  if (!slot) slot = BuildOrAbort(BenchSpec(structure));
   return *slot;
 }
 
@@ -55,14 +64,9 @@ const Model& CachedSpanModel(int64_t span) {
   static std::map<int64_t, std::unique_ptr<Model>> models;
   std::unique_ptr<Model>& slot = models[span];
   if (!slot) {
-    ModelShape shape;
-    shape.structure = Structure::kRandom;
-    shape.states = std::atoll(EnvOr("MDP_KERNEL_BENCH_STATES", "100000").c_str());
-    ModelSpec spec = GenerateSpec(shape);
+    ModelSpec spec = BenchSpec(Structure::kRandom);
     for (StateId& j : spec.outcome_next) j = static_cast<StateId>(j % span);
-    Result<Model> built = BuildModel(spec);
-    if (!built.ok()) std::abort();
-    slot = std::make_unique<Model>(std::move(built).value());
+    slot = BuildOrAbort(spec);
   }
   return *slot;
 }
@@ -126,7 +130,7 @@ void RegisterAll() {
       {"ReferenceSweep", Kernel::kReference},
       {"PolicySweep", Kernel::kPolicy}, {"GreedySweep", Kernel::kGreedy},
       {"GaussSeidelSweep", Kernel::kGaussSeidel}};
-  const int64_t states = std::atoll(EnvOr("MDP_KERNEL_BENCH_STATES", "100000").c_str());
+  const int64_t states = BenchStates();
   std::stringstream spans(EnvOr("MDP_KERNEL_BENCH_SPANS", "4096,65536,524288"));
   for (std::string text; std::getline(spans, text, ',');) {
     const int64_t span = std::atoll(text.c_str());
