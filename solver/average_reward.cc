@@ -82,7 +82,7 @@ Bracket Residuals(const Model& m, double scale, const double* x, double* d, RowI
   double upper = -kInf;
   // clang-format off
 #pragma omp parallel for num_threads(threads) reduction(min : lower) reduction(max : upper) \
-    schedule(static, 2048)
+    schedule(dynamic, 8192)
   // clang-format on
   for (StateId s = 0; s < n; ++s) {
     RowId best = -1;
@@ -219,7 +219,7 @@ double SelectRows(const Model& m, std::span<const double> best, std::span<const 
   int64_t tied = 0;
   double pick_slack = 0.0;
 #pragma omp parallel for num_threads(threads) reduction(+ : tied) reduction(max : pick_slack) \
-    schedule(static, 2048)
+    schedule(dynamic, 8192)
   for (StateId s = 0; s < n; ++s) {
     // A few units in the last place of q, so that rounding cannot split a tie.
     const double state_rounding = 1e-12 * std::max(1.0, std::fabs(best[s]));
@@ -296,7 +296,7 @@ void FinishSolution(const Model& m, std::vector<double> h, const AverageRewardOp
   double scale = 1.0;
   // clang-format off
 #pragma omp parallel for num_threads(threads) reduction(min : lower) \
-    reduction(max : upper, scale) schedule(static, 2048)
+    reduction(max : upper, scale) schedule(dynamic, 8192)
   // clang-format on
   for (StateId s = 0; s < n; ++s) {
     double b = 0.0;
@@ -369,7 +369,7 @@ MultichainRows ClassifyRows(const Model& m, std::span<const double> g, std::span
   double bias_residual = 0.0;
   // clang-format off
 #pragma omp parallel for num_threads(threads) reduction(max : gain_residual, bias_residual) \
-    schedule(static, 2048)
+    schedule(dynamic, 8192)
   // clang-format on
   for (StateId s = 0; s < n; ++s) {
     const RowId begin = m.row_begin(s);
@@ -520,7 +520,7 @@ SolveOptions RunLimits(const AverageRewardOptions& options) {
 template <bool kMaximize>
 int64_t ImproveGain(const Model& m, const double* g, double slack, RowId* rows, int threads) {
   int64_t changed = 0;
-#pragma omp parallel for num_threads(threads) reduction(+ : changed) schedule(static, 2048)
+#pragma omp parallel for num_threads(threads) reduction(+ : changed) schedule(dynamic, 8192)
   for (StateId s = 0; s < m.num_states(); ++s) {
     if (rows[s] < 0) continue;
     RowId best = -1;
@@ -545,7 +545,7 @@ template <bool kMaximize>
 int64_t ImproveBias(const Model& m, const double* g, const double* h, double gain_slack,
                     double slack, RowId* rows, int threads) {
   int64_t changed = 0;
-#pragma omp parallel for num_threads(threads) reduction(+ : changed) schedule(static, 2048)
+#pragma omp parallel for num_threads(threads) reduction(+ : changed) schedule(dynamic, 8192)
   for (StateId s = 0; s < m.num_states(); ++s) {
     const RowId begin = m.row_begin(s);
     const RowId end = m.row_end(s);

@@ -72,7 +72,7 @@ template <bool kMaximize>
 int64_t FinishAll(const Model& m, const double* v1, double tie, double pick_tie, int threads,
                   Solution& out) {
   int64_t tied = 0;
-#pragma omp parallel for num_threads(threads) reduction(+ : tied) schedule(static, 2048)
+#pragma omp parallel for num_threads(threads) reduction(+ : tied) schedule(dynamic, 8192)
   for (StateId s = 0; s < m.num_states(); ++s) {
     if (FinishState<kMaximize>(m, s, v1, tie, pick_tie, out) >= 2) ++tied;
   }

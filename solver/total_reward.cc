@@ -644,7 +644,7 @@ Improvement Improve(const Model& m, const Index& index, const std::vector<uint8_
   double residual = 0.0;
   double slack_max = 0.0;
 #pragma omp parallel for num_threads(threads) reduction(+ : changed) \
-    reduction(max : residual, slack_max) schedule(static, 2048)
+    reduction(max : residual, slack_max) schedule(dynamic, 8192)
   for (int64_t i = 0; i < size; ++i) {
     const StateId s = index.states[i];
     const RowId current = rows[s];
@@ -792,7 +792,7 @@ std::vector<RowId> Report(const Model& m, const Index& index, const Reach& reach
   int64_t tied = 0;
   double residual = 0.0;
 #pragma omp parallel for num_threads(threads) reduction(+ : tied) reduction(max : residual) \
-    schedule(static, 2048)
+    schedule(dynamic, 8192)
   for (int64_t i = 0; i < size; ++i) {
     const StateId s = index.states[i];
     RowId best = -1;

@@ -168,6 +168,63 @@ TEST(BellmanKernelsTest, SolverSweepsUseThePortableCopy) {
   }
 }
 
+// The threaded sweeps hand out states in chunks on demand: on a model of several chunks, every
+// state is computed, the result is the definition's and it is the same bit for bit on 1, 2
+// and 3 threads, whichever thread took which chunk.
+TEST(BellmanKernelsTest, ThreadedSweepsCoverEveryStateAndAgreeAcrossThreadCounts) {
+  testing::RandomModelOptions o;
+  o.states = 45001;  // Five full chunks of 8,192 states and a partial one.
+  o.max_outcomes = 3;
+  o.max_actions = 3;
+  const Model m = testing::MustBuild(testing::RandomSpec(53, o));
+  const StateId n = m.num_states();
+  const std::vector<double> v = SomeValues(n, 11);
+  const std::vector<double> expected = DefinitionBackup(m, v, m.discount());
+  const double tolerance = 1e-13 * Scale(expected);
+
+  std::vector<double> sync_1, greedy_1, policy_1;
+  std::vector<RowId> rows_1, improved_1;
+  double sync_diff_1 = 0.0, greedy_diff_1 = 0.0, policy_diff_1 = 0.0;
+  internal::Improvement improvement_1;
+  for (int threads : {1, 2, 3}) {
+    SCOPED_TRACE("threads " + std::to_string(threads));
+    std::vector<double> sync(n, -1.0), greedy(n, -1.0), policy(n, -1.0);
+    std::vector<RowId> rows(n, -2);
+    const double sync_diff = internal::SyncSweep(m, v.data(), sync.data(), threads);
+    const double greedy_diff =
+        internal::GreedySweep(m, v.data(), greedy.data(), rows.data(), threads);
+    const double policy_diff = internal::PolicySweep(m, rows.data(), v.data(), policy.data(),
+                                                     threads);
+    std::vector<RowId> improved(n, -1);  // From no rows: every non-terminal state changes.
+    const internal::Improvement improvement =
+        internal::ImprovePolicy(m, v.data(), 0.0, improved.data(), threads);
+    for (StateId s = 0; s < n; ++s) {
+      ASSERT_NEAR(sync[s], expected[s], tolerance) << "state " << s;
+      ASSERT_EQ(greedy[s], sync[s]) << "state " << s;
+      ASSERT_NE(rows[s], -2) << "state " << s;
+      ASSERT_EQ(policy[s], sync[s]) << "state " << s;  // The greedy rows' own values.
+      ASSERT_EQ(improved[s], rows[s]) << "state " << s;
+    }
+    if (threads == 1) {
+      sync_1 = sync, greedy_1 = greedy, policy_1 = policy, rows_1 = rows, improved_1 = improved;
+      sync_diff_1 = sync_diff, greedy_diff_1 = greedy_diff, policy_diff_1 = policy_diff;
+      improvement_1 = improvement;
+      EXPECT_GT(improvement.changed, n / 2);
+      continue;
+    }
+    EXPECT_EQ(sync, sync_1);
+    EXPECT_EQ(greedy, greedy_1);
+    EXPECT_EQ(policy, policy_1);
+    EXPECT_EQ(rows, rows_1);
+    EXPECT_EQ(improved, improved_1);
+    EXPECT_EQ(sync_diff, sync_diff_1);
+    EXPECT_EQ(greedy_diff, greedy_diff_1);
+    EXPECT_EQ(policy_diff, policy_diff_1);
+    EXPECT_EQ(improvement.changed, improvement_1.changed);
+    EXPECT_EQ(improvement.residual, improvement_1.residual);
+  }
+}
+
 // CsrCombine (policy_matrix.h's products) against its definition, with rows of 0 to 12
 // entries, for both copies and both signs.
 TEST(BellmanKernelsTest, CsrCombineComputesItsDefinition) {
