@@ -23,8 +23,7 @@ using internal::KernelSet;
 // (T v)(s) from the definition: the max (or min) over the rows of s of
 // r + g * sum p v(next), or 0 at a terminal state. Each row's sum is kept in long double, so
 // this is not the kernels' arithmetic.
-double DefinitionBackupAt(const Model& m, const std::vector<double>& v, StateId s,
-                          double g) {
+double DefinitionBackupAt(const Model& m, const std::vector<double>& v, StateId s, double g) {
   double best = 0.0;
   for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
     long double acc = 0.0L;
@@ -193,8 +192,8 @@ TEST(BellmanKernelsTest, ThreadedSweepsCoverEveryStateAndAgreeAcrossThreadCounts
     const double sync_diff = internal::SyncSweep(m, v.data(), sync.data(), threads);
     const double greedy_diff =
         internal::GreedySweep(m, v.data(), greedy.data(), rows.data(), threads);
-    const double policy_diff = internal::PolicySweep(m, rows.data(), v.data(), policy.data(),
-                                                     threads);
+    const double policy_diff =
+        internal::PolicySweep(m, rows.data(), v.data(), policy.data(), threads);
     std::vector<RowId> improved(n, -1);  // From no rows: every non-terminal state changes.
     const internal::Improvement improvement =
         internal::ImprovePolicy(m, v.data(), 0.0, improved.data(), threads);
@@ -258,8 +257,8 @@ TEST(BellmanKernelsTest, CsrCombineComputesItsDefinition) {
       SCOPED_TRACE("kernels " + std::to_string(static_cast<int>(k)) + ", sign " +
                    std::to_string(sign));
       std::vector<double> y(n, 0.0);
-      const double diff = internal::CsrCombine(begin.data(), next.data(), p.data(), n,
-                                               base.data(), sign, x.data(), y.data(), 2, k);
+      const double diff = internal::CsrCombine(begin.data(), next.data(), p.data(), n, base.data(),
+                                               sign, x.data(), y.data(), 2, k);
       for (StateId s = 0; s < n; ++s) ASSERT_NEAR(y[s], expected[s], tolerance) << "row " << s;
       EXPECT_NEAR(diff, expected_diff, tolerance);
     }
@@ -274,8 +273,7 @@ TEST(BellmanKernelsTest, StageSweepUsesTheGivenDiscount) {
   for (const Model* m : {&varied, &scattered}) {
     const std::vector<double> next = SomeValues(m->num_states(), 13);
     for (double g : {1.0, 0.5}) {
-      SCOPED_TRACE("states " + std::to_string(m->num_states()) + ", discount " +
-                   std::to_string(g));
+      SCOPED_TRACE("states " + std::to_string(m->num_states()) + ", discount " + std::to_string(g));
       const std::vector<double> expected = DefinitionBackup(*m, next, g);
       std::vector<double> out(m->num_states(), -1.0);
       internal::StageSweep(*m, next.data(), g, out.data(), 2);
