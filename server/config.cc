@@ -24,11 +24,18 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->capture_default_str()
       ->check(CLI::Range(0, 256));
   app->add_option("--http-threads", c.http_threads,
-                  "HTTP threads; each keep-alive connection holds one while open, so use at "
-                  "least the number of concurrent clients")
+                  "HTTP threads: they read requests and run their handlers; an idle or "
+                  "half-sent connection holds none, so this bounds the requests handled at "
+                  "once, not the open connections")
       ->envname("MDPSERVE_HTTP_THREADS")
       ->capture_default_str()
       ->check(CLI::Range(1, 1024));
+  app->add_option("--idle-timeout", c.idle_timeout_seconds,
+                  "seconds after which a connection that sends nothing (idle keep-alive, or a "
+                  "request arriving too slowly) is closed")
+      ->envname("MDPSERVE_IDLE_TIMEOUT")
+      ->capture_default_str()
+      ->check(CLI::Range(1, 3600));
   app->add_option("--body-limit", c.body_limit, "request body limit in bytes")
       ->envname("MDPSERVE_BODY_LIMIT")
       ->capture_default_str()

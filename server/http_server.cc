@@ -1,34 +1,41 @@
 #include "server/http_server.h"
 
 #include <openssl/crypto.h>
-#include <sys/socket.h>
 #include <spdlog/spdlog.h>
 
 #include <chrono>
-#include <cstdlib>
-#include <new>
-#include <optional>
+#include <regex>
 #include <string>
+#include <string_view>
 #include <utility>
+#include <vector>
 
 #include "server/canonical.h"
 #include "server/http_context.h"
+#include "server/http_transport.h"
 
 namespace mdp::server {
 namespace {
 
-// Per-request state of the connection thread serving it: set before routing, read by the
-// logger after the response is written (cpp-httplib runs both on the same thread).
-thread_local std::chrono::steady_clock::time_point tl_start;
-thread_local HttpMetrics::RequestHandle* tl_handle = nullptr;
-thread_local const char* tl_route = "unmatched";
-
 bool IsPublic(const std::string& path) { return path == "/healthz" || path == "/readyz"; }
 
-// The problem for a request body over --body-limit (read here or refused by cpp-httplib).
+// The problem for a request body over --body-limit.
 Problem BodyOverLimit() {
   return MakeProblem(InvalidArgumentError("the request body is over the limit"),
                      ProblemKind::kPayloadTooLarge);
+}
+
+// A problem whose "status" member is `status` (for statuses the transport answers itself:
+// 400 for an unreadable request, 414 for a long target, ...).
+Problem ProblemWithStatus(int status, const std::string& reason) {
+  const bool client_error = status >= 400 && status < 500;
+  const std::string detail = reason + " (HTTP " + std::to_string(status) + ")";
+  Problem p = MakeProblem(client_error ? InvalidArgumentError(detail) : InternalError(detail));
+  Json body = Json::parse(p.body);
+  body["status"] = status;
+  p.body = body.dump();
+  p.status = status;
+  return p;
 }
 
 }  // namespace
@@ -59,12 +66,34 @@ struct HttpServer::Impl {
       : context{service, registry},
         options(std::move(options)),
         metrics(&registry, RouteList()),
-        token_digest(this->options.token.empty() ? "" : Sha256Hex(this->options.token)) {}
+        token_digest(this->options.token.empty() ? "" : Sha256Hex(this->options.token)),
+        unmatched(metrics.For(HttpMetrics::kUnmatchedRoute, HttpMetrics::kUnmatchedMethod)),
+        transport(
+            TransportOptionsOf(this->options),
+            [this](httplib::Request& req, std::string body, httplib::Response& res) {
+              Handle(req, std::move(body), res);
+            },
+            [this](const httplib::Request& req, int status, const std::string& reason,
+                   httplib::Response& res) { Refuse(req, status, reason, res); }) {
+    for (const Route& route : ApiRoutes()) {
+      routes.push_back({&route, std::regex(route.pattern), metrics.For(route.route, route.method)});
+    }
+  }
 
   static std::vector<RouteMethod> RouteList() {
     std::vector<RouteMethod> list;
     for (const Route& r : ApiRoutes()) list.push_back({r.route, r.method});
     return list;
+  }
+
+  static TransportOptions TransportOptionsOf(const HttpOptions& o) {
+    TransportOptions t;
+    t.host = o.host;
+    t.port = o.port;
+    t.threads = o.threads;
+    t.body_limit = o.body_limit;
+    t.idle_timeout_seconds = o.idle_timeout_seconds;
+    return t;
   }
 
   // True iff the request carries the bearer token. Compares digests in constant time, so
@@ -78,184 +107,94 @@ struct HttpServer::Impl {
            CRYPTO_memcmp(given.data(), token_digest.data(), given.size()) == 0;
   }
 
-  // The whole request body, or nullopt after writing the problem: 413 over the body limit
-  // (cpp-httplib refuses a declared Content-Length over it and skips the body; a chunked
-  // body is counted here as it arrives, and the rest read and dropped, so the connection
-  // stays in step for its next request), 400 if the client stopped sending before the end.
-  std::optional<std::string> ReadBody(const httplib::Request& req, httplib::Response& res,
-                                      const httplib::ContentReader& reader) const {
-    const auto limit = static_cast<size_t>(options.body_limit);
-    std::string body;
-    const std::string declared = req.get_header_value("Content-Length");
-    char* end = nullptr;
-    const unsigned long long length = std::strtoull(declared.c_str(), &end, 10);
-    if (!declared.empty() && *end == '\0' && length <= limit) {
-      // Address space only: pages cost memory when the body fills them. A declared length
-      // the process cannot even reserve is read with growth instead.
-      try {
-        body.reserve(length);
-      } catch (const std::bad_alloc&) {
-      }
-    }
-    bool over_limit = false;
-    const bool read = reader([&](const char* data, size_t size) {
-      if (!over_limit && size > limit - body.size()) {
-        over_limit = true;
-        std::string().swap(body);
-      }
-      if (!over_limit) body.append(data, size);
-      return true;
-    });
-    if (read && !over_limit) return body;
-    if (over_limit || res.status == 413) {
-      WriteProblem(res, BodyOverLimit());
-    } else {
-      WriteProblem(res, MakeProblem(InvalidArgumentError(
-                            "the request body could not be read to its end")));
-    }
-    return std::nullopt;
-  }
-
-  void Install() {
-    // Debian's cpp-httplib is a shared library built with a listen backlog of 5 and
-    // SO_REUSEPORT. Take the socket options over (SO_REUSEADDR only, so a second server on
-    // the same port fails to bind instead of silently sharing it) and remember the socket so
-    // Bind() can enlarge the backlog: with 5, bursts of new connections are dropped by the
-    // kernel and retried a second or more later.
-    server.set_socket_options([this](socket_t sock) {
-      int yes = 1;
-      ::setsockopt(sock, SOL_SOCKET, SO_REUSEADDR, &yes, sizeof yes);
-      listen_fd = sock;
-    });
-    server.set_tcp_nodelay(true);  // Small answers must not wait on Nagle + delayed ACK.
-    server.set_keep_alive_max_count(1000);  // Busy connections give their thread back now and then.
-    server.set_keep_alive_timeout(30);
-    server.set_read_timeout(30);
-    server.set_payload_max_length(static_cast<size_t>(options.body_limit));
-    const int threads = options.threads;
-    server.new_task_queue = [threads] { return new httplib::ThreadPool(threads); };
-    unmatched = metrics.For(HttpMetrics::kUnmatchedRoute, HttpMetrics::kUnmatchedMethod);
-    server.set_pre_routing_handler([this](const httplib::Request& req, httplib::Response& res) {
-      tl_start = std::chrono::steady_clock::now();
-      tl_handle = unmatched;
-      tl_route = "unmatched";
+  // Authorisation, routing (HEAD as GET), the handler, then metrics and the log line.
+  void Handle(httplib::Request& req, std::string body, httplib::Response& res) {
+    const auto start = std::chrono::steady_clock::now();
+    HttpMetrics::RequestHandle* handle = unmatched;
+    const char* route_name = "unmatched";
+    try {
       if (!options.token.empty() && !IsPublic(req.path) && !Authorized(req)) {
         res.set_header("WWW-Authenticate", "Bearer");
         WriteProblem(res, MakeProblem(InvalidArgumentError("a valid bearer token is required"),
                                       ProblemKind::kUnauthorized));
-        return httplib::Server::HandlerResponse::Handled;
-      }
-      return httplib::Server::HandlerResponse::Unhandled;
-    });
-    for (const Route& route : ApiRoutes()) {
-      HttpMetrics::RequestHandle* handle = metrics.For(route.route, route.method);
-      auto run = [this, &route, handle](const httplib::Request& req, httplib::Response& res) {
-        tl_handle = handle;
-        tl_route = route.route;
-        route.handler(context, req, res);
-      };
-      const std::string method = route.method;
-      if (method == "GET") server.Get(route.pattern, run);
-      if (method == "POST") server.Post(route.pattern, run);
-      if (method == "DELETE") server.Delete(route.pattern, run);
-      if (method == "POST") {
-        // cpp-httplib tries these first for requests with a body, before reading it. The
-        // body is read here, into a string of our own: sized once from Content-Length, and
-        // held to the body limit in the chunked coding too, which cpp-httplib does not limit.
-        server.Post(route.pattern, [this, &route, handle](const httplib::Request& req,
-                                                          httplib::Response& res,
-                                                          const httplib::ContentReader& reader) {
-          tl_handle = handle;
-          tl_route = route.route;
-          std::optional<std::string> body = ReadBody(req, res, reader);
-          if (!body) return;
-          if (route.body_handler) return route.body_handler(context, req, std::move(*body), res);
-          httplib::Request with_body = req;
-          with_body.body = std::move(*body);
-          route.handler(context, with_body, res);
-        });
-      }
-    }
-    server.set_error_handler([](const httplib::Request& req, httplib::Response& res) {
-      if (!res.body.empty()) return;
-      if (res.status == 413) {
-        WriteProblem(res, BodyOverLimit());
-      } else if (res.status == 404) {
-        WriteProblem(res, MakeProblem(NotFoundError("no route for " + req.method + " " + req.path),
-                                      ProblemKind::kNotFoundRoute));
       } else {
-        // Statuses cpp-httplib sets itself (400 for an unreadable request, 414 for a long
-        // URI, ...): the problem's "status" member must be the response's status.
-        const bool client_error = res.status >= 400 && res.status < 500;
-        const std::string detail =
-            "the request could not be handled (HTTP " + std::to_string(res.status) + ")";
-        Problem p = MakeProblem(client_error ? InvalidArgumentError(detail) : InternalError(detail));
-        Json body = Json::parse(p.body);
-        body["status"] = res.status;
-        p.body = body.dump();
-        p.status = res.status;
-        WriteProblem(res, p);
-      }
-    });
-    server.set_exception_handler(
-        [](const httplib::Request& req, httplib::Response& res, std::exception_ptr ep) {
-          std::string what = "unknown exception";
-          try {
-            if (ep) std::rethrow_exception(ep);
-          } catch (const std::exception& e) {
-            what = e.what();
-          } catch (...) {
+        const std::string_view method = req.method == "HEAD" ? "GET" : req.method;
+        const CompiledRoute* found = nullptr;
+        for (const CompiledRoute& r : routes) {
+          if (method == r.route->method && std::regex_match(req.path, req.matches, r.pattern)) {
+            found = &r;
+            break;
           }
-          spdlog::error("{} {}: unhandled exception: {}", req.method, req.path, what);
-          WriteProblem(res, MakeProblem(InternalError("internal error")));
-        });
-    server.set_logger([](const httplib::Request& req, const httplib::Response& res) {
-      const double seconds =
-          std::chrono::duration<double>(std::chrono::steady_clock::now() - tl_start).count();
-      if (tl_handle != nullptr) HttpMetrics::Record(tl_handle, res.status, seconds);
-      spdlog::info("{} {} {} {}us", req.method, tl_route, res.status,
-                   static_cast<int64_t>(seconds * 1e6));
-    });
+        }
+        if (found == nullptr) {
+          WriteProblem(res,
+                       MakeProblem(NotFoundError("no route for " + req.method + " " + req.path),
+                                   ProblemKind::kNotFoundRoute));
+        } else {
+          handle = found->handle;
+          route_name = found->route->route;
+          if (found->route->body_handler) {
+            found->route->body_handler(context, req, std::move(body), res);
+          } else {
+            req.body = std::move(body);
+            found->route->handler(context, req, res);
+          }
+        }
+      }
+    } catch (const std::exception& e) {
+      spdlog::error("{} {}: unhandled exception: {}", req.method, req.path, e.what());
+      res = httplib::Response();
+      WriteProblem(res, MakeProblem(InternalError("internal error")));
+    }
+    if (res.status == -1) res.status = 200;
+    Record(req, route_name, handle, res.status, start);
   }
+
+  void Refuse(const httplib::Request& req, int status, const std::string& reason,
+              httplib::Response& res) {
+    const auto start = std::chrono::steady_clock::now();
+    WriteProblem(res, status == 413 ? BodyOverLimit() : ProblemWithStatus(status, reason));
+    Record(req, "unmatched", unmatched, status, start);
+  }
+
+  static void Record(const httplib::Request& req, const char* route_name,
+                     HttpMetrics::RequestHandle* handle, int status,
+                     std::chrono::steady_clock::time_point start) {
+    const double seconds =
+        std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+    HttpMetrics::Record(handle, status, seconds);
+    spdlog::info("{} {} {} {}us", req.method, route_name, status,
+                 static_cast<int64_t>(seconds * 1e6));
+  }
+
+  struct CompiledRoute {
+    const Route* route;
+    std::regex pattern;
+    HttpMetrics::RequestHandle* handle;
+  };
 
   HttpContext context;
   HttpOptions options;
   HttpMetrics metrics;
   std::string token_digest;
-  HttpMetrics::RequestHandle* unmatched = nullptr;
-  httplib::Server server;
-  int bound_port = -1;
-  socket_t listen_fd = -1;  // Set by the socket options callback during Bind().
+  HttpMetrics::RequestHandle* unmatched;
+  std::vector<CompiledRoute> routes;
+  HttpTransport transport;
 };
 
 HttpServer::HttpServer(PlanningService& service, MetricsRegistry& registry, HttpOptions options)
-    : impl_(std::make_unique<Impl>(service, registry, std::move(options))) {
-  impl_->Install();
-}
+    : impl_(std::make_unique<Impl>(service, registry, std::move(options))) {}
 
 HttpServer::~HttpServer() { Stop(); }
 
-Status HttpServer::Bind() {
-  const HttpOptions& o = impl_->options;
-  if (o.port == 0) {
-    impl_->bound_port = impl_->server.bind_to_any_port(o.host);
-  } else {
-    impl_->bound_port = impl_->server.bind_to_port(o.host, o.port) ? o.port : -1;
-  }
-  if (impl_->bound_port < 0 || impl_->listen_fd < 0 ||
-      ::listen(impl_->listen_fd, SOMAXCONN) != 0) {
-    return Status(StatusCode::kUnavailable,
-                  "cannot listen on " + o.host + ":" + std::to_string(o.port));
-  }
-  return Status::Ok();
-}
+Status HttpServer::Bind() { return impl_->transport.Bind(); }
 
-int HttpServer::port() const { return impl_->bound_port; }
+int HttpServer::port() const { return impl_->transport.port(); }
 
-void HttpServer::Serve() { impl_->server.listen_after_bind(); }
+void HttpServer::Serve() { impl_->transport.Serve(); }
 
 void HttpServer::Stop() {
-  if (impl_ && impl_->server.is_running()) impl_->server.stop();
+  if (impl_) impl_->transport.Stop();
 }
 
 }  // namespace mdp::server

@@ -1,8 +1,9 @@
-// HttpServer: the HTTP front of the planning service (API: api-schema/openapi.json). It owns
-// the connection threads (cpp-httplib's pool), checks the bearer token, body size and
-// content type, routes requests to thin handlers (routes.cc), records per-route metrics and
-// logs one line per request. Solves never run on its threads. Serve() blocks; Stop() may be
-// called from any thread.
+// HttpServer: the HTTP front of the planning service (API: api-schema/openapi.json). Over its
+// transport (http_transport.h: an epoll set served by a fixed pool of threads, which idle
+// connections do not hold), it checks the bearer token, body size and content type, routes
+// requests to thin handlers (routes.cc), records per-route metrics and logs one line per
+// request. Solves never run on its threads. Serve() blocks; Stop() may be called from any
+// thread.
 #ifndef MDP_SERVER_HTTP_SERVER_H_
 #define MDP_SERVER_HTTP_SERVER_H_
 
@@ -19,8 +20,9 @@ namespace mdp::server {
 struct HttpOptions {
   std::string host = "127.0.0.1";
   int port = 8080;                         // 0: any free port (see HttpServer::port()).
-  int threads = 128;                       // Connection threads (one per open connection).
+  int threads = 16;                        // Threads that read requests and run handlers.
   int64_t body_limit = int64_t{256} << 20;  // Bytes; larger bodies get 413.
+  int idle_timeout_seconds = 30;           // A connection silent this long is closed.
   std::string token;                       // Non-empty: required as "Bearer <token>".
 };
 

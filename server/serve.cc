@@ -149,6 +149,7 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
   }
   http.token = *token;
   http.threads = config.http_threads;
+  http.idle_timeout_seconds = config.idle_timeout_seconds;
   http.body_limit = config.body_limit;
 
   std::unique_ptr<Store> store;

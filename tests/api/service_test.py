@@ -30,7 +30,12 @@ Starts `mdpserve serve` processes on 127.0.0.1 with ephemeral ports (--listen 12
       docstrings: finite-horizon queries by stage and periods remaining (batch, explain,
       tables), the average criterion's gain, total cost to a goal with unsafe actions and a
       state that cannot reach it, and the solves that must fail (a reward loop avoiding the
-      goal; a method of another criterion).
+      goal; a method of another criterion);
+  (i) the store's value limit (memory and SQLite stores);
+  (j) connections: 50 silent or half-sent connections on 2 HTTP threads do not stop a new
+      request; pipelined GET, HEAD, GET answered in order; framing errors (505, 501, 400,
+      431) as problems; Expect: 100-continue, under and over the body limit; the idle
+      timeout closes silent and kept-alive connections.
 Every JSON body received is validated against the OpenAPI response schema of its operation
 and status (Draft 2020-12; the api-schema/*.schema.json files are resolved by their $id).
 
@@ -1813,6 +1818,165 @@ def scenario_i(api, server, root, label):
                 view is not None and view["status"] == "succeeded", str(view)[:300])
 
 
+# --------------------------------------------------------------------------------------------
+# (j) Connections: silent clients hold no thread, pipelining, HEAD, framing errors, timeouts
+
+def split_responses(data):
+    """The (status, headers, body) of each complete response in `data`, in order: bodies
+    framed by Content-Length, none after HEAD-like responses marked by `no_body`."""
+    out = []
+    while data:
+        head, sep, rest = data.partition(b"\r\n\r\n")
+        if not sep:
+            break
+        lines = head.decode("latin-1").split("\r\n")
+        headers = {}
+        for line in lines[1:]:
+            k, _, v = line.partition(":")
+            headers[k.strip().lower()] = v.strip()
+        length = int(headers.get("content-length", "0"))
+        out.append((int(lines[0].split()[1]), headers, rest[:length]))
+        data = rest[length:]
+    return out
+
+
+def socket_open(sock):
+    """True iff the server has not closed `sock` (nothing to read and no end of input)."""
+    sock.setblocking(False)
+    try:
+        return sock.recv(1) != b""  # b"": the server closed it.
+    except BlockingIOError:
+        return True
+    except OSError:
+        return False
+    finally:
+        sock.setblocking(True)
+
+
+def wait_closed(sock, seconds):
+    """True iff the server closes `sock` within `seconds` (end of input or a reset)."""
+    sock.settimeout(seconds)
+    try:
+        return sock.recv(1) == b""
+    except socket.timeout:
+        return False
+    except OSError:
+        return True
+
+
+def scenario_j(api, server, root, idle_timeout):
+    """The server runs with --http-threads 2 and --idle-timeout `idle_timeout`."""
+    port = server.port
+    health = b"GET /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\n\r\n"
+    # Far more silent or half-sent connections than threads: with a thread per connection,
+    # two of them would stop the service until they timed out.
+    silent = [socket.create_connection(("127.0.0.1", port), timeout=10) for _ in range(40)]
+    partial = [socket.create_connection(("127.0.0.1", port), timeout=10) for _ in range(10)]
+    for s in partial:
+        s.sendall(b"GET /healthz HTTP/1.1\r\nHost: 12")
+    time.sleep(0.2)
+    resp = raw_exchange(port, b"GET /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close"
+                              b"\r\n\r\n")
+    still_open = sum(socket_open(s) for s in silent + partial)
+    R.check("j: 50 silent or half-sent connections on 2 threads: a new request is answered "
+            "while all 50 are still open", resp.status == 200 and still_open == 50,
+            "status %s, %d of 50 open" % (resp.status, still_open))
+    # A half-sent request completed later is answered on its connection.
+    partial[0].sendall(b"7.0.0.1\r\n\r\n")
+    got = split_responses(read_response(partial[0]))
+    R.check("j: a request sent in two parts is answered", [g[0] for g in got] == [200],
+            str([g[0] for g in got]))
+
+    # Pipelining: three requests in one write, three answers in order; HEAD has no body.
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(health + b"HEAD /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\n\r\n" +
+                  b"GET /readyz HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n\r\n")
+        data = b""
+        while True:
+            part = s.recv(65536)
+            if not part:
+                break
+            data += part
+    # split_responses frames by Content-Length, so strip the HEAD answer's body by hand.
+    first, _, rest = data.partition(b"\r\n\r\n")
+    get_length = int(re.search(rb"content-length: *(\d+)", first, re.I).group(1))
+    get_body, rest = rest[:get_length], rest[get_length:]
+    head_head, _, rest = rest.partition(b"\r\n\r\n")
+    last = split_responses(rest)
+    head_length = re.search(rb"content-length: *(\d+)", head_head, re.I)
+    R.check("j: three pipelined requests (GET, HEAD, GET) answered in order",
+            first.startswith(b"HTTP/1.1 200") and get_body == b'{"status":"ok"}' and
+            head_head.startswith(b"HTTP/1.1 200") and len(last) == 1 and last[0][0] == 200 and
+            json.loads(last[0][2]) == {"status": "ready"}, short(data))
+    R.check("j: HEAD: the GET's Content-Length and no body",
+            head_length is not None and int(head_length.group(1)) == len(get_body),
+            short(head_head))
+    R.check("j: Connection: close is answered with Connection: close and the connection ends",
+            last and last[0][1].get("connection") == "close", str(last and last[0][1]))
+
+    # Framing the service refuses, each with a problem stating its status.
+    for name, raw, status in (
+            ("HTTP/2.0 request line", b"GET /healthz HTTP/2.0\r\nHost: x\r\n\r\n", 505),
+            ("a transfer coding other than chunked",
+             b"POST /v1/models HTTP/1.1\r\nHost: x\r\nTransfer-Encoding: gzip\r\n\r\n", 501),
+            ("both Content-Length and Transfer-Encoding",
+             b"POST /v1/models HTTP/1.1\r\nHost: x\r\nContent-Length: 3\r\n"
+             b"Transfer-Encoding: chunked\r\n\r\n0\r\n\r\n", 400),
+            ("a Content-Length that is not a number",
+             b"POST /v1/models HTTP/1.1\r\nHost: x\r\nContent-Length: 12abc\r\n\r\n", 400),
+            ("two different Content-Length fields",
+             b"POST /v1/models HTTP/1.1\r\nHost: x\r\nContent-Length: 2\r\n"
+             b"Content-Length: 3\r\n\r\n{}", 400),
+            ("a header field without a colon",
+             b"GET /healthz HTTP/1.1\r\nHost x\r\n\r\n", 400),
+            ("a malformed chunk size",
+             b"POST /v1/models HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+             b"Transfer-Encoding: chunked\r\n\r\nzz\r\n{}\r\n0\r\n\r\n", 400),
+            ("200 header fields",
+             b"GET /healthz HTTP/1.1\r\n" + b"".join(b"X-F%d: 1\r\n" % i for i in range(200)) +
+             b"\r\n", 431),
+            ("header fields over 16 KiB",
+             b"GET /healthz HTTP/1.1\r\nX-Big: " + b"a" * 20000 + b"\r\n\r\n", 431)):
+        resp = raw_exchange(port, raw)
+        problems = api.check_problem_only(resp, "Problem")
+        R.check("j: %s -> %d problem stating %d" % (name, status, status),
+                resp.status == status and not problems and
+                json.loads(resp.body or b"{}").get("status") == status,
+                "%s %s %s" % (resp.status, problems, short(resp.body)))
+
+    # Expect: 100-continue: the interim answer, then the body, then the final answer; over
+    # the limit, 413 at once and the body is never sent.
+    pump = json.dumps(load_example(root, "pump-maintenance.json")).encode()
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(upload_head(b"Content-Length: %d\r\nExpect: 100-continue\r\n" % len(pump)))
+        interim = s.recv(65536)
+        s.sendall(pump)
+        final = split_responses(read_response(s))
+    R.check("j: Expect: 100-continue -> 100 Continue, then the upload's 201",
+            interim == b"HTTP/1.1 100 Continue\r\n\r\n" and [f[0] for f in final] == [201],
+            "%s %s" % (short(interim), [f[0] for f in final]))
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(upload_head(b"Content-Length: 70000\r\nExpect: 100-continue\r\n"))
+        final = split_responses(read_response(s))
+    R.check("j: Expect: 100-continue over --body-limit -> 413 at once, Connection: close",
+            [f[0] for f in final] == [413] and final[0][1].get("connection") == "close",
+            str(final))
+
+    # The idle timeout closes the silent and half-sent connections; the service goes on.
+    closed = sum(wait_closed(s, idle_timeout + 5) for s in silent + partial[1:])
+    R.check("j: --idle-timeout %d closes all 49 silent or half-sent connections" % idle_timeout,
+            closed == 49, "%d closed" % closed)
+    for s in silent + partial:
+        s.close()
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(health)
+        got = split_responses(read_response(s))
+        R.check("j: a kept-alive connection is open after its answer", socket_open(s))
+        R.check("j: and closed after the idle timeout", wait_closed(s, idle_timeout + 5))
+    R.check("j: still answering afterwards", [g[0] for g in got] == [200] and
+            raw_exchange(port, health).status == 200)
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--mdpserve", required=True, help="path to the mdpserve binary")
@@ -1865,6 +2029,9 @@ def main():
             scenario_i(api, server("limit-memory", ["--memory-store"] + limit), root, "memory")
             scenario_i(api, server("limit-sqlite", ["--data-dir", os.path.join(work, "limited")]
                                    + limit), root, "sqlite")
+            scenario_j(api, server("connections", ["--memory-store", "--http-threads", "2",
+                                                   "--idle-timeout", "2",
+                                                   "--body-limit", "65536"]), root, 2)
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback
             traceback.print_exc()

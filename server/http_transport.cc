@@ -1,0 +1,828 @@
+#include "server/http_transport.h"
+
+#include <netdb.h>
+#include <netinet/in.h>
+#include <netinet/tcp.h>
+#include <poll.h>
+#include <spdlog/spdlog.h>
+#include <sys/epoll.h>
+#include <sys/eventfd.h>
+#include <sys/socket.h>
+#include <sys/uio.h>
+#include <unistd.h>
+
+#include <algorithm>
+#include <atomic>
+#include <cctype>
+#include <cerrno>
+#include <chrono>
+#include <condition_variable>
+#include <cstdio>
+#include <cstring>
+#include <mutex>
+#include <new>
+#include <string_view>
+#include <thread>
+#include <unordered_map>
+#include <utility>
+#include <vector>
+
+namespace mdp::server {
+namespace {
+
+constexpr size_t kMaxHeadBytes = size_t{16} << 10;  // Request line and header fields.
+constexpr size_t kMaxTargetBytes = 8192;
+constexpr size_t kMaxHeaderFields = 100;
+constexpr size_t kMaxChunkLineBytes = 1024;
+constexpr size_t kReadBytes = size_t{256} << 10;  // Per recv().
+constexpr int64_t kLingerMs = 5000;  // How long a closing connection's input is drained.
+
+int64_t NowMs() {
+  return std::chrono::duration_cast<std::chrono::milliseconds>(
+             std::chrono::steady_clock::now().time_since_epoch())
+      .count();
+}
+
+// tchar of RFC 9110, sec. 5.6.2.
+bool IsTokenChar(unsigned char c) {
+  if (std::isalnum(c) != 0) return true;
+  return std::strchr("!#$%&'*+-.^_`|~", c) != nullptr && c != '\0';
+}
+
+bool IsToken(std::string_view s) {
+  return !s.empty() && std::all_of(s.begin(), s.end(), [](char c) {
+    return IsTokenChar(static_cast<unsigned char>(c));
+  });
+}
+
+bool EqualsIgnoreCase(std::string_view a, std::string_view b) {
+  return a.size() == b.size() && std::equal(a.begin(), a.end(), b.begin(), [](char x, char y) {
+           return std::tolower(static_cast<unsigned char>(x)) ==
+                  std::tolower(static_cast<unsigned char>(y));
+         });
+}
+
+std::string_view TrimWhitespace(std::string_view s) {
+  while (!s.empty() && (s.front() == ' ' || s.front() == '\t')) s.remove_prefix(1);
+  while (!s.empty() && (s.back() == ' ' || s.back() == '\t')) s.remove_suffix(1);
+  return s;
+}
+
+// True iff the comma-separated list `value` has `token` as an element (case-insensitive).
+bool ListsToken(std::string_view value, std::string_view token) {
+  while (!value.empty()) {
+    const size_t comma = value.find(',');
+    if (EqualsIgnoreCase(TrimWhitespace(value.substr(0, comma)), token)) return true;
+    if (comma == std::string_view::npos) break;
+    value.remove_prefix(comma + 1);
+  }
+  return false;
+}
+
+int HexValue(char c) {
+  if (c >= '0' && c <= '9') return c - '0';
+  if (c >= 'a' && c <= 'f') return c - 'a' + 10;
+  if (c >= 'A' && c <= 'F') return c - 'A' + 10;
+  return -1;
+}
+
+// Percent-decoding (a '%' not followed by two hex digits stays as it is); in a query, '+'
+// is a space.
+std::string Decode(std::string_view s, bool plus_is_space) {
+  std::string out;
+  out.reserve(s.size());
+  for (size_t i = 0; i < s.size(); ++i) {
+    if (s[i] == '%' && i + 2 < s.size() && HexValue(s[i + 1]) >= 0 && HexValue(s[i + 2]) >= 0) {
+      out += static_cast<char>(HexValue(s[i + 1]) * 16 + HexValue(s[i + 2]));
+      i += 2;
+    } else if (plus_is_space && s[i] == '+') {
+      out += ' ';
+    } else {
+      out += s[i];
+    }
+  }
+  return out;
+}
+
+void ParseQuery(std::string_view query, httplib::Params& params) {
+  while (!query.empty()) {
+    const size_t amp = query.find('&');
+    const std::string_view pair = query.substr(0, amp);
+    if (!pair.empty()) {
+      const size_t eq = pair.find('=');
+      params.emplace(Decode(pair.substr(0, eq), true),
+                     eq == std::string_view::npos ? "" : Decode(pair.substr(eq + 1), true));
+    }
+    if (amp == std::string_view::npos) break;
+    query.remove_prefix(amp + 1);
+  }
+}
+
+const char* Reason(int status) {
+  switch (status) {
+    case 100:
+      return "Continue";
+    case 200:
+      return "OK";
+    case 201:
+      return "Created";
+    case 202:
+      return "Accepted";
+    case 204:
+      return "No Content";
+    case 303:
+      return "See Other";
+    case 304:
+      return "Not Modified";
+    case 400:
+      return "Bad Request";
+    case 401:
+      return "Unauthorized";
+    case 403:
+      return "Forbidden";
+    case 404:
+      return "Not Found";
+    case 405:
+      return "Method Not Allowed";
+    case 409:
+      return "Conflict";
+    case 410:
+      return "Gone";
+    case 413:
+      return "Content Too Large";
+    case 414:
+      return "URI Too Long";
+    case 415:
+      return "Unsupported Media Type";
+    case 422:
+      return "Unprocessable Content";
+    case 429:
+      return "Too Many Requests";
+    case 431:
+      return "Request Header Fields Too Large";
+    case 500:
+      return "Internal Server Error";
+    case 501:
+      return "Not Implemented";
+    case 503:
+      return "Service Unavailable";
+    case 505:
+      return "HTTP Version Not Supported";
+    default:
+      return "Status";
+  }
+}
+
+enum class Phase { kHead, kBody, kChunkSize, kChunkData, kChunkEnd, kTrailers, kLinger };
+
+struct Conn {
+  int fd = -1;
+  std::string in;           // Received and not yet parsed.
+  size_t head_scanned = 0;  // How much of `in` is known not to hold the end of the head.
+  Phase phase = Phase::kHead;
+  httplib::Request req;  // The request being read.
+  std::string body;
+  uint64_t remaining = 0;   // Body (or chunk) bytes still to come.
+  bool over_limit = false;  // A chunked body went over the limit: the rest is dropped.
+  bool keep_alive = true;
+  size_t trailer_bytes = 0;
+  std::atomic<int64_t> last_active_ms{0};
+  std::atomic<bool> busy{false};       // A thread owns it (between its event and its re-arming).
+  std::atomic<bool> lingering{false};  // Answered for the last time; input is drained.
+};
+
+// What parsing the received bytes came to.
+struct Step {
+  enum Kind { kNeedMore, kReady, kRefuse } kind = kNeedMore;
+  int status = 0;      // kRefuse: the status to answer with.
+  std::string reason;  // kRefuse: why.
+  bool keep = false;   // kRefuse: the connection stays usable after the answer.
+};
+
+Step Ready() {
+  Step step;
+  step.kind = Step::kReady;
+  return step;
+}
+
+Step Refuse(int status, std::string reason, bool keep = false) {
+  return Step{Step::kRefuse, status, std::move(reason), keep};
+}
+
+}  // namespace
+
+struct HttpTransport::Impl {
+  Impl(TransportOptions o, RequestHandler h, RefusalHandler r)
+      : options(std::move(o)), handler(std::move(h)), refusal(std::move(r)) {}
+
+  ~Impl() {
+    for (auto& [raw, conn] : conns) ::close(conn->fd);
+    if (listen_fd >= 0) ::close(listen_fd);
+    if (epoll_fd >= 0) ::close(epoll_fd);
+    if (wake_fd >= 0) ::close(wake_fd);
+  }
+
+  Status Bind() {
+    addrinfo hints{};
+    hints.ai_family = AF_UNSPEC;
+    hints.ai_socktype = SOCK_STREAM;
+    hints.ai_flags = AI_PASSIVE | AI_NUMERICSERV;
+    addrinfo* found = nullptr;
+    const std::string service = std::to_string(options.port);
+    const char* host = options.host.empty() ? nullptr : options.host.c_str();
+    const Status unavailable(StatusCode::kUnavailable, "cannot listen on " + options.host + ":" +
+                                                           std::to_string(options.port));
+    if (::getaddrinfo(host, service.c_str(), &hints, &found) != 0) return unavailable;
+    for (addrinfo* a = found; a != nullptr && listen_fd < 0; a = a->ai_next) {
+      const int fd =
+          ::socket(a->ai_family, a->ai_socktype | SOCK_NONBLOCK | SOCK_CLOEXEC, a->ai_protocol);
+      if (fd < 0) continue;
+      // SO_REUSEADDR only: a second server on the same port fails to bind instead of
+      // silently sharing it.
+      const int yes = 1;
+      ::setsockopt(fd, SOL_SOCKET, SO_REUSEADDR, &yes, sizeof yes);
+      if (::bind(fd, a->ai_addr, a->ai_addrlen) == 0 && ::listen(fd, SOMAXCONN) == 0) {
+        listen_fd = fd;
+      } else {
+        ::close(fd);
+      }
+    }
+    ::freeaddrinfo(found);
+    if (listen_fd < 0) return unavailable;
+    sockaddr_storage addr{};
+    socklen_t length = sizeof addr;
+    ::getsockname(listen_fd, reinterpret_cast<sockaddr*>(&addr), &length);
+    bound_port = addr.ss_family == AF_INET6
+                     ? ntohs(reinterpret_cast<sockaddr_in6*>(&addr)->sin6_port)
+                     : ntohs(reinterpret_cast<sockaddr_in*>(&addr)->sin_port);
+    epoll_fd = ::epoll_create1(EPOLL_CLOEXEC);
+    wake_fd = ::eventfd(0, EFD_NONBLOCK | EFD_CLOEXEC);
+    if (epoll_fd < 0 || wake_fd < 0) return unavailable;
+    epoll_event wake{};
+    wake.events = EPOLLIN;  // Level-triggered: once written, it wakes every thread.
+    wake.data.ptr = &wake_tag;
+    epoll_event listen{};
+    listen.events = EPOLLIN | EPOLLONESHOT;
+    listen.data.ptr = &listen_tag;
+    if (::epoll_ctl(epoll_fd, EPOLL_CTL_ADD, wake_fd, &wake) != 0 ||
+        ::epoll_ctl(epoll_fd, EPOLL_CTL_ADD, listen_fd, &listen) != 0) {
+      return unavailable;
+    }
+    return Status::Ok();
+  }
+
+  void Serve() {
+    std::vector<std::thread> threads;
+    for (int i = 0; i < std::max(1, options.threads); ++i) threads.emplace_back([this] { Work(); });
+    {
+      std::unique_lock<std::mutex> lock(stop_mu);
+      while (!stopping.load()) {
+        stop_cv.wait_for(lock, std::chrono::seconds(1));
+        if (!stopping.load()) Reap();
+      }
+    }
+    for (std::thread& t : threads) t.join();
+  }
+
+  void Stop() {
+    {
+      std::lock_guard<std::mutex> lock(stop_mu);
+      stopping.store(true);
+    }
+    if (wake_fd >= 0) {
+      const uint64_t one = 1;
+      [[maybe_unused]] const ssize_t n = ::write(wake_fd, &one, sizeof one);
+    }
+    stop_cv.notify_all();
+  }
+
+  void Work() {
+    epoll_event event{};
+    while (!stopping.load()) {
+      const int n = ::epoll_wait(epoll_fd, &event, 1, -1);
+      if (n < 0) {
+        if (errno == EINTR) continue;
+        spdlog::error("http: epoll_wait failed: {}", std::strerror(errno));
+        return;
+      }
+      if (n == 0) continue;
+      if (event.data.ptr == &wake_tag) return;
+      if (event.data.ptr == &listen_tag) {
+        Accept();
+        continue;
+      }
+      ServeConnection(static_cast<Conn*>(event.data.ptr));
+    }
+  }
+
+  void Accept() {
+    for (;;) {
+      const int fd = ::accept4(listen_fd, nullptr, nullptr, SOCK_NONBLOCK | SOCK_CLOEXEC);
+      if (fd < 0) {
+        if (errno == EINTR || errno == ECONNABORTED) continue;
+        if (errno == EMFILE || errno == ENFILE || errno == ENOBUFS || errno == ENOMEM) {
+          spdlog::warn("http: cannot accept a connection: {}", std::strerror(errno));
+          std::this_thread::sleep_for(std::chrono::milliseconds(10));  // Not a busy loop.
+        }
+        break;
+      }
+      const int yes = 1;  // Small answers must not wait on Nagle + delayed ACK.
+      ::setsockopt(fd, IPPROTO_TCP, TCP_NODELAY, &yes, sizeof yes);
+      auto conn = std::make_unique<Conn>();
+      conn->fd = fd;
+      conn->last_active_ms = NowMs();
+      Conn* raw = conn.get();
+      {
+        std::lock_guard<std::mutex> lock(conns_mu);
+        if (static_cast<int64_t>(conns.size()) >= options.max_connections) {
+          ::close(fd);
+          continue;
+        }
+        conns.emplace(raw, std::move(conn));
+      }
+      epoll_event event{};
+      event.events = EPOLLIN | EPOLLRDHUP | EPOLLONESHOT;
+      event.data.ptr = raw;
+      if (::epoll_ctl(epoll_fd, EPOLL_CTL_ADD, fd, &event) != 0) Close(raw);
+    }
+    epoll_event listen{};
+    listen.events = EPOLLIN | EPOLLONESHOT;
+    listen.data.ptr = &listen_tag;
+    ::epoll_ctl(epoll_fd, EPOLL_CTL_MOD, listen_fd, &listen);
+  }
+
+  // Gives the connection back to the epoll set, waiting for input.
+  void Rearm(Conn* c) {
+    c->busy.store(false);
+    epoll_event event{};
+    event.events = EPOLLIN | EPOLLRDHUP | EPOLLONESHOT;
+    event.data.ptr = c;
+    if (::epoll_ctl(epoll_fd, EPOLL_CTL_MOD, c->fd, &event) != 0) Close(c);
+  }
+
+  void Close(Conn* c) {
+    std::unique_ptr<Conn> owned;
+    {
+      std::lock_guard<std::mutex> lock(conns_mu);
+      auto it = conns.find(c);
+      if (it == conns.end()) return;
+      owned = std::move(it->second);
+      conns.erase(it);
+    }
+    ::close(owned->fd);
+  }
+
+  // Closes idle connections after the idle timeout and lingering ones after kLingerMs, by
+  // shutting their sockets down: the thread that then gets the connection's event reads
+  // the end of input and closes it.
+  void Reap() {
+    const int64_t now = NowMs();
+    const int64_t idle_ms = int64_t{options.idle_timeout_seconds} * 1000;
+    std::lock_guard<std::mutex> lock(conns_mu);
+    for (auto& [raw, c] : conns) {
+      if (c->busy.load()) continue;
+      const int64_t limit = c->lingering.load() ? kLingerMs : idle_ms;
+      if (now - c->last_active_ms.load() > limit) {
+        ::shutdown(c->fd, SHUT_RDWR);
+        c->last_active_ms = now;
+      }
+    }
+  }
+
+  // Reads, parses and answers on a connection until it has no complete request left, then
+  // re-arms it (or closes it).
+  void ServeConnection(Conn* c) {
+    c->busy.store(true);
+    for (;;) {
+      if (c->phase != Phase::kLinger) {
+        const Step step = Parse(c);
+        if (step.kind == Step::kReady) {
+          if (!Answer(c)) return Close(c);
+          continue;
+        }
+        if (step.kind == Step::kRefuse) {
+          if (!AnswerRefusal(c, step)) return Close(c);
+          continue;
+        }
+      }
+      // Need more input. A body of declared length is read straight into its buffer.
+      ssize_t n;
+      if (c->phase == Phase::kBody && c->in.empty()) {
+        const size_t old = c->body.size();
+        const size_t want = static_cast<size_t>(std::min<uint64_t>(c->remaining, kReadBytes));
+        c->body.resize(old + want);
+        n = ::recv(c->fd, c->body.data() + old, want, 0);
+        c->body.resize(old + static_cast<size_t>(std::max<ssize_t>(n, 0)));
+        if (n > 0) c->remaining -= static_cast<uint64_t>(n);
+      } else {
+        const size_t old = c->in.size();
+        c->in.resize(old + kReadBytes);
+        n = ::recv(c->fd, c->in.data() + old, kReadBytes, 0);
+        c->in.resize(old + static_cast<size_t>(std::max<ssize_t>(n, 0)));
+        if (n > 0 && c->phase == Phase::kLinger) c->in.clear();
+      }
+      if (n > 0) {
+        c->last_active_ms = NowMs();
+        continue;
+      }
+      if (n < 0 && errno == EINTR) continue;
+      if (n < 0 && (errno == EAGAIN || errno == EWOULDBLOCK)) return Rearm(c);
+      return Close(c);  // End of input (or an error): a request cut short gets no answer.
+    }
+  }
+
+  void ResetRequest(Conn* c) {
+    c->req = httplib::Request();
+    std::string().swap(c->body);
+    c->remaining = 0;
+    c->over_limit = false;
+    c->trailer_bytes = 0;
+    c->phase = Phase::kHead;
+    c->head_scanned = 0;
+  }
+
+  Step Parse(Conn* c) {
+    std::string& in = c->in;
+    for (;;) {
+      switch (c->phase) {
+        case Phase::kHead: {
+          size_t skip = 0;  // Empty lines before a request line are ignored (RFC 9112, 2.2).
+          while (skip + 1 < in.size() && in[skip] == '\r' && in[skip + 1] == '\n') skip += 2;
+          if (skip > 0) in.erase(0, skip);
+          const size_t from = c->head_scanned > 3 ? c->head_scanned - 3 : 0;
+          const size_t end = in.find("\r\n\r\n", from);
+          if (end == std::string::npos || end + 4 > kMaxHeadBytes) {
+            c->head_scanned = in.size();
+            if (in.size() <= kMaxHeadBytes) return Step{};
+            const size_t line_end = in.find("\r\n");
+            if (line_end == std::string::npos || line_end > kMaxTargetBytes) {
+              return Refuse(414, "the request target is longer than " +
+                                     std::to_string(kMaxTargetBytes) + " bytes");
+            }
+            return Refuse(431, "the request's header fields are longer than " +
+                                   std::to_string(kMaxHeadBytes) + " bytes");
+          }
+          Step step = ParseHead(c, std::string_view(in.data(), end));
+          in.erase(0, end + 4);
+          if (step.kind == Step::kRefuse) return step;
+          if (c->phase == Phase::kHead) return Ready();  // No body.
+          break;
+        }
+        case Phase::kBody: {
+          const size_t take = static_cast<size_t>(std::min<uint64_t>(c->remaining, in.size()));
+          c->body.append(in, 0, take);
+          in.erase(0, take);
+          c->remaining -= take;
+          if (c->remaining > 0) return Step{};
+          return Ready();
+        }
+        case Phase::kChunkSize: {
+          const size_t line_end = in.find("\r\n");
+          if (line_end == std::string::npos) {
+            if (in.size() > kMaxChunkLineBytes) return Refuse(400, "a chunk-size line is too long");
+            return Step{};
+          }
+          uint64_t size = 0;
+          size_t i = 0;
+          for (; i < line_end && HexValue(in[i]) >= 0; ++i) {
+            if (i >= 15) return Refuse(400, "a chunk is too large");
+            size = size * 16 + static_cast<uint64_t>(HexValue(in[i]));
+          }
+          const std::string_view rest =
+              TrimWhitespace(std::string_view(in).substr(i, line_end - i));
+          if (i == 0 || (!rest.empty() && rest.front() != ';')) {
+            return Refuse(400, "malformed chunk-size line in the chunked body");
+          }
+          in.erase(0, line_end + 2);
+          if (size == 0) {
+            c->phase = Phase::kTrailers;
+            break;
+          }
+          const size_t limit = static_cast<size_t>(options.body_limit);
+          if (!c->over_limit && size > limit - std::min(limit, c->body.size())) {
+            c->over_limit = true;
+            std::string().swap(c->body);
+          }
+          c->remaining = size;
+          c->phase = Phase::kChunkData;
+          break;
+        }
+        case Phase::kChunkData: {
+          const size_t take = static_cast<size_t>(std::min<uint64_t>(c->remaining, in.size()));
+          if (!c->over_limit) c->body.append(in, 0, take);
+          in.erase(0, take);
+          c->remaining -= take;
+          if (c->remaining > 0) return Step{};
+          c->phase = Phase::kChunkEnd;
+          break;
+        }
+        case Phase::kChunkEnd: {
+          if (in.size() < 2) return Step{};
+          if (in[0] != '\r' || in[1] != '\n') return Refuse(400, "a chunk does not end in CRLF");
+          in.erase(0, 2);
+          c->phase = Phase::kChunkSize;
+          break;
+        }
+        case Phase::kTrailers: {
+          const size_t line_end = in.find("\r\n");
+          if (line_end == std::string::npos) {
+            if (in.size() > kMaxHeadBytes) return Refuse(400, "the trailer section is too long");
+            return Step{};
+          }
+          in.erase(0, line_end + 2);
+          if (line_end > 0) {  // Trailer fields are read and not used.
+            c->trailer_bytes += line_end + 2;
+            if (c->trailer_bytes > kMaxHeadBytes) {
+              return Refuse(400, "the trailer section is too long");
+            }
+            break;
+          }
+          if (c->over_limit) return Refuse(413, "the request body is over the limit", true);
+          return Ready();
+        }
+        case Phase::kLinger:
+          in.clear();
+          return Step{};
+      }
+    }
+  }
+
+  // Fills c->req from the head (request line and fields, without the final empty line) and
+  // sets the body's framing.
+  Step ParseHead(Conn* c, std::string_view head) {
+    httplib::Request& req = c->req;
+    const size_t line_end = std::min(head.find("\r\n"), head.size());
+    const std::string_view line = head.substr(0, line_end);
+    const size_t sp1 = line.find(' ');
+    const size_t sp2 = sp1 == std::string_view::npos ? sp1 : line.find(' ', sp1 + 1);
+    if (sp2 == std::string_view::npos || line.find(' ', sp2 + 1) != std::string_view::npos) {
+      return Refuse(400, "the request line is not 'METHOD target HTTP/1.1'");
+    }
+    const std::string_view method = line.substr(0, sp1);
+    std::string_view target = line.substr(sp1 + 1, sp2 - sp1 - 1);
+    const std::string_view version = line.substr(sp2 + 1);
+    if (!IsToken(method)) return Refuse(400, "the request method is not a token");
+    req.method = std::string(method);
+    if (version != "HTTP/1.1" && version != "HTTP/1.0") {
+      if (version.size() == 8 && version.substr(0, 5) == "HTTP/") {
+        return Refuse(505, "only HTTP/1.0 and HTTP/1.1 are served");
+      }
+      return Refuse(400, "the request line does not end in an HTTP version");
+    }
+    req.version = std::string(version);
+    if (target.size() > kMaxTargetBytes) {
+      return Refuse(
+          414, "the request target is longer than " + std::to_string(kMaxTargetBytes) + " bytes");
+    }
+    for (std::string_view scheme : {"http://", "https://"}) {  // Absolute form.
+      if (target.size() >= scheme.size() &&
+          EqualsIgnoreCase(target.substr(0, scheme.size()), scheme)) {
+        const size_t slash = target.find('/', scheme.size());
+        target = slash == std::string_view::npos ? std::string_view("/") : target.substr(slash);
+      }
+    }
+    if (target.empty() || (target.front() != '/' && target != "*")) {
+      return Refuse(400, "the request target is not a path");
+    }
+    req.target = std::string(target);
+    const size_t question = target.find('?');
+    req.path = Decode(target.substr(0, question), false);
+    if (question != std::string_view::npos) ParseQuery(target.substr(question + 1), req.params);
+
+    size_t fields = 0;
+    std::string_view rest = line_end < head.size() ? head.substr(line_end + 2) : std::string_view();
+    while (!rest.empty()) {
+      const size_t end = std::min(rest.find("\r\n"), rest.size());
+      const std::string_view field = rest.substr(0, end);
+      rest = end < rest.size() ? rest.substr(end + 2) : std::string_view();
+      if (++fields > kMaxHeaderFields) {
+        return Refuse(431, "more than " + std::to_string(kMaxHeaderFields) + " header fields");
+      }
+      const size_t colon = field.find(':');
+      if (colon == std::string_view::npos || !IsToken(field.substr(0, colon)) ||
+          field.find_first_of(std::string_view("\r\n\0", 3)) != std::string_view::npos) {
+        return Refuse(400, "malformed header field");
+      }
+      req.headers.emplace(std::string(field.substr(0, colon)),
+                          std::string(TrimWhitespace(field.substr(colon + 1))));
+    }
+
+    const std::string connection = req.get_header_value("Connection");
+    c->keep_alive = req.version == "HTTP/1.1" ? !ListsToken(connection, "close")
+                                              : ListsToken(connection, "keep-alive");
+    const bool chunked_field = req.has_header("Transfer-Encoding");
+    const size_t lengths = req.get_header_value_count("Content-Length");
+    uint64_t length = 0;
+    if (chunked_field) {
+      if (lengths > 0) {
+        c->keep_alive = false;
+        return Refuse(400, "both Content-Length and Transfer-Encoding are given");
+      }
+      if (req.get_header_value_count("Transfer-Encoding") != 1 ||
+          !EqualsIgnoreCase(TrimWhitespace(req.get_header_value("Transfer-Encoding")), "chunked")) {
+        c->keep_alive = false;
+        return Refuse(501, "only the chunked transfer coding is served");
+      }
+      c->phase = Phase::kChunkSize;
+    } else if (lengths > 0) {
+      const std::string first = req.get_header_value("Content-Length");
+      for (size_t i = 0; i < lengths; ++i) {
+        const std::string value = req.get_header_value("Content-Length", i);
+        if (value != first || value.empty() || value.size() > 18 ||
+            !std::all_of(value.begin(), value.end(),
+                         [](char ch) { return ch >= '0' && ch <= '9'; })) {
+          c->keep_alive = false;
+          return Refuse(400, "invalid Content-Length");
+        }
+      }
+      length = std::stoull(first);
+      if (length > static_cast<uint64_t>(options.body_limit)) {
+        c->keep_alive = false;
+        return Refuse(413, "the request body is over the limit");
+      }
+      if (length > 0) c->phase = Phase::kBody;
+    }
+    c->remaining = length;
+    if (c->phase != Phase::kHead) {
+      if (length > 0) {
+        // Address space only: pages cost memory when the body fills them. A length the
+        // process cannot even reserve is read with growth instead.
+        try {
+          c->body.reserve(static_cast<size_t>(length));
+        } catch (const std::bad_alloc&) {
+        }
+      }
+      if (EqualsIgnoreCase(TrimWhitespace(req.get_header_value("Expect")), "100-continue")) {
+        static constexpr std::string_view kContinue = "HTTP/1.1 100 Continue\r\n\r\n";
+        iovec part{const_cast<char*>(kContinue.data()), kContinue.size()};
+        if (!WriteAll(c, &part, 1)) return Refuse(400, "the connection failed");
+      }
+    }
+    return Step{};
+  }
+
+  // Writes the parts in full, waiting up to the write timeout whenever the socket is full.
+  bool WriteAll(Conn* c, iovec* parts, int count) {
+    while (count > 0) {
+      msghdr message{};
+      message.msg_iov = parts;
+      message.msg_iovlen = static_cast<size_t>(count);
+      const ssize_t n = ::sendmsg(c->fd, &message, MSG_NOSIGNAL);
+      if (n < 0) {
+        if (errno == EINTR) continue;
+        if (errno != EAGAIN && errno != EWOULDBLOCK) return false;
+        pollfd waiting{c->fd, POLLOUT, 0};
+        const int ready = ::poll(&waiting, 1, options.write_timeout_seconds * 1000);
+        if (ready <= 0 || (waiting.revents & (POLLERR | POLLHUP | POLLNVAL)) != 0) return false;
+        continue;
+      }
+      c->last_active_ms = NowMs();
+      size_t sent = static_cast<size_t>(n);
+      while (count > 0 && sent >= parts->iov_len) {
+        sent -= parts->iov_len;
+        ++parts;
+        --count;
+      }
+      if (count > 0) {
+        parts->iov_base = static_cast<char*>(parts->iov_base) + sent;
+        parts->iov_len -= sent;
+      }
+    }
+    return true;
+  }
+
+  bool WriteString(Conn* c, std::string_view text) {
+    iovec part{const_cast<char*>(text.data()), text.size()};
+    return WriteAll(c, &part, 1);
+  }
+
+  // Writes `res` as the answer to c->req; false iff the connection failed.
+  bool WriteResponse(Conn* c, httplib::Response& res) {
+    const bool head_only = c->req.method == "HEAD";
+    const bool bodiless = res.status == 204 || res.status == 304 || res.status < 200;
+    const bool streamed = static_cast<bool>(res.content_provider_) && !bodiless;
+    // HTTP/1.0 has no chunked coding: a streamed answer ends when the connection closes.
+    if (streamed && c->req.version == "HTTP/1.0") c->keep_alive = false;
+    std::string head = "HTTP/1.1 " + std::to_string(res.status) + " " + Reason(res.status) + "\r\n";
+    for (const auto& [name, value] : res.headers) {
+      if (EqualsIgnoreCase(name, "Content-Length") || EqualsIgnoreCase(name, "Connection") ||
+          EqualsIgnoreCase(name, "Transfer-Encoding")) {
+        continue;
+      }
+      head += name + ": " + value + "\r\n";
+    }
+    if (!c->keep_alive) {
+      head += "Connection: close\r\n";
+    } else if (c->req.version == "HTTP/1.0") {
+      head += "Connection: keep-alive\r\n";
+    }
+    if (!streamed) {
+      if (!bodiless) head += "Content-Length: " + std::to_string(res.body.size()) + "\r\n";
+      head += "\r\n";
+      iovec parts[2] = {{head.data(), head.size()}, {res.body.data(), res.body.size()}};
+      return WriteAll(c, parts, head_only || bodiless ? 1 : 2);
+    }
+    const bool chunked = c->req.version == "HTTP/1.1";
+    if (chunked) head += "Transfer-Encoding: chunked\r\n";
+    head += "\r\n";
+    if (!WriteString(c, head)) return false;
+    if (head_only) return true;
+    bool ok = true;
+    bool done = false;
+    httplib::DataSink sink;
+    sink.write = [&](const char* data, size_t size) {
+      if (!ok || done) return false;
+      if (size == 0) return true;
+      if (!chunked) return ok = WriteString(c, std::string_view(data, size));
+      char frame[32];
+      const int length = std::snprintf(frame, sizeof frame, "%zx\r\n", size);
+      static constexpr char kCrLf[] = "\r\n";
+      iovec parts[3] = {{frame, static_cast<size_t>(length)},
+                        {const_cast<char*>(data), size},
+                        {const_cast<char*>(kCrLf), 2}};
+      return ok = WriteAll(c, parts, 3);
+    };
+    sink.done = [&] {
+      if (ok && !done && chunked) ok = WriteString(c, "0\r\n\r\n");
+      done = true;
+    };
+    sink.is_writable = [&] { return ok; };
+    const bool provided = res.content_provider_(0, 0, sink);
+    res.content_provider_success_ = ok && provided && done;
+    if (!res.content_provider_success_) c->keep_alive = false;
+    return ok && provided && done;
+  }
+
+  // Runs the handler on the complete request and writes its answer.
+  bool Answer(Conn* c) {
+    httplib::Response res;
+    try {
+      handler(c->req, std::move(c->body), res);
+    } catch (const std::exception& e) {
+      spdlog::error("http: the handler of {} {} threw: {}", c->req.method, c->req.path, e.what());
+      res = httplib::Response();
+      res.status = 500;
+    }
+    if (res.status == -1) res.status = 200;
+    const bool written = WriteResponse(c, res);
+    if (!written) return false;
+    return AfterAnswer(c);
+  }
+
+  bool AnswerRefusal(Conn* c, const Step& step) {
+    if (!step.keep) c->keep_alive = false;
+    httplib::Response res;
+    res.status = step.status;
+    refusal(c->req, step.status, step.reason, res);
+    if (!WriteResponse(c, res)) return false;
+    return AfterAnswer(c);
+  }
+
+  // Next request on a kept connection; otherwise half-closes it and drains what the client
+  // still sends until it closes too (a close with unread input would reset the connection
+  // and could destroy the answer before the client reads it).
+  bool AfterAnswer(Conn* c) {
+    if (c->keep_alive) {
+      ResetRequest(c);
+      return true;
+    }
+    ::shutdown(c->fd, SHUT_WR);
+    ResetRequest(c);
+    c->phase = Phase::kLinger;
+    c->lingering.store(true);
+    c->in.clear();
+    c->last_active_ms = NowMs();
+    return true;
+  }
+
+  TransportOptions options;
+  RequestHandler handler;
+  RefusalHandler refusal;
+  int listen_fd = -1;
+  int epoll_fd = -1;
+  int wake_fd = -1;
+  int bound_port = -1;
+  char listen_tag = 0;
+  char wake_tag = 0;
+  std::atomic<bool> stopping{false};
+  std::mutex stop_mu;
+  std::condition_variable stop_cv;
+  std::mutex conns_mu;
+  std::unordered_map<Conn*, std::unique_ptr<Conn>> conns;
+};
+
+HttpTransport::HttpTransport(TransportOptions options, RequestHandler handler,
+                             RefusalHandler refusal)
+    : impl_(std::make_unique<Impl>(std::move(options), std::move(handler), std::move(refusal))) {}
+
+HttpTransport::~HttpTransport() = default;
+
+Status HttpTransport::Bind() { return impl_->Bind(); }
+
+int HttpTransport::port() const { return impl_->bound_port; }
+
+void HttpTransport::Serve() { impl_->Serve(); }
+
+void HttpTransport::Stop() { impl_->Stop(); }
+
+}  // namespace mdp::server
