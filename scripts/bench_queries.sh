@@ -13,7 +13,8 @@
 #   BENCH_SECONDS=10          duration of each wrk run
 #   BENCH_CONNECTIONS=64      keep-alive connections wrk holds open
 #   BENCH_WRK_THREADS=2       wrk threads
-#   BENCH_HTTP_THREADS="128"  mdpserve --http-threads values to try, space separated
+#   BENCH_HTTP_THREADS="0"    mdpserve --http-threads values to try, space separated (0: the
+#                             server's automatic count)
 #   BENCH_ROUNDS=1            nginx/mdpserve pairs per --http-threads value (alternating)
 #   BENCH_NGINX_WORKERS=2     nginx worker processes
 #   MDPSERVE=build/bin/mdpserve
@@ -31,7 +32,7 @@ ROOT=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
 SECONDS_PER_RUN=${BENCH_SECONDS:-10}
 CONNECTIONS=${BENCH_CONNECTIONS:-64}
 WRK_THREADS=${BENCH_WRK_THREADS:-2}
-HTTP_THREADS_LIST=${BENCH_HTTP_THREADS:-128}
+HTTP_THREADS_LIST=${BENCH_HTTP_THREADS:-0}
 ROUNDS=${BENCH_ROUNDS:-1}
 NGINX_WORKERS=${BENCH_NGINX_WORKERS:-2}
 MDPSERVE=${MDPSERVE:-$ROOT/build/bin/mdpserve}
@@ -46,7 +47,7 @@ for n in SECONDS_PER_RUN CONNECTIONS WRK_THREADS ROUNDS NGINX_WORKERS; do
   [[ ${!n} =~ ^[1-9][0-9]*$ ]] || die "$n must be a positive integer, not '${!n}'"
 done
 for t in $HTTP_THREADS_LIST; do
-  [[ $t =~ ^[1-9][0-9]*$ ]] || die "BENCH_HTTP_THREADS must list positive integers, not '$t'"
+  [[ $t =~ ^[0-9]+$ ]] || die "BENCH_HTTP_THREADS must list integers >= 0, not '$t'"
 done
 (( CONNECTIONS >= WRK_THREADS )) || die "BENCH_CONNECTIONS must be at least BENCH_WRK_THREADS"
 

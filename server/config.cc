@@ -26,10 +26,10 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
   app->add_option("--http-threads", c.http_threads,
                   "HTTP threads: they read requests and run their handlers; an idle or "
                   "half-sent connection holds none, so this bounds the requests handled at "
-                  "once, not the open connections")
+                  "once, not the open connections; 0 = automatic (2 per core, at least 4)")
       ->envname("MDPSERVE_HTTP_THREADS")
       ->capture_default_str()
-      ->check(CLI::Range(1, 1024));
+      ->check(CLI::Range(0, 1024));
   app->add_option("--idle-timeout", c.idle_timeout_seconds,
                   "seconds after which a connection that sends nothing (idle keep-alive, or a "
                   "request arriving too slowly) is closed")
