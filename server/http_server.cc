@@ -125,7 +125,8 @@ struct HttpServer::Impl {
         WriteProblem(res, MakeProblem(InvalidArgumentError("a valid bearer token is required"),
                                       ProblemKind::kUnauthorized));
       } else {
-        const std::string_view method = req.method == "HEAD" ? "GET" : req.method;
+        const std::string_view method =
+            req.method == "HEAD" ? std::string_view("GET") : std::string_view(req.method);
         const CompiledRoute* found = nullptr;
         for (const CompiledRoute& r : routes) {
           if (method == r.route->method && std::regex_match(req.path, req.matches, r.pattern)) {

@@ -1962,6 +1962,47 @@ def scenario_j(api, server, root, idle_timeout):
             [f[0] for f in final] == [413] and final[0][1].get("connection") == "close",
             str(final))
 
+    # Hostile bytes: seeded garbage and mangled requests, each on its own connection. Any
+    # answer is a well-formed status line; afterwards the service still answers.
+    rng = random.Random(11)
+    valid = (b"POST /v1/models/x/policy/batch?state=a%20b HTTP/1.1\r\nHost: x\r\n"
+             b"Content-Type: application/json\r\nContent-Length: 13\r\n\r\n{\"states\":[]}")
+    samples = []
+    for i in range(60):
+        if i % 3 == 0:
+            samples.append(bytes(rng.getrandbits(8) for _ in range(rng.randint(1, 3000))))
+        else:
+            data = bytearray(valid)
+            for _ in range(rng.randint(1, 6)):
+                at = rng.randrange(len(data))
+                op = rng.randrange(4)
+                if op == 0:
+                    data[at:at + 1] = bytes([rng.choice(b"\r\n\x00 :%?/9\xff")])
+                elif op == 1:
+                    del data[at:at + rng.randint(1, 8)]
+                elif op == 2:
+                    data[at:at] = rng.choice([b"\r\n", b"Content-Length: 99999999999\r\n",
+                                              b"Transfer-Encoding: chunked\r\n", b"%zz",
+                                              b"\r\n\r\n", b"ffffffffffffffff\r\n"])
+                else:
+                    data = data[:at]
+            samples.append(bytes(data))
+    malformed_answers = []
+    for data in samples:
+        with socket.create_connection(("127.0.0.1", port), timeout=3) as s:
+            try:
+                s.sendall(data)
+                s.shutdown(socket.SHUT_WR)
+                answer = read_response(s)
+            except OSError:
+                answer = b""
+        if answer and not re.match(rb"HTTP/1\.1 [1-5]\d\d [^\r\n]*\r\n", answer):
+            malformed_answers.append(short(answer, 80))
+    R.check("j: 60 garbage or mangled requests: every answer starts with a status line",
+            not malformed_answers, str(malformed_answers[:3]))
+    R.check("j: and the service still answers after them", server.alive() and
+            raw_exchange(port, health).status == 200)
+
     # The idle timeout closes the silent and half-sent connections; the service goes on.
     closed = sum(wait_closed(s, idle_timeout + 5) for s in silent + partial[1:])
     R.check("j: --idle-timeout %d closes all 49 silent or half-sent connections" % idle_timeout,
