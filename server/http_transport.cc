@@ -189,6 +189,12 @@ struct Conn {
   std::atomic<int64_t> last_active_ms{0};
   std::atomic<bool> busy{false};       // A thread owns it (between its event and its re-arming).
   std::atomic<bool> lingering{false};  // Answered for the last time; input is drained.
+  std::atomic<bool> writing{false};    // Waiting for the client to take the pending answer.
+  // The answer not yet written (head, then body), and how much of it has been.
+  std::string out_head;
+  std::string out_body;
+  size_t out_sent = 0;
+  bool close_after_output = false;  // Half-close and drain once the answer is written.
 };
 
 // What parsing the received bytes came to.
@@ -351,11 +357,13 @@ struct HttpTransport::Impl {
     ::epoll_ctl(epoll_fd, EPOLL_CTL_MOD, listen_fd, &listen);
   }
 
-  // Gives the connection back to the epoll set, waiting for input.
-  void Rearm(Conn* c) {
+  // Gives the connection back to the epoll set, waiting for input, or with `output` for
+  // room to write the pending answer.
+  void Rearm(Conn* c, bool output = false) {
+    c->writing.store(output);
     c->busy.store(false);
     epoll_event event{};
-    event.events = EPOLLIN | EPOLLRDHUP | EPOLLONESHOT;
+    event.events = (output ? EPOLLOUT : EPOLLIN) | EPOLLRDHUP | EPOLLONESHOT;
     event.data.ptr = c;
     if (::epoll_ctl(epoll_fd, EPOLL_CTL_MOD, c->fd, &event) != 0) Close(c);
   }
@@ -372,7 +380,8 @@ struct HttpTransport::Impl {
     ::close(owned->fd);
   }
 
-  // Closes idle connections after the idle timeout and lingering ones after kLingerMs, by
+  // Closes idle connections after the idle timeout, those whose client does not take its
+  // answer after the write timeout and lingering ones after kLingerMs, by
   // shutting their sockets down: the thread that then gets the connection's event reads
   // the end of input and closes it.
   void Reap() {
@@ -381,7 +390,9 @@ struct HttpTransport::Impl {
     std::lock_guard<std::mutex> lock(conns_mu);
     for (auto& [raw, c] : conns) {
       if (c->busy.load()) continue;
-      const int64_t limit = c->lingering.load() ? kLingerMs : idle_ms;
+      const int64_t limit = c->lingering.load() ? kLingerMs
+                            : c->writing.load() ? int64_t{options.write_timeout_seconds} * 1000
+                                                : idle_ms;
       if (now - c->last_active_ms.load() > limit) {
         ::shutdown(c->fd, SHUT_RDWR);
         c->last_active_ms = now;
@@ -389,11 +400,28 @@ struct HttpTransport::Impl {
     }
   }
 
-  // Reads, parses and answers on a connection until it has no complete request left, then
-  // re-arms it (or closes it).
+  // Writes the pending answer, then reads, parses and answers on a connection until it has
+  // no complete request left, then re-arms it (or closes it). An answer the client does not
+  // take is left pending: the thread moves on, and the connection waits for room.
   void ServeConnection(Conn* c) {
     c->busy.store(true);
     for (;;) {
+      if (c->out_sent < c->out_head.size() + c->out_body.size()) {
+        const Flushed flushed = Flush(c);
+        if (flushed == Flushed::kFailed) return Close(c);
+        if (flushed == Flushed::kPending) return Rearm(c, true);
+      }
+      if (c->close_after_output) {
+        // Half-close and drain what the client still sends until it closes too: a close
+        // with unread input would reset the connection and could destroy the answer before
+        // the client reads it.
+        c->close_after_output = false;
+        ::shutdown(c->fd, SHUT_WR);
+        c->phase = Phase::kLinger;
+        c->lingering.store(true);
+        c->in.clear();
+        c->last_active_ms = NowMs();
+      }
       if (c->phase != Phase::kLinger) {
         const Step step = Parse(c);
         if (step.kind == Step::kReady) {
@@ -696,7 +724,43 @@ struct HttpTransport::Impl {
     return WriteAll(c, &part, 1);
   }
 
-  // Writes `res` as the answer to c->req; false iff the connection failed.
+  enum class Flushed { kDone, kPending, kFailed };
+
+  // Writes as much of the pending answer as the socket takes now.
+  Flushed Flush(Conn* c) {
+    for (;;) {
+      const size_t head = c->out_head.size();
+      const size_t total = head + c->out_body.size();
+      if (c->out_sent >= total) break;
+      iovec parts[2];
+      int count = 0;
+      if (c->out_sent < head) {
+        parts[count++] = {c->out_head.data() + c->out_sent, head - c->out_sent};
+        parts[count++] = {c->out_body.data(), c->out_body.size()};
+      } else {
+        parts[count++] = {c->out_body.data() + (c->out_sent - head), total - c->out_sent};
+      }
+      msghdr message{};
+      message.msg_iov = parts;
+      message.msg_iovlen = static_cast<size_t>(count);
+      const ssize_t n = ::sendmsg(c->fd, &message, MSG_NOSIGNAL);
+      if (n < 0) {
+        if (errno == EINTR) continue;
+        if (errno == EAGAIN || errno == EWOULDBLOCK) return Flushed::kPending;
+        return Flushed::kFailed;
+      }
+      c->out_sent += static_cast<size_t>(n);
+      c->last_active_ms = NowMs();
+    }
+    std::string().swap(c->out_head);
+    std::string().swap(c->out_body);
+    c->out_sent = 0;
+    return Flushed::kDone;
+  }
+
+  // Makes `res` the answer to c->req: a streamed answer (a content provider) is written
+  // here, waiting for room up to the write timeout; any other is left pending for Flush().
+  // False iff the connection failed.
   bool WriteResponse(Conn* c, httplib::Response& res) {
     const bool head_only = c->req.method == "HEAD";
     const bool bodiless = res.status == 204 || res.status == 304 || res.status < 200;
@@ -719,8 +783,10 @@ struct HttpTransport::Impl {
     if (!streamed) {
       if (!bodiless) head += "Content-Length: " + std::to_string(res.body.size()) + "\r\n";
       head += "\r\n";
-      iovec parts[2] = {{head.data(), head.size()}, {res.body.data(), res.body.size()}};
-      return WriteAll(c, parts, head_only || bodiless ? 1 : 2);
+      c->out_head = std::move(head);
+      if (!head_only && !bodiless) c->out_body = std::move(res.body);
+      c->out_sent = 0;
+      return true;
     }
     const bool chunked = c->req.version == "HTTP/1.1";
     if (chunked) head += "Transfer-Encoding: chunked\r\n";
@@ -778,20 +844,10 @@ struct HttpTransport::Impl {
     return AfterAnswer(c);
   }
 
-  // Next request on a kept connection; otherwise half-closes it and drains what the client
-  // still sends until it closes too (a close with unread input would reset the connection
-  // and could destroy the answer before the client reads it).
+  // Ready for the next request; a connection not kept is closed once its answer is out.
   bool AfterAnswer(Conn* c) {
-    if (c->keep_alive) {
-      ResetRequest(c);
-      return true;
-    }
-    ::shutdown(c->fd, SHUT_WR);
+    c->close_after_output = !c->keep_alive;
     ResetRequest(c);
-    c->phase = Phase::kLinger;
-    c->lingering.store(true);
-    c->in.clear();
-    c->last_active_ms = NowMs();
     return true;
   }
 

@@ -33,8 +33,9 @@ Starts `mdpserve serve` processes on 127.0.0.1 with ephemeral ports (--listen 12
       goal; a method of another criterion);
   (i) the store's value limit (memory and SQLite stores);
   (j) connections: 50 silent or half-sent connections on 2 HTTP threads do not stop a new
-      request; pipelined GET, HEAD, GET answered in order; framing errors (505, 501, 400,
-      431) as problems; Expect: 100-continue, under and over the body limit; the idle
+      request, nor do 3 clients that pipeline 200 requests each and read nothing; pipelined
+      GET, HEAD, GET answered in order; framing errors (505, 501, 400, 431) as problems;
+      Expect: 100-continue, under and over the body limit; 60 garbage requests; the idle
       timeout closes silent and kept-alive connections.
 Every JSON body received is validated against the OpenAPI response schema of its operation
 and status (Draft 2020-12; the api-schema/*.schema.json files are resolved by their $id).
@@ -1886,6 +1887,26 @@ def scenario_j(api, server, root, idle_timeout):
     got = split_responses(read_response(partial[0]))
     R.check("j: a request sent in two parts is answered", [g[0] for g in got] == [200],
             str([g[0] for g in got]))
+
+    # Clients that ask and never read: their answers (pipelined copies of the 108 kB OpenAPI
+    # document, megabytes in all) wait for room in their sockets without holding the 2
+    # threads, so another client is still answered.
+    greedy = []
+    for _ in range(3):
+        g = socket.create_connection(("127.0.0.1", port), timeout=10)
+        g.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)
+        g.sendall(b"GET /v1/openapi.json HTTP/1.1\r\nHost: 127.0.0.1\r\n\r\n" * 200)
+        greedy.append(g)
+    time.sleep(0.5)
+    resp = raw_exchange(port, b"GET /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close"
+                              b"\r\n\r\n")
+    R.check("j: 3 clients that send 200 requests each and read nothing: another is answered",
+            resp.status == 200, "status %s" % resp.status)
+    first = greedy[0].recv(65536)
+    R.check("j: and theirs are answered once they read", first.startswith(b"HTTP/1.1 200"),
+            short(first, 80))
+    for g in greedy:
+        g.close()
 
     # Pipelining: three requests in one write, three answers in order; HEAD has no body.
     with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
