@@ -205,6 +205,19 @@ struct Step {
   bool keep = false;   // kRefuse: the connection stays usable after the answer.
 };
 
+// sendmsg() of the parts without SIGPIPE, again after a signal: the bytes sent, or -1 with
+// errno set.
+ssize_t Send(int fd, iovec* parts, int count) {
+  msghdr message{};
+  message.msg_iov = parts;
+  message.msg_iovlen = static_cast<size_t>(count);
+  ssize_t n;
+  do {
+    n = ::sendmsg(fd, &message, MSG_NOSIGNAL);
+  } while (n < 0 && errno == EINTR);
+  return n;
+}
+
 Step Ready() {
   Step step;
   step.kind = Step::kReady;
@@ -692,12 +705,8 @@ struct HttpTransport::Impl {
   // Writes the parts in full, waiting up to the write timeout whenever the socket is full.
   bool WriteAll(Conn* c, iovec* parts, int count) {
     while (count > 0) {
-      msghdr message{};
-      message.msg_iov = parts;
-      message.msg_iovlen = static_cast<size_t>(count);
-      const ssize_t n = ::sendmsg(c->fd, &message, MSG_NOSIGNAL);
+      const ssize_t n = Send(c->fd, parts, count);
       if (n < 0) {
-        if (errno == EINTR) continue;
         if (errno != EAGAIN && errno != EWOULDBLOCK) return false;
         pollfd waiting{c->fd, POLLOUT, 0};
         const int ready = ::poll(&waiting, 1, options.write_timeout_seconds * 1000);
@@ -740,14 +749,9 @@ struct HttpTransport::Impl {
       } else {
         parts[count++] = {c->out_body.data() + (c->out_sent - head), total - c->out_sent};
       }
-      msghdr message{};
-      message.msg_iov = parts;
-      message.msg_iovlen = static_cast<size_t>(count);
-      const ssize_t n = ::sendmsg(c->fd, &message, MSG_NOSIGNAL);
+      const ssize_t n = Send(c->fd, parts, count);
       if (n < 0) {
-        if (errno == EINTR) continue;
-        if (errno == EAGAIN || errno == EWOULDBLOCK) return Flushed::kPending;
-        return Flushed::kFailed;
+        return errno == EAGAIN || errno == EWOULDBLOCK ? Flushed::kPending : Flushed::kFailed;
       }
       c->out_sent += static_cast<size_t>(n);
       c->last_active_ms = NowMs();
