@@ -359,6 +359,7 @@ struct HttpTransport::Impl {
         }
         conns.emplace(raw, std::move(conn));
       }
+      raw->busy.store(false, std::memory_order_release);  // Hands it over (ServeConnection).
       epoll_event event{};
       event.events = EPOLLIN | EPOLLRDHUP | EPOLLONESHOT;
       event.data.ptr = raw;
@@ -374,7 +375,7 @@ struct HttpTransport::Impl {
   // room to write the pending answer.
   void Rearm(Conn* c, bool output = false) {
     c->writing.store(output);
-    c->busy.store(false);
+    c->busy.store(false, std::memory_order_release);
     epoll_event event{};
     event.events = (output ? EPOLLOUT : EPOLLIN) | EPOLLRDHUP | EPOLLONESHOT;
     event.data.ptr = c;
@@ -417,7 +418,10 @@ struct HttpTransport::Impl {
   // no complete request left, then re-arms it (or closes it). An answer the client does not
   // take is left pending: the thread moves on, and the connection waits for room.
   void ServeConnection(Conn* c) {
-    c->busy.store(true);
+    // Acquires what the connection's previous owner released in Rearm() (or Accept()): the
+    // epoll set hands the connection over, and this makes the handover visible to the
+    // memory model (and to ThreadSanitizer) too.
+    c->busy.exchange(true, std::memory_order_acq_rel);
     for (;;) {
       if (c->out_sent < c->out_head.size() + c->out_body.size()) {
         const Flushed flushed = Flush(c);
