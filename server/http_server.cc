@@ -40,6 +40,17 @@ Problem ProblemWithStatus(int status, const std::string& reason) {
   return p;
 }
 
+// What the exception being handled says (inside a catch block only).
+std::string CurrentException() {
+  try {
+    throw;
+  } catch (const std::exception& e) {
+    return e.what();
+  } catch (...) {
+    return "unknown exception";
+  }
+}
+
 }  // namespace
 
 void WriteJson(httplib::Response& res, int status, const std::string& body) {
@@ -149,8 +160,8 @@ struct HttpServer::Impl {
           }
         }
       }
-    } catch (const std::exception& e) {
-      spdlog::error("{} {}: unhandled exception: {}", req.method, req.path, e.what());
+    } catch (...) {
+      spdlog::error("{} {}: unhandled exception: {}", req.method, req.path, CurrentException());
       res = httplib::Response();
       WriteProblem(res, MakeProblem(InternalError("internal error")));
     }

@@ -838,9 +838,7 @@ struct HttpTransport::Impl {
       res.status = 500;
     }
     if (res.status == -1) res.status = 200;
-    const bool written = WriteResponse(c, res);
-    if (!written) return false;
-    return AfterAnswer(c);
+    return Reply(c, res);
   }
 
   bool AnswerRefusal(Conn* c, const Step& step) {
@@ -848,12 +846,13 @@ struct HttpTransport::Impl {
     httplib::Response res;
     res.status = step.status;
     refusal(c->req, step.status, step.reason, res);
-    if (!WriteResponse(c, res)) return false;
-    return AfterAnswer(c);
+    return Reply(c, res);
   }
 
-  // Ready for the next request; a connection not kept is closed once its answer is out.
-  bool AfterAnswer(Conn* c) {
+  // Writes (or leaves pending) the answer, then makes the connection ready for its next
+  // request; one not kept is closed once its answer is out. False iff the connection failed.
+  bool Reply(Conn* c, httplib::Response& res) {
+    if (!WriteResponse(c, res)) return false;
     c->close_after_output = !c->keep_alive;
     ResetRequest(c);
     return true;
