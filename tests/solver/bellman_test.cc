@@ -9,6 +9,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <limits>
 #include <random>
 #include <string>
 #include <vector>
@@ -261,6 +262,51 @@ TEST(BellmanKernelsTest, CsrCombineComputesItsDefinition) {
                                                sign, x.data(), y.data(), 2, k);
       for (StateId s = 0; s < n; ++s) ASSERT_NEAR(y[s], expected[s], tolerance) << "row " << s;
       EXPECT_NEAR(diff, expected_diff, tolerance);
+    }
+  }
+}
+
+// The portable copy sums a row of up to 8 entries over a fixed window of 8 that reaches into
+// the rows after it, keeping only the row's own products. Here every state has one row of one
+// outcome, to the state after it, except that states 0-9 have two outcomes (to 10 and 11)
+// and states 10 and 11 lead to 12, whose value is +infinity. The windows of states 0-9 read
+// entries that point at 12 (p * inf would be NaN, 0 * inf too), yet their values must be the
+// definition's finite ones; 10 and 11 back up to +infinity, the rest are finite.
+TEST(BellmanKernelsTest, ShortRowsIgnoreTheEntriesAfterThemEvenInfiniteOnes) {
+  const StateId n = 40;
+  ModelSpec spec;
+  spec.action_names = {"go"};
+  spec.criterion.discount = 0.5;
+  for (StateId s = 0; s < n; ++s) {
+    spec.AddState("s" + std::to_string(s));
+    spec.AddStateAction(0, 1.0 + s);
+    if (s < 10) {
+      spec.AddOutcome(10, 0.25);
+      spec.AddOutcome(11, 0.75);
+    } else if (s < 12) {
+      spec.AddOutcome(12, 1.0);
+    } else {
+      spec.AddOutcome((s + 1) % n, 1.0);
+    }
+  }
+  const Model m = testing::MustBuild(spec);
+  std::vector<double> in(n);
+  for (StateId s = 0; s < n; ++s) in[s] = 2.0 * s;
+  in[12] = std::numeric_limits<double>::infinity();
+  for (KernelSet k : {KernelSet::kPortable, KernelSet::kGather}) {
+    for (int threads : {1, 2}) {
+      std::vector<double> out(n, -1.0);
+      internal::SyncSweep(m, in.data(), out.data(), threads, k);
+      for (StateId s = 0; s < 10; ++s) {
+        // r + g * (0.25 * 20 + 0.75 * 22), from the values set above.
+        ASSERT_EQ(out[s], 1.0 + s + 0.5 * (0.25 * 20.0 + 0.75 * 22.0)) << "state " << s;
+      }
+      EXPECT_EQ(out[10], std::numeric_limits<double>::infinity());
+      EXPECT_EQ(out[11], std::numeric_limits<double>::infinity());
+      for (StateId s = 12; s < n; ++s) {
+        ASSERT_TRUE(std::isfinite(out[s])) << "state " << s;
+        ASSERT_EQ(out[s], 1.0 + s + 0.5 * in[(s + 1) % n]) << "state " << s;
+      }
     }
   }
 }
