@@ -503,8 +503,8 @@ void AddSolveOptions(CLI::App* cmd, SolveArgs& a) {
       ->capture_default_str()
       ->check(CLI::Range(0.0, 1e6));
   cmd->add_option("--threads", a.options.threads,
-                  "threads for sweeps; 0 = automatic (all cores for models of at least 262144 "
-                  "transitions, else 1)")
+                  "threads for sweeps; 0 = automatic (every core this process may run on, for "
+                  "models of at least 262144 transitions, else 1)")
       ->capture_default_str()
       ->check(CLI::Range(0, 256));
   cmd->add_option("--detail", a.detail, "summary | full (full adds the per-state Q-table)")

@@ -18,15 +18,16 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->capture_default_str()
       ->check(CLI::Range(1, 256));
   app->add_option("--solver-threads", c.solver_threads,
-                  "threads each solve uses for sweeps; 0 = automatic (all cores for models of "
-                  "at least 262144 transitions, else 1)")
+                  "threads each solve uses for sweeps; 0 = automatic (every core the process "
+                  "may run on, for models of at least 262144 transitions, else 1)")
       ->envname("MDPSERVE_SOLVER_THREADS")
       ->capture_default_str()
       ->check(CLI::Range(0, 256));
   app->add_option("--http-threads", c.http_threads,
                   "HTTP threads: they read requests and run their handlers; an idle or "
                   "half-sent connection holds none, so this bounds the requests handled at "
-                  "once, not the open connections; 0 = automatic (2 per core, at least 4)")
+                  "once, not the open connections; 0 = automatic (2 per core the process may "
+                  "run on, at least 4)")
       ->envname("MDPSERVE_HTTP_THREADS")
       ->capture_default_str()
       ->check(CLI::Range(0, 1024));

@@ -8,13 +8,13 @@
 #include <regex>
 #include <string>
 #include <string_view>
-#include <thread>
 #include <utility>
 #include <vector>
 
 #include "server/canonical.h"
 #include "server/http_context.h"
 #include "server/http_transport.h"
+#include "solver/options.h"
 
 namespace mdp::server {
 namespace {
@@ -105,10 +105,9 @@ struct HttpServer::Impl {
     t.port = o.port;
     // Fewer threads answer small requests faster: each event wakes another sleeping thread
     // (scripts/bench_queries.sh, 64 connections: 4 threads 74-89k req/s, p99 1.7-2.0 ms; 16
-    // threads 49-52k, p99 2.4-3.0 ms). A few more than the cores, for handlers that wait.
-    t.threads = o.threads > 0
-                    ? o.threads
-                    : static_cast<int>(std::max(4u, 2 * std::thread::hardware_concurrency()));
+    // threads 49-52k, p99 2.4-3.0 ms). A few more than the cores it may run on, for handlers
+    // that wait.
+    t.threads = o.threads > 0 ? o.threads : std::max(4, 2 * UsableCpuCount());
     t.body_limit = o.body_limit;
     t.idle_timeout_seconds = o.idle_timeout_seconds;
     return t;

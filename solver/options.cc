@@ -1,7 +1,11 @@
 #include "solver/options.h"
 
+#include <sched.h>
+
+#include <algorithm>
 #include <cmath>
 #include <string>
+#include <thread>
 
 namespace mdp {
 namespace {
@@ -16,6 +20,17 @@ Status CheckBound(const OptionBound& bound, double value) {
 }
 
 }  // namespace
+
+int UsableCpuCount() {
+#ifdef __linux__
+  cpu_set_t set;
+  CPU_ZERO(&set);
+  if (sched_getaffinity(0, sizeof(set), &set) == 0 && CPU_COUNT(&set) > 0) {
+    return CPU_COUNT(&set);
+  }
+#endif
+  return static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
+}
 
 Status CheckSolveOptions(const SolveOptions& o) {
   const double values[] = {o.tolerance,

@@ -62,9 +62,14 @@ struct SolveOptions {
   Renumber renumber = Renumber::kAuto;
 };
 
-// Models with at least this many transitions (CSR entries) sweep on every hardware thread
-// when SolveOptions::threads is 0.
+// Models with at least this many transitions (CSR entries) sweep on every usable CPU
+// (UsableCpuCount) when SolveOptions::threads is 0.
 inline constexpr int64_t kAutoThreadsMinEntries = int64_t{1} << 18;
+
+// CPUs the calling thread may run on: the count in its affinity mask (taskset, a container's
+// cpuset), which can be fewer than the machine's online CPUs; the online count where the
+// mask cannot be read. At least 1.
+int UsableCpuCount();
 
 struct OptionBound {
   std::string_view name;

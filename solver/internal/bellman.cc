@@ -4,7 +4,6 @@
 
 #include <algorithm>
 #include <cstdint>
-#include <thread>
 
 #if defined(__GNUC__) && (defined(__x86_64__) || defined(__i386__))
 #include <immintrin.h>
@@ -13,10 +12,7 @@
 
 namespace mdp::internal {
 
-int ThreadCount(int threads) {
-  if (threads > 0) return threads;
-  return static_cast<int>(std::max(1u, std::thread::hardware_concurrency()));
-}
+int ThreadCount(int threads) { return threads > 0 ? threads : UsableCpuCount(); }
 
 namespace {
 

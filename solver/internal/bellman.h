@@ -98,7 +98,7 @@ double GaussSeidelSweep(const Model& m, double* v, KernelSet k);
 double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads,
                              KernelSet k);
 
-// Resolved thread count: 0 means all hardware threads.
+// Resolved thread count: 0 means every usable CPU (UsableCpuCount, options.h).
 int ThreadCount(int threads);
 
 }  // namespace mdp::internal

@@ -1,11 +1,14 @@
 // Tests the run control shared by all methods (solver/internal/run_control.h via Solve()):
 // progress callbacks, cancellation, iteration and time limits, option checks.
 #include <gtest/gtest.h>
+#include <sched.h>
 
 #include <algorithm>
 #include <cmath>
 #include <string>
+#include <thread>
 
+#include "solver/internal/bellman.h"
 #include "solver/solver.h"
 #include "tests/testing/status_matchers.h"
 #include "tests/testing/test_models.h"
@@ -139,6 +142,49 @@ TEST(SolveControlTest, BlockGaussSeidelMeetsItsBoundAndIsDeterministic) {
     Result<Solution> jacobi = Solve(m, vi);
     ASSERT_OK(jacobi);
     EXPECT_LT(a->sweeps, jacobi->sweeps);
+  }
+}
+
+// threads = 0 means every CPU the solving thread may run on (its affinity mask, as set by
+// taskset or a container's cpuset), not every CPU of the machine. A thread pinned to one CPU
+// sees 1 and resolves automatic threads to 1 even for a model large enough to sweep on all;
+// pinned to two CPUs it sees 2. Needs a machine with at least 2 CPUs in this process's mask.
+TEST(SolveControlTest, AutomaticThreadsFollowTheAffinityMask) {
+  cpu_set_t mine;
+  CPU_ZERO(&mine);
+  ASSERT_EQ(sched_getaffinity(0, sizeof(mine), &mine), 0);
+  std::vector<int> cpus;
+  for (int c = 0; c < CPU_SETSIZE; ++c) {
+    if (CPU_ISSET(c, &mine)) cpus.push_back(c);
+  }
+  EXPECT_EQ(UsableCpuCount(), static_cast<int>(cpus.size()));
+  if (cpus.size() < 2) GTEST_SKIP() << "needs 2 CPUs in the affinity mask, has " << cpus.size();
+  testing::RandomModelOptions o;
+  o.states = 30000;
+  o.max_actions = 4;
+  o.max_outcomes = 8;
+  const Model m = testing::MustBuild(testing::RandomSpec(11, o));
+  ASSERT_GE(m.num_entries(), kAutoThreadsMinEntries);
+  for (size_t width : {size_t{1}, size_t{2}}) {
+    int seen = -1, resolved = -1, solved_with = -1;
+    std::thread pinned([&] {  // A new thread, so the test's own mask is left alone.
+      cpu_set_t set;
+      CPU_ZERO(&set);
+      for (size_t k = 0; k < width; ++k) CPU_SET(cpus[k], &set);
+      if (sched_setaffinity(0, sizeof(set), &set) != 0) return;
+      seen = UsableCpuCount();
+      resolved = internal::ThreadCount(0);
+      SolveOptions options;
+      options.method = Method::kValueIteration;
+      options.max_iterations = 1;
+      Result<Solution> s = Solve(m, options);
+      if (s.ok()) solved_with = s->options.threads;
+    });
+    pinned.join();
+    SCOPED_TRACE("pinned to " + std::to_string(width) + " CPU(s)");
+    EXPECT_EQ(seen, static_cast<int>(width));
+    EXPECT_EQ(resolved, static_cast<int>(width));
+    EXPECT_EQ(solved_with, static_cast<int>(width));
   }
 }
 
