@@ -24,8 +24,10 @@
 # BENCH_CRITERIA_STRUCTURES ("random local": solved under the average, total and finite-horizon
 # criteria too), BENCH_CRITERIA_STATES (the run's state count), BENCH_CRITERIA_TIME_LIMIT (120 s
 # per solve), BENCH_SKIP_CRITERIA=1,
-# BENCH_QUERY_CONNECTIONS ("64 16": wrk's keep-alive connections, one query run per count;
-# the first count saturates the 2 cores, the second keeps fewer requests in flight),
+# BENCH_QUERY_RUNS ("64:1 16:1 64:2": one query run per CONNECTIONS:WRK_THREADS pair, wrk's
+# keep-alive connections and its threads; 64 connections saturate the 2 cores, 16 keep fewer
+# requests in flight; with 2 wrk threads the load generator competes with the servers for
+# both cores, with 1 it takes at most one core's worth),
 # BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1, BENCH_SKIP_MEMORY=1.
 set -euo pipefail
 
@@ -66,6 +68,13 @@ EXTRA_SOLVE_STRUCTURES=${BENCH_EXTRA_SOLVE_STRUCTURES-random grid inventory}
 EXTRA_METHODS=${BENCH_EXTRA_METHODS:-value_iteration,policy_iteration,gauss_seidel}
 INGEST_STATES=${BENCH_INGEST_STATES:-100000}
 MEMORY_STATES=${BENCH_MEMORY_STATES:-$STATES}
+QUERY_RUNS=${BENCH_QUERY_RUNS:-64:1 16:1 64:2}
+for spec in $QUERY_RUNS; do  # Checked now, not after the long steps.
+  if ! [[ $spec =~ ^[1-9][0-9]*:[1-9][0-9]*$ ]]; then
+    echo "bench.sh: BENCH_QUERY_RUNS lists CONNECTIONS:WRK_THREADS pairs, not '$spec'" >&2
+    exit 2
+  fi
+done
 STARTED=$(date +%s)
 
 WORK=$(mktemp -d "${TMPDIR:-/tmp}/mdp-bench.XXXXXX")
@@ -182,13 +191,17 @@ if [[ ${BENCH_SKIP_MEMORY:-0} != 1 ]]; then
 fi
 
 if [[ ${BENCH_SKIP_QUERIES:-0} != 1 ]]; then
-  for connections in ${BENCH_QUERY_CONNECTIONS:-64 16}; do
-    say "queries against nginx, $connections connections (scripts/bench_queries.sh)"
+  for spec in $QUERY_RUNS; do
+    [[ $spec =~ ^([1-9][0-9]*):([1-9][0-9]*)$ ]]
+    connections=${BASH_REMATCH[1]} wrk_threads=${BASH_REMATCH[2]}
+    label="queries-c$connections-t$wrk_threads"
+    say "queries against nginx, $connections connections, $wrk_threads wrk thread(s)" \
+      "(scripts/bench_queries.sh)"
     run env MDPSERVE="$BIN/mdpserve" BENCH_KEEP=0 BENCH_SECONDS="$QUERY_SECONDS" \
       BENCH_ROUNDS="$QUERY_ROUNDS" BENCH_CONNECTIONS="$connections" \
-      bash "$ROOT/scripts/bench_queries.sh" \
-      >"$WORK/queries-c$connections.txt" 2>"$WORK/queries-c$connections.err"
-    sample_load "queries-c$connections"
+      BENCH_WRK_THREADS="$wrk_threads" bash "$ROOT/scripts/bench_queries.sh" \
+      >"$WORK/$label.txt" 2>"$WORK/$label.err"
+    sample_load "$label"
   done
 fi
 

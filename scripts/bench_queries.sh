@@ -12,7 +12,8 @@
 # Environment (all optional):
 #   BENCH_SECONDS=10          duration of each wrk run
 #   BENCH_CONNECTIONS=64      keep-alive connections wrk holds open
-#   BENCH_WRK_THREADS=2       wrk threads
+#   BENCH_WRK_THREADS=1       wrk threads (on this 2-core machine, 2 wrk threads and the
+#                             server's threads compete for both cores: see BENCHMARKS.md)
 #   BENCH_HTTP_THREADS="0"    mdpserve --http-threads values to try, space separated (0: the
 #                             server's automatic count)
 #   BENCH_ROUNDS=1            nginx/mdpserve pairs per --http-threads value (alternating)
@@ -20,6 +21,11 @@
 #   MDPSERVE=build/bin/mdpserve
 #   BENCH_MODEL=api-schema/examples/pump-maintenance.json
 #   BENCH_KEEP=1              keep the temporary directory (configs, logs, wrk output)
+#   BENCH_SERVER_CPUS=""      CPU list (taskset -c) for both servers; empty: not pinned
+#   BENCH_WRK_CPUS=""         CPU list (taskset -c) for wrk; empty: not pinned. With both set
+#                             to disjoint lists (e.g. 0 and 1), the load generator no longer
+#                             takes CPU time from the server it measures; nginx and mdpserve
+#                             still get the very same CPUs.
 #
 # Targets, per mdpserve run against the nginx run next to it: ratio of requests/s >= 0.6,
 # mdpserve p99 latency < 2 ms, and zero errors: non-2xx responses, wrk socket errors, and
@@ -31,12 +37,14 @@ set -euo pipefail
 ROOT=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
 SECONDS_PER_RUN=${BENCH_SECONDS:-10}
 CONNECTIONS=${BENCH_CONNECTIONS:-64}
-WRK_THREADS=${BENCH_WRK_THREADS:-2}
+WRK_THREADS=${BENCH_WRK_THREADS:-1}
 HTTP_THREADS_LIST=${BENCH_HTTP_THREADS:-0}
 ROUNDS=${BENCH_ROUNDS:-1}
 NGINX_WORKERS=${BENCH_NGINX_WORKERS:-2}
 MDPSERVE=${MDPSERVE:-$ROOT/build/bin/mdpserve}
 MODEL=${BENCH_MODEL:-$ROOT/api-schema/examples/pump-maintenance.json}
+SERVER_CPUS=${BENCH_SERVER_CPUS:-}
+WRK_CPUS=${BENCH_WRK_CPUS:-}
 
 TARGET_RATIO=0.6
 TARGET_P99_US=2000
@@ -50,6 +58,9 @@ for t in $HTTP_THREADS_LIST; do
   [[ $t =~ ^[0-9]+$ ]] || die "BENCH_HTTP_THREADS must list integers >= 0, not '$t'"
 done
 (( CONNECTIONS >= WRK_THREADS )) || die "BENCH_CONNECTIONS must be at least BENCH_WRK_THREADS"
+for n in SERVER_CPUS WRK_CPUS; do
+  [[ -z ${!n} || ${!n} =~ ^[0-9]+([-,][0-9]+)*$ ]] || die "BENCH_$n must be a CPU list like 0 or 0-1 or 0,2, not '${!n}'"
+done
 
 # --- Tools -------------------------------------------------------------------------------
 NGINX_BIN=$(command -v nginx || true)
@@ -57,6 +68,7 @@ NGINX_BIN=$(command -v nginx || true)
 missing=()
 command -v wrk >/dev/null || missing+=(wrk)
 [[ -n $NGINX_BIN ]] || missing+=(nginx)
+[[ -z $SERVER_CPUS$WRK_CPUS ]] || command -v taskset >/dev/null || missing+=(taskset)
 for tool in curl python3 timeout cmp; do command -v "$tool" >/dev/null || missing+=("$tool"); done
 if (( ${#missing[@]} > 0 )); then
   die "missing tools: ${missing[*]} (run: bash scripts/install-deps.sh)"
@@ -102,6 +114,13 @@ trap cleanup EXIT
 trap 'exit 130' INT
 trap 'exit 143' TERM
 
+# Runs "$@" on the CPUs of list $1 (taskset -c), or as is when $1 is empty.
+on_cpus() {
+  local cpus=$1
+  shift
+  if [[ -n $cpus ]]; then exec taskset -c "$cpus" "$@"; else exec "$@"; fi
+}
+
 free_port() {
   python3 -c 'import socket; s=socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1]); s.close()'
 }
@@ -122,8 +141,8 @@ MDP_PID="" MDP_PORT="" MODEL_ID=""
 start_mdpserve() {  # $1 = --http-threads
   local threads=$1 dir="$WORK/mdpserve-$1"
   mkdir -p "$dir"
-  "$MDPSERVE" serve --listen 127.0.0.1:0 --port-file "$dir/port" --memory-store \
-    --preload "$MODEL" --log-level warn --http-threads "$threads" \
+  (on_cpus "$SERVER_CPUS" "$MDPSERVE" serve --listen 127.0.0.1:0 --port-file "$dir/port" --memory-store \
+    --preload "$MODEL" --log-level warn --http-threads "$threads") \
     >"$dir/stdout" 2>"$dir/stderr" &
   MDP_PID=$!
   PIDS+=("$MDP_PID")
@@ -171,6 +190,7 @@ build_type=$(grep -s '^CMAKE_BUILD_TYPE' "$(dirname "$MDPSERVE")/../CMakeCache.t
 echo "mdpserve:   $MDPSERVE${build_type:+ ($build_type build)}"
 echo "model:      $MODEL (${#STATES[@]} states)"
 echo "load:       wrk -t$WRK_THREADS -c$CONNECTIONS -d${SECONDS_PER_RUN}s --latency, keep-alive"
+echo "cpus:       servers ${SERVER_CPUS:-not pinned}, wrk ${WRK_CPUS:-not pinned}"
 
 # --- The answer nginx serves: one real best-action answer from mdpserve -------------------
 first_threads=${HTTP_THREADS_LIST%% *}
@@ -231,8 +251,8 @@ http {
   }
 }
 EOF
-  "$NGINX_BIN" -p "$WORK/nginx" -c "$WORK/nginx/nginx.conf" -e "$WORK/nginx/error.log" \
-    >"$WORK/nginx/stdout" 2>"$WORK/nginx/stderr" &
+  (on_cpus "$SERVER_CPUS" "$NGINX_BIN" -p "$WORK/nginx" -c "$WORK/nginx/nginx.conf" \
+     -e "$WORK/nginx/error.log") >"$WORK/nginx/stdout" 2>"$WORK/nginx/stderr" &
   NGINX_PID=$!
   PIDS+=("$NGINX_PID")
   if wait_http_ok "$NGINX_PID" "http://127.0.0.1:$NGINX_PORT/answer.json"; then break; fi
@@ -319,9 +339,9 @@ run_wrk() {  # $1 = label, $2 = server PID, $3 = server port, rest = paths
   shift 3
   ovf0=$(listen_overflows)
   cpu0=$(cpu_ticks "$pid")
-  timeout $((SECONDS_PER_RUN + 30)) wrk -t"$WRK_THREADS" -c"$CONNECTIONS" \
+  (on_cpus "$WRK_CPUS" timeout $((SECONDS_PER_RUN + 30)) wrk -t"$WRK_THREADS" -c"$CONNECTIONS" \
     -d"${SECONDS_PER_RUN}s" --latency -s "$WORK/rotate.lua" "http://127.0.0.1:$port" \
-    -- "$@" >"$out" 2>&1 &
+    -- "$@") >"$out" 2>&1 &
   wrk_pid=$!
   PIDS+=("$wrk_pid")
   third=$(python3 -c "print($SECONDS_PER_RUN / 3)")

@@ -10,7 +10,8 @@ nothing is typed in by hand. Inputs in WORK (all written by scripts/bench.sh):
                           scripts/model_to_arrays.py)
   service-memory.json     service_memory.py
   kernels.json            kernel_bench --benchmark_format=json
-  queries-cN.txt          scripts/bench_queries.sh output with N keep-alive connections
+  queries-cN-tW.txt       scripts/bench_queries.sh output with N keep-alive connections
+                          and W wrk threads
   load.txt                "LABEL LOAD1 LOAD5 LOAD15" lines sampled during the run
   commands.txt            the commands run, one per line
 
@@ -96,12 +97,14 @@ class Run:
         self.memory = load_json(memory) if os.path.exists(memory) else None
         kernels = os.path.join(work, "kernels.json")
         self.kernels = json.load(open(kernels)) if os.path.exists(kernels) else None
-        # Connection count -> bench_queries.sh output, in the order bench.sh ran them.
+        # (connections, wrk threads) -> bench_queries.sh output; fewer wrk threads first,
+        # then more connections first (bench.sh's default order).
         self.queries = {}
-        for path in glob.glob(os.path.join(work, "queries-c*.txt")):
-            count = int(re.search(r"queries-c(\d+)\.txt$", path).group(1))
-            self.queries[count] = open(path).read()
-        self.queries = dict(sorted(self.queries.items(), reverse=True))
+        for path in glob.glob(os.path.join(work, "queries-c*-t*.txt")):
+            m = re.search(r"queries-c(\d+)-t(\d+)\.txt$", path)
+            if m:
+                self.queries[(int(m.group(1)), int(m.group(2)))] = open(path).read()
+        self.queries = dict(sorted(self.queries.items(), key=lambda kv: (kv[0][1], -kv[0][0])))
         self.load = [line.split() for line in open(os.path.join(work, "load.txt"))]
         self.commands = [line.rstrip("\n") for line in open(os.path.join(work, "commands.txt"))]
 
@@ -251,16 +254,16 @@ def targets_section(run, solve_structure):
         rows.append((title, "not measured", "not measured"))
     # 4. Queries, one row per connection count.
     title = "Best-action queries: >= 0.6x nginx's requests/s, p99 < 2 ms"
-    for connections, text in run.queries.items():
+    for key, text in run.queries.items():
         q = parse_queries(text)
         if not q["pairs"]:
-            rows.append((f"{title} ({connections} connections)", "not measured", "not measured"))
+            rows.append((f"{title} ({query_run_label(key)})", "not measured", "not measured"))
             continue
         ratio = statistics.median(r for _, _, r in q["pairs"])
         p99 = max(m_row["p99_ms"] for _, m_row, _ in q["pairs"])
         errors = sum(m_row["errors"] for _, m_row, _ in q["pairs"])
         ok = ratio >= TARGET_QUERY_RATIO and p99 < TARGET_P99_MS and errors == 0
-        rows.append((f"{title} ({connections} keep-alive connections)",
+        rows.append((f"{title} ({query_run_label(key)})",
                      f"{ratio:.2f}x nginx (median of {len(q['pairs'])} round(s)), worst p99 "
                      f"{p99:.2f} ms, {errors} errors", verdict(ok)))
     if not run.queries:
@@ -584,13 +587,19 @@ def parse_queries(text):
     return {"pairs": pairs, "header": header}
 
 
+def query_run_label(key):
+    connections, wrk_threads = key
+    return (f"{connections} keep-alive connections, {wrk_threads} wrk "
+            f"thread{'s' if wrk_threads != 1 else ''}")
+
+
 def queries_section(run):
     if not run.queries:
         return "Not measured in this run (see the bench_queries.sh output in the run directory)."
     out = []
-    for connections, text in run.queries.items():
+    for key, text in run.queries.items():
         q = parse_queries(text)
-        out += [f"### {connections} keep-alive connections", ""]
+        out += [f"### {query_run_label(key)}", ""]
         if not q["pairs"]:
             out += ["Not measured (see the bench_queries.sh output in the run directory).", ""]
             continue
@@ -750,10 +759,14 @@ def report(run, mode, started, finished, solve_structure):
         "## Best-action queries against nginx",
         "`scripts/bench_queries.sh`: wrk against mdpserve's policy endpoint and against nginx "
         "serving the same answer as a static file, alternating; errors = non-2xx + socket "
-        "errors + stalled connections. One run per connection count (BENCH_QUERY_CONNECTIONS): "
-        "the larger count saturates both cores, which wrk shares with the server, so its "
-        "latencies are mostly waiting in the run queue; the smaller count keeps fewer requests "
-        "in flight (each connection still sends its next request as soon as it is answered).",
+        "errors + stalled connections. One run per pair of connection count and wrk thread "
+        "count (BENCH_QUERY_RUNS). Each connection sends its next request as soon as it is "
+        "answered, so 64 connections keep both cores busy and 16 keep fewer requests in "
+        "flight. wrk runs on the same 2 cores as the server it measures: with one wrk thread "
+        "it takes at most one core's worth of CPU time; with two, wrk's threads and the "
+        "server's compete for both cores, and the latencies then mostly measure waiting in "
+        "the kernel's run queue (nginx's as much as mdpserve's). The target is shown for each "
+        "run; neither is picked for it.",
         "",
         queries_section(run),
         "",
