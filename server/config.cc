@@ -26,8 +26,8 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
   app->add_option("--http-threads", c.http_threads,
                   "HTTP threads: they read requests and run their handlers; an idle or "
                   "half-sent connection holds none, so this bounds the requests handled at "
-                  "once, not the open connections; 0 = automatic (2 per core the process may "
-                  "run on, at least 4)")
+                  "once, not the open connections; 0 = automatic (1 per core the process may "
+                  "run on, at least 2)")
       ->envname("MDPSERVE_HTTP_THREADS")
       ->capture_default_str()
       ->check(CLI::Range(0, 1024));

@@ -103,11 +103,15 @@ struct HttpServer::Impl {
     TransportOptions t;
     t.host = o.host;
     t.port = o.port;
-    // Fewer threads answer small requests faster: each event wakes another sleeping thread
-    // (scripts/bench_queries.sh, 64 connections: 4 threads 74-89k req/s, p99 1.7-2.0 ms; 16
-    // threads 49-52k, p99 2.4-3.0 ms). A few more than the cores it may run on, for handlers
-    // that wait.
-    t.threads = o.threads > 0 ? o.threads : std::max(4, 2 * UsableCpuCount());
+    // One thread per core the process may run on, as nginx runs one worker per core: a thread
+    // more than the cores is preempted while it holds a connection, and that request waits a
+    // whole time slice. scripts/bench_queries.sh with 1 wrk thread, 2-core host, 5 s rounds
+    // alternating with nginx: 16 connections, 2 threads p99 0.43-1.20 ms in 6 rounds against
+    // 4 threads 0.43-6.06 ms (4 of 6 rounds over 2 ms); 64 connections, p99 1.44-1.71 ms
+    // against 1.41-1.50 ms. (Earlier, with 2 wrk threads: 4 threads 74-89k req/s, 8 threads
+    // 67-69k, 16 threads 49-52k.) At least 2, so that one handler busy for long (parsing a
+    // large upload) does not stop the others.
+    t.threads = o.threads > 0 ? o.threads : std::max(2, UsableCpuCount());
     t.body_limit = o.body_limit;
     t.idle_timeout_seconds = o.idle_timeout_seconds;
     return t;

@@ -20,7 +20,8 @@ namespace mdp::server {
 struct HttpOptions {
   std::string host = "127.0.0.1";
   int port = 8080;                         // 0: any free port (see HttpServer::port()).
-  int threads = 0;  // Threads that read requests and run handlers; 0: 2 per usable core, at least 4.
+  // Threads that read requests and run handlers; 0: 1 per usable core, at least 2.
+  int threads = 0;
   int64_t body_limit = int64_t{256} << 20;  // Bytes; larger bodies get 413.
   int idle_timeout_seconds = 30;           // A connection silent this long is closed.
   std::string token;                       // Non-empty: required as "Bearer <token>".
