@@ -59,7 +59,8 @@ for t in $HTTP_THREADS_LIST; do
 done
 (( CONNECTIONS >= WRK_THREADS )) || die "BENCH_CONNECTIONS must be at least BENCH_WRK_THREADS"
 for n in SERVER_CPUS WRK_CPUS; do
-  [[ -z ${!n} || ${!n} =~ ^[0-9]+([-,][0-9]+)*$ ]] || die "BENCH_$n must be a CPU list like 0 or 0-1 or 0,2, not '${!n}'"
+  [[ -z ${!n} || ${!n} =~ ^[0-9]+([-,][0-9]+)*$ ]] ||
+    die "BENCH_$n must be a CPU list like 0 or 0-1 or 0,2, not '${!n}'"
 done
 
 # --- Tools -------------------------------------------------------------------------------
@@ -141,8 +142,8 @@ MDP_PID="" MDP_PORT="" MODEL_ID=""
 start_mdpserve() {  # $1 = --http-threads
   local threads=$1 dir="$WORK/mdpserve-$1"
   mkdir -p "$dir"
-  (on_cpus "$SERVER_CPUS" "$MDPSERVE" serve --listen 127.0.0.1:0 --port-file "$dir/port" --memory-store \
-    --preload "$MODEL" --log-level warn --http-threads "$threads") \
+  (on_cpus "$SERVER_CPUS" "$MDPSERVE" serve --listen 127.0.0.1:0 --port-file "$dir/port" \
+    --memory-store --preload "$MODEL" --log-level warn --http-threads "$threads") \
     >"$dir/stdout" 2>"$dir/stderr" &
   MDP_PID=$!
   PIDS+=("$MDP_PID")
