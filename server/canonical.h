@@ -17,6 +17,23 @@ namespace mdp::server {
 
 // REQUIRES: `spec` passed Validate().
 std::string EncodeCanonicalModel(const ModelSpec& spec);
+// Hands out the canonical text of a model a piece at a time, resuming where the previous
+// piece ended, so that the text never exists whole and the caller can stop between pieces
+// (a slow reader) and go on later. Not thread-safe; `spec` must outlive the cursor.
+class CanonicalModelCursor {
+ public:
+  // REQUIRES: `spec` passed Validate().
+  explicit CanonicalModelCursor(const ModelSpec& spec) : spec_(spec) {}
+  // Appends the next piece to `out`: whole states until `out` holds at least `piece_bytes`
+  // bytes (one state may take it past that), or the rest of the text. True iff text is left.
+  bool Next(std::string& out, size_t piece_bytes);
+
+ private:
+  const ModelSpec& spec_;
+  StateId next_state_ = -1;  // -1: the head is not written yet.
+  bool finished_ = false;
+};
+
 // The same text handed to `sink` in pieces of about `piece_bytes`, in order, so that it never
 // exists whole. Stops as soon as `sink` returns false (a client that went away) and returns
 // false then; true once the whole text was handed over. REQUIRES: `spec` passed Validate().

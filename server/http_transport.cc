@@ -3,7 +3,6 @@
 #include <netdb.h>
 #include <netinet/in.h>
 #include <netinet/tcp.h>
-#include <poll.h>
 #include <spdlog/spdlog.h>
 #include <sys/epoll.h>
 #include <sys/eventfd.h>
@@ -194,6 +193,11 @@ struct Conn {
   std::string out_head;
   std::string out_body;
   size_t out_sent = 0;
+  // A streamed answer still producing its body: called for the next piece once the previous
+  // one is written, with the number of body bytes produced so far.
+  httplib::ContentProvider stream;
+  bool stream_chunked = false;  // Pieces are framed as chunks (HTTP/1.1), else sent as is.
+  size_t stream_offset = 0;
   bool close_after_output = false;  // Half-close and drain once the answer is written.
 };
 
@@ -422,11 +426,20 @@ struct HttpTransport::Impl {
     // epoll set hands the connection over, and this makes the handover visible to the
     // memory model (and to ThreadSanitizer) too.
     c->busy.exchange(true, std::memory_order_acq_rel);
+    bool produced = false;  // A piece of a streamed answer was produced on this turn.
     for (;;) {
       if (c->out_sent < c->out_head.size() + c->out_body.size()) {
         const Flushed flushed = Flush(c);
         if (flushed == Flushed::kFailed) return Close(c);
         if (flushed == Flushed::kPending) return Rearm(c, true);
+      }
+      if (c->stream) {
+        // One piece per turn, then back to the set: a client that takes a long answer
+        // quickly shares the thread with the others instead of keeping it to the end.
+        if (produced) return Rearm(c, true);
+        produced = true;
+        if (!Produce(c)) return Close(c);
+        continue;
       }
       if (c->close_after_output) {
         // Half-close and drain what the client still sends until it closes too: a close
@@ -442,13 +455,14 @@ struct HttpTransport::Impl {
       if (c->phase != Phase::kLinger) {
         const Step step = Parse(c);
         if (step.kind == Step::kReady) {
-          if (!Answer(c)) return Close(c);
+          Answer(c);
           continue;
         }
         if (step.kind == Step::kRefuse) {
-          if (!AnswerRefusal(c, step)) return Close(c);
+          AnswerRefusal(c, step);
           continue;
         }
+        if (c->out_sent < c->out_head.size()) continue;  // "100 Continue" goes out first.
       }
       // Need more input. A body of declared length is read straight into its buffer.
       ssize_t n;
@@ -698,43 +712,12 @@ struct HttpTransport::Impl {
         }
       }
       if (EqualsIgnoreCase(TrimWhitespace(req.get_header_value("Expect")), "100-continue")) {
-        static constexpr std::string_view kContinue = "HTTP/1.1 100 Continue\r\n\r\n";
-        iovec part{const_cast<char*>(kContinue.data()), kContinue.size()};
-        if (!WriteAll(c, &part, 1)) return Refuse(400, "the connection failed");
+        // Left pending like an answer: ServeConnection() writes it before reading on.
+        c->out_head = "HTTP/1.1 100 Continue\r\n\r\n";
+        c->out_sent = 0;
       }
     }
     return Step{};
-  }
-
-  // Writes the parts in full, waiting up to the write timeout whenever the socket is full.
-  bool WriteAll(Conn* c, iovec* parts, int count) {
-    while (count > 0) {
-      const ssize_t n = Send(c->fd, parts, count);
-      if (n < 0) {
-        if (errno != EAGAIN && errno != EWOULDBLOCK) return false;
-        pollfd waiting{c->fd, POLLOUT, 0};
-        const int ready = ::poll(&waiting, 1, options.write_timeout_seconds * 1000);
-        if (ready <= 0 || (waiting.revents & (POLLERR | POLLHUP | POLLNVAL)) != 0) return false;
-        continue;
-      }
-      c->last_active_ms = NowMs();
-      size_t sent = static_cast<size_t>(n);
-      while (count > 0 && sent >= parts->iov_len) {
-        sent -= parts->iov_len;
-        ++parts;
-        --count;
-      }
-      if (count > 0) {
-        parts->iov_base = static_cast<char*>(parts->iov_base) + sent;
-        parts->iov_len -= sent;
-      }
-    }
-    return true;
-  }
-
-  bool WriteString(Conn* c, std::string_view text) {
-    iovec part{const_cast<char*>(text.data()), text.size()};
-    return WriteAll(c, &part, 1);
   }
 
   enum class Flushed { kDone, kPending, kFailed };
@@ -766,10 +749,11 @@ struct HttpTransport::Impl {
     return Flushed::kDone;
   }
 
-  // Makes `res` the answer to c->req: a streamed answer (a content provider) is written
-  // here, waiting for room up to the write timeout; any other is left pending for Flush().
-  // False iff the connection failed.
-  bool WriteResponse(Conn* c, httplib::Response& res) {
+  // Makes `res` the answer to c->req, left pending for Flush(); a streamed answer's body (a
+  // content provider) is asked for a piece at a time by Produce(), once the head and each
+  // piece before are written. (A resource releaser of `res` would run as `res` goes, before
+  // the stream ends; no route sets one.)
+  void WriteResponse(Conn* c, httplib::Response& res) {
     const bool head_only = c->req.method == "HEAD";
     const bool bodiless = res.status == 204 || res.status == 304 || res.status < 200;
     const bool streamed = static_cast<bool>(res.content_provider_) && !bodiless;
@@ -794,41 +778,65 @@ struct HttpTransport::Impl {
       c->out_head = std::move(head);
       if (!head_only && !bodiless) c->out_body = std::move(res.body);
       c->out_sent = 0;
-      return true;
+      return;
     }
-    const bool chunked = c->req.version == "HTTP/1.1";
-    if (chunked) head += "Transfer-Encoding: chunked\r\n";
+    c->stream_chunked = c->req.version == "HTTP/1.1";
+    if (c->stream_chunked) head += "Transfer-Encoding: chunked\r\n";
     head += "\r\n";
-    if (!WriteString(c, head)) return false;
-    if (head_only) return true;
-    bool ok = true;
-    bool done = false;
-    httplib::DataSink sink;
-    sink.write = [&](const char* data, size_t size) {
-      if (!ok || done) return false;
-      if (size == 0) return true;
-      if (!chunked) return ok = WriteString(c, std::string_view(data, size));
-      char frame[32];
-      const int length = std::snprintf(frame, sizeof frame, "%zx\r\n", size);
-      static constexpr char kCrLf[] = "\r\n";
-      iovec parts[3] = {{frame, static_cast<size_t>(length)},
-                        {const_cast<char*>(data), size},
-                        {const_cast<char*>(kCrLf), 2}};
-      return ok = WriteAll(c, parts, 3);
-    };
-    sink.done = [&] {
-      if (ok && !done && chunked) ok = WriteString(c, "0\r\n\r\n");
-      done = true;
-    };
-    sink.is_writable = [&] { return ok; };
-    const bool provided = res.content_provider_(0, 0, sink);
-    res.content_provider_success_ = ok && provided && done;
-    if (!res.content_provider_success_) c->keep_alive = false;
-    return ok && provided && done;
+    c->out_head = std::move(head);
+    c->out_sent = 0;
+    if (!head_only) {
+      c->stream = std::move(res.content_provider_);
+      c->stream_offset = 0;
+    }
   }
 
-  // Runs the handler on the complete request and writes its answer.
-  bool Answer(Conn* c) {
+  // Asks the streamed answer for its next piece and leaves it pending for Flush(), framed
+  // as a chunk (and the last chunk once the answer is done). False iff the answer failed:
+  // it is cut short, and the connection must close so that the client sees that.
+  bool Produce(Conn* c) {
+    bool done = false;
+    size_t produced = 0;
+    httplib::DataSink sink;
+    sink.write = [&](const char* data, size_t size) {
+      if (done) return false;
+      if (size == 0) return true;
+      if (c->stream_chunked) {
+        char frame[32];
+        const int length = std::snprintf(frame, sizeof frame, "%zx\r\n", size);
+        c->out_body.append(frame, static_cast<size_t>(length));
+      }
+      c->out_body.append(data, size);
+      if (c->stream_chunked) c->out_body += "\r\n";
+      produced += size;
+      return true;
+    };
+    sink.done = [&] {
+      if (!done && c->stream_chunked) c->out_body += "0\r\n\r\n";
+      done = true;
+    };
+    sink.is_writable = [] { return true; };
+    bool ok = false;
+    try {
+      ok = c->stream(c->stream_offset, 0, sink);
+    } catch (const std::exception& e) {
+      spdlog::error("http: a streamed answer threw: {}", e.what());
+    } catch (...) {
+      spdlog::error("http: a streamed answer threw");
+    }
+    c->stream_offset += produced;
+    // A piece that neither carries data nor ends the answer would be asked for forever.
+    if (!ok || (produced == 0 && !done)) {
+      c->stream = nullptr;
+      std::string().swap(c->out_body);
+      return false;
+    }
+    if (done) c->stream = nullptr;
+    return true;
+  }
+
+  // Runs the handler on the complete request and leaves its answer pending.
+  void Answer(Conn* c) {
     httplib::Response res;
     try {
       handler(c->req, std::move(c->body), res);
@@ -838,24 +846,23 @@ struct HttpTransport::Impl {
       res.status = 500;
     }
     if (res.status == -1) res.status = 200;
-    return Reply(c, res);
+    Reply(c, res);
   }
 
-  bool AnswerRefusal(Conn* c, const Step& step) {
+  void AnswerRefusal(Conn* c, const Step& step) {
     if (!step.keep) c->keep_alive = false;
     httplib::Response res;
     res.status = step.status;
     refusal(c->req, step.status, step.reason, res);
-    return Reply(c, res);
+    Reply(c, res);
   }
 
-  // Writes (or leaves pending) the answer, then makes the connection ready for its next
-  // request; one not kept is closed once its answer is out. False iff the connection failed.
-  bool Reply(Conn* c, httplib::Response& res) {
-    if (!WriteResponse(c, res)) return false;
+  // Leaves the answer pending, then makes the connection ready for its next request; one
+  // not kept is closed once its answer is out.
+  void Reply(Conn* c, httplib::Response& res) {
+    WriteResponse(c, res);
     c->close_after_output = !c->keep_alive;
     ResetRequest(c);
-    return true;
   }
 
   TransportOptions options;

@@ -1,11 +1,13 @@
 // HttpTransport: the HTTP/1.1 connection handling under HttpServer (internal to the HTTP
 // layer). One epoll set holds the listening socket and every open connection; a fixed pool
 // of threads waits on it, and the thread woken for a connection reads what has arrived,
-// parses it and, once a request is complete, runs the application's handler and writes the
-// answer before it gives the connection back to the set (EPOLLONESHOT: one thread at a time
-// per connection). A connection that is idle, or whose request is still arriving, holds no
-// thread: any number of slow or silent clients cannot take the threads away from the others
-// (with a thread per connection, 128 silent connections stopped the service for 30 s).
+// parses it and, once a request is complete, runs the application's handler and writes what
+// the socket takes of the answer before it gives the connection back to the set (EPOLLONESHOT:
+// one thread at a time per connection). A connection that is idle, whose request is still
+// arriving or whose answer waits for the client to read holds no thread: any number of slow
+// or silent clients cannot take the threads away from the others (with a thread per
+// connection, 128 silent connections stopped the service for 30 s). A streamed answer (a
+// content provider) is asked for one piece per turn, once the client has taken the last.
 //
 // Framing follows RFC 9112: Content-Length or the chunked coding for request bodies (held to
 // the body limit, a chunked body over it read to its end and dropped so that the connection
@@ -40,6 +42,8 @@ struct TransportOptions {
 // A complete request: method, target, path (percent-decoded), params (the query string,
 // decoded), version and headers filled in; `body` is the whole request body. The handler
 // fills `res`. Called on a transport thread; may block (it holds only its own connection).
+// A content provider set in `res` is called again for each further piece, on any transport
+// thread (one at a time), after the handler has returned: it must own what it reads.
 using RequestHandler =
     std::function<void(httplib::Request& req, std::string body, httplib::Response& res)>;
 // A request the transport refuses before any handler sees it (status 400, 413, 414, 431,

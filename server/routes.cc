@@ -114,14 +114,25 @@ void GetModelDocument(HttpContext& ctx, const Request& req, Response& res) {
   if (!document.ok()) return WriteProblem(res, document.status());
   if (document->spec == nullptr) return WriteJson(res, 200, document->text);
   res.status = 200;
-  res.set_chunked_content_provider(
-      "application/json", [spec = document->spec](size_t, httplib::DataSink& sink) {
-        const bool sent = WriteCanonicalModelPieces(
-            *spec, size_t{1} << 20,
-            [&sink](std::string_view piece) { return sink.write(piece.data(), piece.size()); });
-        if (sent) sink.done();
-        return sent;  // False closes the connection: the client went away.
-      });
+  // One piece per call: the transport asks for the next one only once the client has taken
+  // the previous one, and serves other connections in between.
+  struct Stream {
+    explicit Stream(std::shared_ptr<const ModelSpec> model)
+        : spec(std::move(model)), cursor(*spec) {}
+    std::shared_ptr<const ModelSpec> spec;  // Declared before `cursor`, which reads it.
+    CanonicalModelCursor cursor;
+    std::string piece;
+  };
+  auto stream = std::make_shared<Stream>(document->spec);
+  res.set_chunked_content_provider("application/json", [stream](size_t, httplib::DataSink& sink) {
+    stream->piece.clear();
+    const bool more = stream->cursor.Next(stream->piece, size_t{1} << 20);
+    if (!sink.write(stream->piece.data(), stream->piece.size())) {
+      return false;  // Closes the connection.
+    }
+    if (!more) sink.done();
+    return true;
+  });
 }
 
 void DeleteModel(HttpContext& ctx, const Request& req, Response& res) {

@@ -1146,6 +1146,24 @@ def chunked(data, piece=1000):
     return out + b"0\r\n\r\n"
 
 
+def dechunked(data):
+    """The body carried by `data` in the chunked transfer coding (no trailer fields), or None
+    if it is not well framed or not complete."""
+    out = b""
+    while True:
+        line, sep, data = data.partition(b"\r\n")
+        try:
+            size = int(line, 16)
+        except ValueError:
+            return None
+        if not sep or len(data) < size + 2 or data[size:size + 2] != b"\r\n":
+            return None
+        if size == 0:
+            return out if data == b"\r\n" else None
+        out += data[:size]
+        data = data[size + 2:]
+
+
 def upload_head(headers):
     return (b"POST /v1/models HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n"
             b"Content-Type: application/json\r\n" + headers + b"\r\n")
@@ -1908,6 +1926,70 @@ def scenario_j(api, server, root, idle_timeout):
             short(first, 80))
     for g in greedy:
         g.close()
+
+    # The same with streamed answers: a model's document is written a piece at a time as the
+    # client takes it (Transfer-Encoding: chunked), so clients that ask for it and never read
+    # must not hold the threads either.
+    doc = json.dumps(random_model(8, n=80)).encode()
+    resp = raw_exchange(port, upload_head(b"Content-Length: %d\r\n" % len(doc)) + doc)
+    model_id = json.loads(resp.body or b"{}").get("id", "")
+    R.check("j: a model of %d bytes uploaded" % len(doc), resp.status == 201 and model_id,
+            "%s %s" % (resp.status, short(resp.body)))
+    get_document = b"GET /v1/models/%s/document HTTP/1.1\r\nHost: 127.0.0.1\r\n\r\n" % (
+        model_id.encode())
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(get_document[:-2] + b"Connection: close\r\n\r\n")
+        head, _, body = read_response(s, whole=True).partition(b"\r\n\r\n")
+    document = dechunked(body)
+    R.check("j: the document is streamed (chunked) and decodes to the canonical model",
+            head.startswith(b"HTTP/1.1 200") and b"transfer-encoding: chunked" in head.lower()
+            and document is not None and json.loads(document)["states"][0]["name"] == "cell-00",
+            short(head + b" | " + body, 200))
+    greedy = []
+    for _ in range(3):
+        g = socket.create_connection(("127.0.0.1", port), timeout=10)
+        g.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)
+        g.sendall(get_document * 200)
+        greedy.append(g)
+    time.sleep(0.5)
+    resp = raw_exchange(port, b"GET /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close"
+                              b"\r\n\r\n")
+    R.check("j: 3 clients that ask for a streamed document 200 times each and read nothing: "
+            "another is answered", resp.status == 200, "status %s" % resp.status)
+    # Once a client reads, its answers arrive in full and in order: the first three of the
+    # 200 are each the whole document.
+    greedy[0].settimeout(10)
+    data = b""
+    while data.count(b"\r\n0\r\n\r\n") < 3:
+        part = greedy[0].recv(1 << 20)
+        if not part:
+            break
+        data += part
+    answers = data.split(b"\r\n0\r\n\r\n")[:3]
+    bodies = [dechunked(a.partition(b"\r\n\r\n")[2] + b"\r\n0\r\n\r\n") for a in answers]
+    R.check("j: and theirs arrive whole once they read (3 of 200 checked)",
+            len(bodies) == 3 and all(b == document for b in bodies),
+            "%d answers, %s" % (len(bodies), [len(b or b"") for b in bodies]))
+    for g in greedy:
+        g.close()
+    # HEAD of a streamed answer: the head alone, and the connection reads on.
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(get_document.replace(b"GET ", b"HEAD ", 1) + health[:-2] +
+                  b"Connection: close\r\n\r\n")
+        data = read_response(s, whole=True)
+    head, _, rest = data.partition(b"\r\n\r\n")
+    after = split_responses(rest)
+    R.check("j: HEAD of a streamed document: its head, no body, then the next answer",
+            head.startswith(b"HTTP/1.1 200") and b"transfer-encoding: chunked" in head.lower()
+            and [a[0] for a in after] == [200] and after[0][2] == b'{"status":"ok"}',
+            short(data, 200))
+    # HTTP/1.0 has no chunked coding: the body goes unframed and the connection closes.
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(get_document.replace(b"HTTP/1.1", b"HTTP/1.0", 1))
+        head, _, body = read_response(s, whole=True).partition(b"\r\n\r\n")
+    R.check("j: HTTP/1.0: the streamed document unframed, then the connection closes",
+            head.startswith(b"HTTP/1.1 200") and b"transfer-encoding" not in head.lower() and
+            b"connection: close" in head.lower() and body == document, short(head, 200))
 
     # Pipelining: three requests in one write, three answers in order; HEAD has no body.
     with socket.create_connection(("127.0.0.1", port), timeout=10) as s:

@@ -241,6 +241,37 @@ TEST(ModelStoreCodecTest, CanonicalPiecesMakeTheWholeTextAndStopWhenAsked) {
   EXPECT_LT(partial.size(), canonical.size());
 }
 
+// The document route asks the cursor for one piece per turn: each call resumes where the
+// last ended; with a piece size of 1 byte, the head comes alone and then one state per call.
+TEST(ModelStoreCodecTest, CursorResumesWherePreviousPieceEnded) {
+  testing::RandomModelOptions options;
+  options.states = 200;
+  options.max_outcomes = 4;
+  const ModelSpec spec = testing::RandomSpec(5, options);
+  const std::string canonical = EncodeCanonicalModel(spec);
+  CanonicalModelCursor cursor(spec);
+  std::string joined;
+  int calls = 0;
+  bool more = true;
+  while (more) {
+    std::string piece;
+    more = cursor.Next(piece, 1);
+    ++calls;
+    ASSERT_FALSE(piece.empty());
+    if (calls == 1) {
+      const std::string_view head_end = "\"states\":[";
+      ASSERT_GE(piece.size(), head_end.size());
+      EXPECT_EQ(piece.substr(piece.size() - head_end.size()), head_end) << "the head alone";
+    }
+    joined += piece;
+  }
+  EXPECT_EQ(calls, spec.num_states() + 1);
+  EXPECT_EQ(joined, canonical);
+  std::string after;
+  EXPECT_FALSE(cursor.Next(after, 1));
+  EXPECT_TRUE(after.empty()) << after;
+}
+
 ModelSpec SmallSpec() {
   ModelDecodeResult decoded = DecodeModel(ReadFile(Examples().front()));
   EXPECT_TRUE(decoded.ok());
