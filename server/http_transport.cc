@@ -744,7 +744,11 @@ struct HttpTransport::Impl {
       c->last_active_ms = NowMs();
     }
     std::string().swap(c->out_head);
-    std::string().swap(c->out_body);
+    if (c->stream) {
+      c->out_body.clear();  // Its capacity takes the next piece.
+    } else {
+      std::string().swap(c->out_body);
+    }
     c->out_sent = 0;
     return Flushed::kDone;
   }
