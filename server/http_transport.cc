@@ -427,6 +427,10 @@ struct HttpTransport::Impl {
     // memory model (and to ThreadSanitizer) too.
     c->busy.exchange(true, std::memory_order_acq_rel);
     bool produced = false;  // A piece of a streamed answer was produced on this turn.
+    // The last recv() on this turn returned less than it asked for: the socket was empty
+    // then, so another recv() would only say EAGAIN. Re-arming instead costs one system call
+    // less per request, and loses nothing: EPOLL_CTL_MOD reports input that came since.
+    bool drained = false;
     for (;;) {
       if (c->out_sent < c->out_head.size() + c->out_body.size()) {
         const Flushed flushed = Flush(c);
@@ -465,10 +469,12 @@ struct HttpTransport::Impl {
         if (c->out_sent < c->out_head.size()) continue;  // "100 Continue" goes out first.
       }
       // Need more input. A body of declared length is read straight into its buffer.
+      if (drained) return Rearm(c);
       ssize_t n;
+      size_t want = kReadBytes;
       if (c->phase == Phase::kBody && c->in.empty()) {
         const size_t old = c->body.size();
-        const size_t want = static_cast<size_t>(std::min<uint64_t>(c->remaining, kReadBytes));
+        want = static_cast<size_t>(std::min<uint64_t>(c->remaining, kReadBytes));
         c->body.resize(old + want);
         n = ::recv(c->fd, c->body.data() + old, want, 0);
         c->body.resize(old + static_cast<size_t>(std::max<ssize_t>(n, 0)));
@@ -482,6 +488,7 @@ struct HttpTransport::Impl {
       }
       if (n > 0) {
         c->last_active_ms = NowMs();
+        drained = static_cast<size_t>(n) < want;
         continue;
       }
       if (n < 0 && errno == EINTR) continue;
