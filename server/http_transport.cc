@@ -320,6 +320,10 @@ struct HttpTransport::Impl {
   }
 
   void Work() {
+    // Where this thread's recv() puts a request head: appending what arrived to the
+    // connection's buffer copies only those bytes, where growing the buffer by kReadBytes
+    // zero-filled 256 KiB per read (a quarter of the server's time under query load).
+    const std::unique_ptr<char[]> scratch(new char[kReadBytes]);
     epoll_event event{};
     while (!stopping.load()) {
       const int n = ::epoll_wait(epoll_fd, &event, 1, -1);
@@ -334,7 +338,7 @@ struct HttpTransport::Impl {
         Accept();
         continue;
       }
-      ServeConnection(static_cast<Conn*>(event.data.ptr));
+      ServeConnection(static_cast<Conn*>(event.data.ptr), scratch.get());
     }
   }
 
@@ -421,7 +425,8 @@ struct HttpTransport::Impl {
   // Writes the pending answer, then reads, parses and answers on a connection until it has
   // no complete request left, then re-arms it (or closes it). An answer the client does not
   // take is left pending: the thread moves on, and the connection waits for room.
-  void ServeConnection(Conn* c) {
+  // `scratch`: the calling thread's buffer of kReadBytes.
+  void ServeConnection(Conn* c, char* scratch) {
     // Acquires what the connection's previous owner released in Rearm() (or Accept()): the
     // epoll set hands the connection over, and this makes the handover visible to the
     // memory model (and to ThreadSanitizer) too.
@@ -480,11 +485,8 @@ struct HttpTransport::Impl {
         c->body.resize(old + static_cast<size_t>(std::max<ssize_t>(n, 0)));
         if (n > 0) c->remaining -= static_cast<uint64_t>(n);
       } else {
-        const size_t old = c->in.size();
-        c->in.resize(old + kReadBytes);
-        n = ::recv(c->fd, c->in.data() + old, kReadBytes, 0);
-        c->in.resize(old + static_cast<size_t>(std::max<ssize_t>(n, 0)));
-        if (n > 0 && c->phase == Phase::kLinger) c->in.clear();
+        n = ::recv(c->fd, scratch, kReadBytes, 0);
+        if (n > 0 && c->phase != Phase::kLinger) c->in.append(scratch, static_cast<size_t>(n));
       }
       if (n > 0) {
         c->last_active_ms = NowMs();
