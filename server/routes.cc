@@ -102,15 +102,15 @@ void ListModels(HttpContext& ctx, const Request&, Response& res) {
   WriteJson(res, 200, Json{{"models", std::move(list)}}.dump());
 }
 
-void GetModel(HttpContext& ctx, const Request& req, Response& res) {
-  Result<ModelRecord> model = ctx.service.GetModel(req.matches[1], false);
+void GetModel(HttpContext& ctx, const Request&, Response& res) {
+  Result<ModelRecord> model = ctx.service.GetModel(ctx.path_params[0], false);
   if (!model.ok()) return WriteProblem(res, model.status());
   WriteJson(res, 200, EncodeModelRecord(*model).dump());
 }
 
 // Sent in chunks of 1 MiB as it is written: the text of a 1M-state model is 2.4 GB.
-void GetModelDocument(HttpContext& ctx, const Request& req, Response& res) {
-  Result<PlanningService::ModelDocument> document = ctx.service.GetModelDocument(req.matches[1]);
+void GetModelDocument(HttpContext& ctx, const Request&, Response& res) {
+  Result<PlanningService::ModelDocument> document = ctx.service.GetModelDocument(ctx.path_params[0]);
   if (!document.ok()) return WriteProblem(res, document.status());
   if (document->spec == nullptr) return WriteJson(res, 200, document->text);
   res.status = 200;
@@ -135,8 +135,8 @@ void GetModelDocument(HttpContext& ctx, const Request& req, Response& res) {
   });
 }
 
-void DeleteModel(HttpContext& ctx, const Request& req, Response& res) {
-  Status deleted = ctx.service.DeleteModel(req.matches[1]);
+void DeleteModel(HttpContext& ctx, const Request&, Response& res) {
+  Status deleted = ctx.service.DeleteModel(ctx.path_params[0]);
   if (!deleted.ok()) return WriteProblem(res, deleted);
   res.status = 204;
 }
@@ -184,21 +184,21 @@ void ListJobs(HttpContext& ctx, const Request& req, Response& res) {
   WriteJson(res, 200, Json{{"jobs", std::move(list)}}.dump());
 }
 
-void GetJob(HttpContext& ctx, const Request& req, Response& res) {
-  Result<JobView> job = ctx.service.GetJob(req.matches[1]);
+void GetJob(HttpContext& ctx, const Request&, Response& res) {
+  Result<JobView> job = ctx.service.GetJob(ctx.path_params[0]);
   if (!job.ok()) return WriteProblem(res, job.status());
   WriteJson(res, 200, EncodeJobView(*job).dump());
 }
 
-void CancelJob(HttpContext& ctx, const Request& req, Response& res) {
-  Result<JobView> job = ctx.service.CancelJob(req.matches[1]);
+void CancelJob(HttpContext& ctx, const Request&, Response& res) {
+  Result<JobView> job = ctx.service.CancelJob(ctx.path_params[0]);
   if (!job.ok()) return WriteProblem(res, job.status());
   WriteJson(res, 200, EncodeJobView(*job).dump());
 }
 
 void BestAction(HttpContext& ctx, const Request& req, Response& res) {
   if (!req.has_param("state")) return WriteProblem(res, MissingParam("state"));
-  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], Param(req, "solution_id"));
+  Result<Plan> plan = ctx.service.GetPlan(ctx.path_params[0], Param(req, "solution_id"));
   if (!plan.ok()) return WriteProblem(res, plan.status());
   const StateId s = FindStateOr404(*plan, Param(req, "state"), res);
   if (s < 0) return;
@@ -227,7 +227,7 @@ void BestActionBatch(HttpContext& ctx, const Request& req, Response& res) {
   if (read.root.contains("solution_id") && read.root["solution_id"].is_string()) {
     solution_id = read.root["solution_id"].get<std::string>();
   }
-  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], solution_id);
+  Result<Plan> plan = ctx.service.GetPlan(ctx.path_params[0], solution_id);
   if (!plan.ok()) return WriteProblem(res, plan.status());
   Result<int64_t> stage = BatchStage(read.root, *plan);
   if (!stage.ok()) return WriteProblem(res, stage.status());
@@ -259,7 +259,7 @@ void BestActionBatch(HttpContext& ctx, const Request& req, Response& res) {
 
 void Explain(HttpContext& ctx, const Request& req, Response& res) {
   if (!req.has_param("state")) return WriteProblem(res, MissingParam("state"));
-  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], Param(req, "solution_id"));
+  Result<Plan> plan = ctx.service.GetPlan(ctx.path_params[0], Param(req, "solution_id"));
   if (!plan.ok()) return WriteProblem(res, plan.status());
   const StateId s = FindStateOr404(*plan, Param(req, "state"), res);
   if (s < 0) return;
@@ -268,22 +268,22 @@ void Explain(HttpContext& ctx, const Request& req, Response& res) {
   WriteJson(res, 200, EncodeExplain(*plan, s, *stage).dump());
 }
 
-void ListSolutions(HttpContext& ctx, const Request& req, Response& res) {
-  Result<std::vector<SolutionRecord>> list = ctx.service.ListSolutions(req.matches[1]);
+void ListSolutions(HttpContext& ctx, const Request&, Response& res) {
+  Result<std::vector<SolutionRecord>> list = ctx.service.ListSolutions(ctx.path_params[0]);
   if (!list.ok()) return WriteProblem(res, list.status());
   Json out = Json::array();
   for (const SolutionRecord& s : *list) out.push_back(EncodeSolutionRecord(s));
   WriteJson(res, 200, Json{{"solutions", std::move(out)}}.dump());
 }
 
-void GetSolution(HttpContext& ctx, const Request& req, Response& res) {
-  Result<SolutionRecord> record = ctx.service.GetSolutionRecord(req.matches[1], req.matches[2]);
+void GetSolution(HttpContext& ctx, const Request&, Response& res) {
+  Result<SolutionRecord> record = ctx.service.GetSolutionRecord(ctx.path_params[0], ctx.path_params[1]);
   if (!record.ok()) return WriteProblem(res, record.status());
   WriteJson(res, 200, EncodeSolutionRecord(*record).dump());
 }
 
 void GetSolutionTables(HttpContext& ctx, const Request& req, Response& res) {
-  Result<Plan> plan = ctx.service.GetPlan(req.matches[1], req.matches[2]);
+  Result<Plan> plan = ctx.service.GetPlan(ctx.path_params[0], ctx.path_params[1]);
   if (!plan.ok()) return WriteProblem(res, plan.status());
   Result<int64_t> stage = QueryStage(req, *plan);
   if (!stage.ok()) return WriteProblem(res, stage.status());
@@ -297,7 +297,7 @@ void GetSolutionTables(HttpContext& ctx, const Request& req, Response& res) {
 
 void Verify(HttpContext& ctx, const Request& req, Response& res) {
   if (!RequireJsonBody(req, res)) return;
-  Result<VerifyStart> done = ctx.service.Verify(req.matches[1], req.body);
+  Result<VerifyStart> done = ctx.service.Verify(ctx.path_params[0], req.body);
   if (!done.ok()) return WriteProblem(res, BodyProblem(req, done.status()));
   if (!done->errors.empty()) {
     return WriteProblem(res, MakeProblem(InvalidArgumentError("the candidate does not fit the model"),
@@ -313,14 +313,14 @@ void Verify(HttpContext& ctx, const Request& req, Response& res) {
 void Compare(HttpContext& ctx, const Request& req, Response& res) {
   if (!req.has_param("with")) return WriteProblem(res, MissingParam("with"));
   Result<ComparisonReport> report = ctx.service.Compare(
-      req.matches[1], Param(req, "solution_id"), Param(req, "with"), Param(req, "with_solution_id"));
+      ctx.path_params[0], Param(req, "solution_id"), Param(req, "with"), Param(req, "with_solution_id"));
   if (!report.ok()) return WriteProblem(res, report.status());
   WriteJson(res, 200, EncodeComparison(*report).dump());
 }
 
 void StartSimulation(HttpContext& ctx, const Request& req, Response& res) {
   if (!RequireJsonBody(req, res)) return;
-  Result<SimulateStart> start = ctx.service.StartSimulation(req.matches[1], req.body);
+  Result<SimulateStart> start = ctx.service.StartSimulation(ctx.path_params[0], req.body);
   if (!start.ok()) return WriteProblem(res, start.status());
   if (!start->errors.empty()) {
     return WriteProblem(
@@ -352,38 +352,30 @@ void OpenApi(HttpContext&, const Request&, Response& res) { WriteJson(res, 200, 
 }  // namespace
 
 const std::vector<Route>& ApiRoutes() {
-  // The hot query first: cpp-httplib tries the patterns of a method in this order.
+  // The hot query first: HttpServer tries the routes in this order.
   static const std::vector<Route> routes = {
-      {"GET", "/v1/models/{id}/policy", "/v1/models/([0-9a-zA-Z_-]{1,64})/policy", BestAction},
-      {"POST", "/v1/models", "/v1/models", UploadModel, UploadModelBody},
-      {"GET", "/v1/models", "/v1/models", ListModels},
-      {"GET", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", GetModel},
-      {"DELETE", "/v1/models/{id}", "/v1/models/([0-9a-zA-Z_-]{1,64})", DeleteModel},
-      {"GET", "/v1/models/{id}/document", "/v1/models/([0-9a-zA-Z_-]{1,64})/document",
-       GetModelDocument},
-      {"POST", "/v1/models/{id}/policy/batch",
-       "/v1/models/([0-9a-zA-Z_-]{1,64})/policy/batch", BestActionBatch},
-      {"GET", "/v1/models/{id}/policy/explain",
-       "/v1/models/([0-9a-zA-Z_-]{1,64})/policy/explain", Explain},
-      {"GET", "/v1/models/{id}/solutions", "/v1/models/([0-9a-zA-Z_-]{1,64})/solutions",
-       ListSolutions},
-      {"GET", "/v1/models/{id}/solutions/{sid}",
-       "/v1/models/([0-9a-zA-Z_-]{1,64})/solutions/([0-9a-zA-Z_-]{1,64})", GetSolution},
-      {"GET", "/v1/models/{id}/solutions/{sid}/tables",
-       "/v1/models/([0-9a-zA-Z_-]{1,64})/solutions/([0-9a-zA-Z_-]{1,64})/tables",
-       GetSolutionTables},
-      {"POST", "/v1/models/{id}/verify", "/v1/models/([0-9a-zA-Z_-]{1,64})/verify", Verify},
-      {"GET", "/v1/models/{id}/compare", "/v1/models/([0-9a-zA-Z_-]{1,64})/compare", Compare},
-      {"POST", "/v1/models/{id}/simulations", "/v1/models/([0-9a-zA-Z_-]{1,64})/simulations",
-       StartSimulation},
-      {"POST", "/v1/jobs", "/v1/jobs", StartSolve},
-      {"GET", "/v1/jobs", "/v1/jobs", ListJobs},
-      {"GET", "/v1/jobs/{id}", "/v1/jobs/([0-9a-zA-Z_-]{1,64})", GetJob},
-      {"POST", "/v1/jobs/{id}/cancel", "/v1/jobs/([0-9a-zA-Z_-]{1,64})/cancel", CancelJob},
-      {"GET", "/healthz", "/healthz", Healthz},
-      {"GET", "/readyz", "/readyz", Readyz},
-      {"GET", "/metrics", "/metrics", Metrics},
-      {"GET", "/v1/openapi.json", "/v1/openapi.json", OpenApi},
+      {"GET", "/v1/models/{id}/policy", BestAction},
+      {"POST", "/v1/models", UploadModel, UploadModelBody},
+      {"GET", "/v1/models", ListModels},
+      {"GET", "/v1/models/{id}", GetModel},
+      {"DELETE", "/v1/models/{id}", DeleteModel},
+      {"GET", "/v1/models/{id}/document", GetModelDocument},
+      {"POST", "/v1/models/{id}/policy/batch", BestActionBatch},
+      {"GET", "/v1/models/{id}/policy/explain", Explain},
+      {"GET", "/v1/models/{id}/solutions", ListSolutions},
+      {"GET", "/v1/models/{id}/solutions/{sid}", GetSolution},
+      {"GET", "/v1/models/{id}/solutions/{sid}/tables", GetSolutionTables},
+      {"POST", "/v1/models/{id}/verify", Verify},
+      {"GET", "/v1/models/{id}/compare", Compare},
+      {"POST", "/v1/models/{id}/simulations", StartSimulation},
+      {"POST", "/v1/jobs", StartSolve},
+      {"GET", "/v1/jobs", ListJobs},
+      {"GET", "/v1/jobs/{id}", GetJob},
+      {"POST", "/v1/jobs/{id}/cancel", CancelJob},
+      {"GET", "/healthz", Healthz},
+      {"GET", "/readyz", Readyz},
+      {"GET", "/metrics", Metrics},
+      {"GET", "/v1/openapi.json", OpenApi},
   };
   return routes;
 }
