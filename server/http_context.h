@@ -33,11 +33,11 @@ using BodyHandler = std::function<void(HttpContext&, const httplib::Request&, st
                                        httplib::Response&)>;
 
 struct Route {
-  const char* method;    // "GET", "POST", "DELETE".
+  const char* method;  // "GET", "POST", "DELETE".
   // The path template, also the route's name in metrics and logs: "/v1/models/{id}". A
   // {parameter} segment matches 1 to 64 of [0-9a-zA-Z_-]; any other segment itself.
   const char* route;
-  Handler handler;       // For requests without a body (and every request if no body_handler).
+  Handler handler;  // For requests without a body (and every request if no body_handler).
   BodyHandler body_handler = nullptr;  // POST only: for requests with a body.
 };
 
@@ -46,8 +46,7 @@ const std::vector<Route>& ApiRoutes();
 
 // True iff `path` (percent-decoded) matches the template `route`; then `params` holds its
 // {parameter} segments in order. At most params->size() parameters.
-bool MatchRoute(std::string_view route, std::string_view path,
-                std::array<std::string, 2>* params);
+bool MatchRoute(std::string_view route, std::string_view path, std::array<std::string, 2>* params);
 
 void WriteJson(httplib::Response& res, int status, const std::string& body);
 void WriteProblem(httplib::Response& res, const Problem& problem);

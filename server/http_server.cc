@@ -77,8 +77,7 @@ bool RequireJsonBody(const httplib::Request& req, httplib::Response& res) {
 
 // Segment by segment, where std::regex_match took 7.5 % of the server's CPU samples under
 // query load (perf cpu-clock, wrk -t1 -c64).
-bool MatchRoute(std::string_view route, std::string_view path,
-                std::array<std::string, 2>* params) {
+bool MatchRoute(std::string_view route, std::string_view path, std::array<std::string, 2>* params) {
   size_t count = 0;
   for (;;) {
     const size_t route_end = std::min(route.find('/', 1), route.size());
@@ -142,8 +141,10 @@ struct HttpServer::Impl {
     // alternating with nginx: 16 connections, 2 threads p99 0.43-1.20 ms in 6 rounds against
     // 4 threads 0.43-6.06 ms (4 of 6 rounds over 2 ms); 64 connections, p99 1.44-1.71 ms
     // against 1.41-1.50 ms. (Earlier, with 2 wrk threads: 4 threads 74-89k req/s, 8 threads
-    // 67-69k, 16 threads 49-52k.) At least 2, so that one handler busy for long (parsing a
-    // large upload) does not stop the others.
+    // 67-69k, 16 threads 49-52k.) At least 2: large uploads have a thread of their own
+    // (TransportOptions::large_request_threads), but on the 2-core host 1 thread gave p99 up to
+    // 1.99 ms where 2 gave 1.13-1.15 ms (wrk -t1 -c64, 4 rounds each, after the transport
+    // stopped zero-filling its read buffer; 1 thread served 115k req/s, 2 threads 88k).
     t.threads = o.threads > 0 ? o.threads : std::max(2, UsableCpuCount());
     t.body_limit = o.body_limit;
     t.idle_timeout_seconds = o.idle_timeout_seconds;

@@ -18,6 +18,7 @@
 #include <condition_variable>
 #include <cstdio>
 #include <cstring>
+#include <deque>
 #include <mutex>
 #include <new>
 #include <string_view>
@@ -297,6 +298,9 @@ struct HttpTransport::Impl {
   void Serve() {
     std::vector<std::thread> threads;
     for (int i = 0; i < std::max(1, options.threads); ++i) threads.emplace_back([this] { Work(); });
+    for (int i = 0; i < options.large_request_threads; ++i) {
+      threads.emplace_back([this] { WorkOnLargeRequests(); });
+    }
     {
       std::unique_lock<std::mutex> lock(stop_mu);
       while (!stopping.load()) {
@@ -317,6 +321,41 @@ struct HttpTransport::Impl {
       [[maybe_unused]] const ssize_t n = ::write(wake_fd, &one, sizeof one);
     }
     stop_cv.notify_all();
+    large_cv.notify_all();
+  }
+
+  // Answers the requests Offload() queued, the queue's remainder included once stopping,
+  // and gives each connection back to the set to write its answer and read on.
+  void WorkOnLargeRequests() {
+    for (;;) {
+      Conn* c = nullptr;
+      {
+        std::unique_lock<std::mutex> lock(large_mu);
+        large_cv.wait(lock, [this] { return stopping.load() || !large_queue.empty(); });
+        if (large_queue.empty()) return;
+        c = large_queue.front();
+        large_queue.pop_front();
+      }
+      Answer(c);
+      Rearm(c, /*output=*/true);
+    }
+  }
+
+  // Hands the complete request on `c` to the large-request threads iff its body is at least
+  // large_request_bytes (and there are such threads): parsing a large model takes seconds,
+  // which would hold a thread that answers queries. The connection stays out of the set, as
+  // when a thread owns it, until its answer is ready.
+  bool Offload(Conn* c) {
+    if (options.large_request_threads <= 0 ||
+        static_cast<int64_t>(c->body.size()) < options.large_request_bytes) {
+      return false;
+    }
+    {
+      std::lock_guard<std::mutex> lock(large_mu);
+      large_queue.push_back(c);
+    }
+    large_cv.notify_one();
+    return true;
   }
 
   void Work() {
@@ -464,6 +503,7 @@ struct HttpTransport::Impl {
       if (c->phase != Phase::kLinger) {
         const Step step = Parse(c);
         if (step.kind == Step::kReady) {
+          if (Offload(c)) return;
           Answer(c);
           continue;
         }
@@ -892,6 +932,9 @@ struct HttpTransport::Impl {
   std::condition_variable stop_cv;
   std::mutex conns_mu;
   std::unordered_map<Conn*, std::unique_ptr<Conn>> conns;
+  std::mutex large_mu;  // Guards large_queue.
+  std::condition_variable large_cv;
+  std::deque<Conn*> large_queue;  // Complete requests with large bodies, owned (busy).
 };
 
 HttpTransport::HttpTransport(TransportOptions options, RequestHandler handler,

@@ -7,7 +7,9 @@
 // arriving or whose answer waits for the client to read holds no thread: any number of slow
 // or silent clients cannot take the threads away from the others (with a thread per
 // connection, 128 silent connections stopped the service for 30 s). A streamed answer (a
-// content provider) is asked for one piece per turn, once the client has taken the last.
+// content provider) is asked for one piece per turn, once the client has taken the last. A
+// request with a large body is answered on a thread of its own (large_request_threads), so
+// that parsing it does not hold a thread that answers the small ones.
 //
 // Framing follows RFC 9112: Content-Length or the chunked coding for request bodies (held to
 // the body limit, a chunked body over it read to its end and dropped so that the connection
@@ -37,6 +39,11 @@ struct TransportOptions {
   int idle_timeout_seconds = 30;
   int write_timeout_seconds = 30;
   int max_connections = 10000;  // Further connections are accepted and closed at once.
+  // A request whose body has at least large_request_bytes is answered on one of
+  // large_request_threads threads of its own (0: on the connection threads like the others),
+  // so that parsing a large model does not hold a thread that answers queries.
+  int large_request_threads = 1;
+  int64_t large_request_bytes = int64_t{1} << 20;
 };
 
 // A complete request: method, target, path (percent-decoded), params (the query string,

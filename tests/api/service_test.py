@@ -2117,6 +2117,41 @@ def scenario_j(api, server, root, idle_timeout):
             raw_exchange(port, health).status == 200)
 
 
+def scenario_k(api, server):
+    """The server runs with --http-threads 1: one thread answers every request with a small
+    body, and requests with bodies of 1 MiB or more go to a thread of their own."""
+    port = server.port
+    doc = json.dumps(random_model(12, n=40000)).encode()
+    health = b"GET /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n\r\n"
+    with socket.create_connection(("127.0.0.1", port), timeout=60) as up:
+        # The upload with a request pipelined behind it on the same connection.
+        up.sendall(upload_head(b"Content-Length: %d\r\n" % len(doc)).replace(
+            b"Connection: close\r\n", b"") + doc +
+            b"GET /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n\r\n")
+        # While the service parses the upload (about a second), another client is answered:
+        # by the only connection thread, so the upload's answer is not there yet.
+        resp = raw_exchange(port, health)
+        up.setblocking(False)
+        try:
+            early = up.recv(1, socket.MSG_PEEK)
+        except BlockingIOError:
+            early = b""
+        up.setblocking(True)
+        R.check("k: a %d MB upload on a 1-thread server: a query on another connection is "
+                "answered before the upload is" % (len(doc) >> 20),
+                resp.status == 200 and early == b"", "status %s, upload answer %s" % (
+                    resp.status, "already there" if early else "not yet there"))
+        got = split_responses(read_response(up, whole=True))
+    R.check("k: the upload is then answered (201), then the request pipelined behind it",
+            [g[0] for g in got] == [201, 200] and json.loads(got[0][2]).get("states") == 40000,
+            str([(g[0], short(g[2], 100)) for g in got]))
+    model_id = json.loads(got[0][2]).get("id", "") if got else ""
+    resp = raw_exchange(port, b"GET /v1/models/%s HTTP/1.1\r\nHost: 127.0.0.1\r\n"
+                              b"Connection: close\r\n\r\n" % model_id.encode())
+    R.check("k: and the model is there", resp.status == 200 and
+            json.loads(resp.body or b"{}").get("states") == 40000, short(resp.body))
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--mdpserve", required=True, help="path to the mdpserve binary")
@@ -2172,6 +2207,7 @@ def main():
             scenario_j(api, server("connections", ["--memory-store", "--http-threads", "2",
                                                    "--idle-timeout", "2",
                                                    "--body-limit", "65536"]), root, 2)
+            scenario_k(api, server("large-requests", ["--memory-store", "--http-threads", "1"]))
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback
             traceback.print_exc()
