@@ -211,7 +211,9 @@ struct HttpServer::Impl {
   void Refuse(const httplib::Request& req, int status, const std::string& reason,
               httplib::Response& res) {
     const auto start = std::chrono::steady_clock::now();
-    WriteProblem(res, status == 413 ? BodyOverLimit() : ProblemWithStatus(status, reason));
+    WriteProblem(res, status == 413   ? BodyOverLimit()
+                      : status == 429 ? MakeProblem(ResourceExhaustedError(reason))
+                                      : ProblemWithStatus(status, reason));
     Record(req, "unmatched", unmatched, status, start);
   }
 

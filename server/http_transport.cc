@@ -345,17 +345,22 @@ struct HttpTransport::Impl {
   // large_request_bytes (and there are such threads): parsing a large model takes seconds,
   // which would hold a thread that answers queries. The connection stays out of the set, as
   // when a thread owns it, until its answer is ready.
-  bool Offload(Conn* c) {
+  // kFull: the queue is full, and the request must be refused.
+  enum class Offloaded { kNo, kQueued, kFull };
+  Offloaded Offload(Conn* c) {
     if (options.large_request_threads <= 0 ||
         static_cast<int64_t>(c->body.size()) < options.large_request_bytes) {
-      return false;
+      return Offloaded::kNo;
     }
     {
       std::lock_guard<std::mutex> lock(large_mu);
+      if (static_cast<int64_t>(large_queue.size()) >= options.large_request_queue) {
+        return Offloaded::kFull;
+      }
       large_queue.push_back(c);
     }
     large_cv.notify_one();
-    return true;
+    return Offloaded::kQueued;
   }
 
   void Work() {
@@ -503,8 +508,18 @@ struct HttpTransport::Impl {
       if (c->phase != Phase::kLinger) {
         const Step step = Parse(c);
         if (step.kind == Step::kReady) {
-          if (Offload(c)) return;
-          Answer(c);
+          const Offloaded offloaded = Offload(c);
+          if (offloaded == Offloaded::kQueued) return;
+          if (offloaded == Offloaded::kFull) {
+            std::string().swap(c->body);
+            Step busy;
+            busy.status = 429;
+            busy.reason = "other large requests are waiting; send it again later";
+            busy.keep = true;
+            AnswerRefusal(c, busy);
+          } else {
+            Answer(c);
+          }
           continue;
         }
         if (step.kind == Step::kRefuse) {

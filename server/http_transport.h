@@ -9,7 +9,8 @@
 // connection, 128 silent connections stopped the service for 30 s). A streamed answer (a
 // content provider) is asked for one piece per turn, once the client has taken the last. A
 // request with a large body is answered on a thread of its own (large_request_threads), so
-// that parsing it does not hold a thread that answers the small ones.
+// that parsing it does not hold a thread that answers the small ones; while those threads
+// are busy, a few wait their turn and more are refused with 429.
 //
 // Framing follows RFC 9112: Content-Length or the chunked coding for request bodies (held to
 // the body limit, a chunked body over it read to its end and dropped so that the connection
@@ -44,6 +45,9 @@ struct TransportOptions {
   // so that parsing a large model does not hold a thread that answers queries.
   int large_request_threads = 1;
   int64_t large_request_bytes = int64_t{1} << 20;
+  // Large requests waiting for those threads, at most; one more is refused with 429, so
+  // that bodies read while the threads are busy cannot pile up in memory.
+  int large_request_queue = 2;
 };
 
 // A complete request: method, target, path (percent-decoded), params (the query string,
@@ -53,8 +57,8 @@ struct TransportOptions {
 // thread (one at a time), after the handler has returned: it must own what it reads.
 using RequestHandler =
     std::function<void(httplib::Request& req, std::string body, httplib::Response& res)>;
-// A request the transport refuses before any handler sees it (status 400, 413, 414, 431,
-// 501 or 505, with a reason): fills `res`, typically with a problem document.
+// A request the transport refuses before any handler sees it (status 400, 413, 414, 429,
+// 431, 501 or 505, with a reason): fills `res`, typically with a problem document.
 using RefusalHandler = std::function<void(const httplib::Request& req, int status,
                                           const std::string& reason, httplib::Response& res)>;
 
