@@ -2,7 +2,8 @@
 // transport (http_transport.h: an epoll set served by a fixed pool of threads, which idle
 // connections do not hold), it checks the bearer token, body size and content type, routes
 // requests to thin handlers (routes.cc), records per-route metrics and logs one line per
-// request. Solves never run on its threads. Serve() blocks; Stop() may be called from any
+// request (at debug when answered with 2xx or 3xx, info for 4xx, warn for 5xx). Solves never
+// run on its threads. Serve() blocks; Stop() may be called from any
 // thread.
 #ifndef MDP_SERVER_HTTP_SERVER_H_
 #define MDP_SERVER_HTTP_SERVER_H_

@@ -220,8 +220,8 @@ class Server:
             os.unlink(port_file)
         self.log = open(os.path.join(self.workdir, self.name + ".log"), "ab")
         self.proc = subprocess.Popen(
-            [self.binary, "serve", "--listen", "127.0.0.1:0", "--port-file", port_file,
-             "--log-level", "warn"] + self.args,
+            [self.binary, "serve", "--listen", "127.0.0.1:0", "--port-file", port_file] +
+            ([] if "--log-level" in self.args else ["--log-level", "warn"]) + self.args,
             stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
         deadline = time.monotonic() + START_TIMEOUT
         while time.monotonic() < deadline:
@@ -2184,6 +2184,18 @@ def scenario_k(api, server):
             resp.status == 200 and json.loads(resp.body).get("states") == 12000,
             "%s %s" % (resp.status, short(resp.body)))
 
+    # The log at --log-level info: a line per refused request (4xx), none per answered one.
+    marker = "/v1/models/k-log-marker"
+    raw_exchange(port, b"GET /healthz HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n")
+    raw_exchange(port, b"GET %s HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n" %
+                 marker.encode())
+    time.sleep(0.2)
+    with open(server.log.name, "rb") as f:
+        log = f.read().decode("utf-8", "replace")
+    R.check("k: --log-level info logs the 404 and the 429s, not the answered requests",
+            "GET /v1/models/{id} 404" in log and " 429 " in log and " 200 " not in log and
+            " 201 " not in log, log[-600:])
+
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
@@ -2240,7 +2252,8 @@ def main():
             scenario_j(api, server("connections", ["--memory-store", "--http-threads", "2",
                                                    "--idle-timeout", "2",
                                                    "--body-limit", "65536"]), root, 2)
-            scenario_k(api, server("large-requests", ["--memory-store", "--http-threads", "1"]))
+            scenario_k(api, server("large-requests", ["--memory-store", "--http-threads", "1",
+                                                      "--log-level", "info"]))
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback
             traceback.print_exc()
