@@ -201,24 +201,25 @@ TEST(ModelStoreCodecTest, ConstantColumnsAreStoredOnceAndLargeModelsFitTheTarget
   ExpectRoundTrip(spec, /*valid=*/true);
 }
 
+ModelSpec RandomSpecOf(int states, int max_outcomes, uint64_t seed) {
+  testing::RandomModelOptions options;
+  options.states = states;
+  options.max_outcomes = max_outcomes;
+  return testing::RandomSpec(seed, options);
+}
+
 // Over 1 MiB of canonical text, so CanonicalModelId hashes several pieces.
 TEST(ModelStoreCodecTest, PiecewiseIdEqualsTheIdOfTheWholeText) {
-  testing::RandomModelOptions options;
-  options.states = 6000;
-  options.max_outcomes = 8;
-  const ModelSpec spec = testing::RandomSpec(7, options);
+  const ModelSpec spec = RandomSpecOf(6000, 8, 7);
   const std::string canonical = EncodeCanonicalModel(spec);
   ASSERT_GT(canonical.size(), size_t{3} << 20);
   EXPECT_EQ(CanonicalModelId(spec), ModelId(canonical));
 }
 
-// The document route sends the text as WriteCanonicalModelPieces hands it over: in order,
-// byte for byte the whole text, and no further once the receiver says stop.
+// WriteCanonicalModelPieces hands the text over in order, byte for byte the whole text, and
+// no further once the receiver says stop.
 TEST(ModelStoreCodecTest, CanonicalPiecesMakeTheWholeTextAndStopWhenAsked) {
-  testing::RandomModelOptions options;
-  options.states = 3000;
-  options.max_outcomes = 8;
-  const ModelSpec spec = testing::RandomSpec(11, options);
+  const ModelSpec spec = RandomSpecOf(3000, 8, 11);
   const std::string canonical = EncodeCanonicalModel(spec);
   std::string joined;
   int pieces = 0;
@@ -244,10 +245,7 @@ TEST(ModelStoreCodecTest, CanonicalPiecesMakeTheWholeTextAndStopWhenAsked) {
 // The document route asks the cursor for one piece per turn: each call resumes where the
 // last ended; with a piece size of 1 byte, the head comes alone and then one state per call.
 TEST(ModelStoreCodecTest, CursorResumesWherePreviousPieceEnded) {
-  testing::RandomModelOptions options;
-  options.states = 200;
-  options.max_outcomes = 4;
-  const ModelSpec spec = testing::RandomSpec(5, options);
+  const ModelSpec spec = RandomSpecOf(200, 4, 5);
   const std::string canonical = EncodeCanonicalModel(spec);
   CanonicalModelCursor cursor(spec);
   std::string joined;
