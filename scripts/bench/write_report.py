@@ -397,8 +397,9 @@ def solves_section(run, solve_structure):
     vi = fastest_vi(m["solves"])
     out = [f"Model: {solve_structure}, {m['states']:,} states x {m['actions']} actions x "
            f"{m['outcomes']} outcomes, discount {m['discount']}, tolerance {m['tolerance']:g} "
-           "on the value error bound. Gauss-Seidel on more than one thread sweeps one block "
-           "of states per thread; policy iteration's *Sweeps* count its greedy sweeps plus its "
+           "on the value error bound. Gauss-Seidel on more than one thread sweeps chunks of "
+           "65,536 states handed out on demand; policy iteration's *Sweeps* count its greedy "
+           "sweeps plus its "
            "evaluation work in passes over the policy's own rows (a quarter of the model's "
            "entries here); *max |V - V_first|* compares each method's values with the first "
            "row's; the reference for the ratios is the fastest value_iteration row.", "",

@@ -26,10 +26,11 @@ namespace {
     return m.objective() == Objective::kMaximize ? GaussSeidelSweepT<true>(m, v)              \
                                                  : GaussSeidelSweepT<false>(m, v);            \
   }                                                                                            \
-  double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads) {  \
+  double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads,    \
+                               StateId chunk) {                                                \
     return m.objective() == Objective::kMaximize                                              \
-               ? BlockGaussSeidelSweepT<true>(m, in, out, threads)                            \
-               : BlockGaussSeidelSweepT<false>(m, in, out, threads);                          \
+               ? BlockGaussSeidelSweepT<true>(m, in, out, threads, chunk)                     \
+               : BlockGaussSeidelSweepT<false>(m, in, out, threads, chunk);                   \
   }                                                                                            \
   double PolicySweep(const Model& m, const RowId* rows, const double* in, double* out,        \
                      int threads) {                                                            \
@@ -120,12 +121,12 @@ double GaussSeidelSweep(const Model& m, double* v) {
 }
 
 double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads,
-                             KernelSet k) {
-  MDP_BELLMAN_DISPATCH(k, BlockGaussSeidelSweep(m, in, out, threads));
+                             KernelSet k, StateId chunk_states) {
+  MDP_BELLMAN_DISPATCH(k, BlockGaussSeidelSweep(m, in, out, threads, chunk_states));
 }
 
 double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads) {
-  return BlockGaussSeidelSweep(m, in, out, threads, ChooseKernels(m));
+  return BlockGaussSeidelSweep(m, in, out, threads, ChooseKernels(m), kGaussSeidelChunkStates);
 }
 
 double PolicySweep(const Model& m, const RowId* rows, const double* in, double* out,

@@ -63,12 +63,14 @@ double SyncSweep(const Model& m, const double* in, double* out, int threads);
 void StageSweep(const Model& m, const double* next, double discount, double* out, int threads);
 // In-place Gauss-Seidel sweep over states in index order; returns sup of the changes.
 double GaussSeidelSweep(const Model& m, double* v);
-// Gauss-Seidel in `threads` contiguous blocks of states, one per thread: each block is swept
-// in index order in `out`, reading its own states' new values from `out` and every other
-// state's from `in` (out starts as a copy of in). The result depends on the thread count but
-// not on timing. Like the plain sweep, this map is a g-contraction with fixed point V*: each
-// new value is one backup of values that are each old or already updated (common practice).
+// Gauss-Seidel in chunks of kGaussSeidelChunkStates contiguous states, handed to `threads`
+// threads on demand: each chunk is swept in index order in `out`, reading its own states' new
+// values from `out` and every other state's from `in` (out starts as a copy of in). The
+// result depends on neither the thread count nor timing (one chunk: the plain sweep). Like
+// the plain sweep, this map is a g-contraction with fixed point V*: each new value is one
+// backup of values that are each old or already updated (common practice).
 // Returns sup |out - in|.
+inline constexpr StateId kGaussSeidelChunkStates = 65536;
 double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads);
 // out[s] = Q(s, rows[s], in) (0 where rows[s] < 0); returns sup |out - in|.
 double PolicySweep(const Model& m, const RowId* rows, const double* in, double* out, int threads);
@@ -96,7 +98,7 @@ double CsrCombine(const int64_t* begin, const StateId* next, const double* p, St
 double SyncSweep(const Model& m, const double* in, double* out, int threads, KernelSet k);
 double GaussSeidelSweep(const Model& m, double* v, KernelSet k);
 double BlockGaussSeidelSweep(const Model& m, const double* in, double* out, int threads,
-                             KernelSet k);
+                             KernelSet k, StateId chunk_states = kGaussSeidelChunkStates);
 
 // Resolved thread count: 0 means every usable CPU (UsableCpuCount, options.h).
 int ThreadCount(int threads);

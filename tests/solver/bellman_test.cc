@@ -120,15 +120,21 @@ TEST(BellmanKernelsTest, BothCopiesSweepGaussSeidelInOrder) {
     internal::GaussSeidelSweep(m, plain.data(), k);
     for (StateId s = 0; s < m.num_states(); ++s) ASSERT_NEAR(plain[s], expected[s], tolerance);
 
-    // Two blocks: each thread sweeps its half in order, reading the other half's old values.
-    const StateId half = m.num_states() / 2;
-    std::vector<double> block_expected = DefinitionGaussSeidel(m, v, 0, half);
-    const std::vector<double> second = DefinitionGaussSeidel(m, v, half, m.num_states());
-    std::copy(second.begin() + half, second.end(), block_expected.begin() + half);
-    std::vector<double> out(m.num_states(), 0.0);
-    internal::BlockGaussSeidelSweep(m, v.data(), out.data(), 2, k);
-    for (StateId s = 0; s < m.num_states(); ++s) {
-      ASSERT_NEAR(out[s], block_expected[s], tolerance) << "state " << s;
+    // Chunks of 300 states (the last one shorter): each swept in order, reading the other
+    // chunks' old values, on any number of threads.
+    const StateId chunk = 300;
+    std::vector<double> block_expected(m.num_states());
+    for (StateId lo = 0; lo < m.num_states(); lo += chunk) {
+      const StateId hi = std::min(m.num_states(), lo + chunk);
+      const std::vector<double> swept = DefinitionGaussSeidel(m, v, lo, hi);
+      std::copy(swept.begin() + lo, swept.begin() + hi, block_expected.begin() + lo);
+    }
+    for (int threads : {1, 2, 3}) {
+      std::vector<double> out(m.num_states(), 0.0);
+      internal::BlockGaussSeidelSweep(m, v.data(), out.data(), threads, k, chunk);
+      for (StateId s = 0; s < m.num_states(); ++s) {
+        ASSERT_NEAR(out[s], block_expected[s], tolerance) << "state " << s << ", " << threads;
+      }
     }
   }
 }

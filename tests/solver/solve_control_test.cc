@@ -109,11 +109,10 @@ TEST(SolveControlTest, ThreadedSweepsGiveTheSameAnswer) {
   EXPECT_EQ(a->iterations, b->iterations);
 }
 
-// Gauss-Seidel on several threads sweeps blocks (bellman.h): a different iteration from the
-// one-thread sweep, so values differ in rounding and the sweep count may differ, but both
-// must meet their bounds against a tightly solved reference, and the block sweep must still
-// need fewer sweeps than Jacobi value iteration on this model (it reads updated values within
-// each block). It must also be deterministic for a given thread count.
+// Gauss-Seidel on several threads sweeps chunks (bellman.h; this model fits in one, and
+// bellman_test checks smaller chunks sweep by sweep): with any thread count it must meet its
+// bound against a tightly solved reference, need fewer sweeps than Jacobi value iteration on
+// this model (it reads updated values within each chunk), and be deterministic.
 TEST(SolveControlTest, BlockGaussSeidelMeetsItsBoundAndIsDeterministic) {
   testing::RandomModelOptions o;
   o.states = 3000;
