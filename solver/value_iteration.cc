@@ -55,11 +55,16 @@ Solution GaussSeidelValueIteration(const Model& m, const SolveOptions& options,
   internal::RunControl control(options, progress, cancel);
   const double g = m.discount();
   // The in-place operator is also a g-contraction with fixed point V* (Puterman 1994,
-  // sec. 6.3.3), so sup|v - V*| <= g d / (1 - g) for its own change d. Finalize() states the
-  // bound through one exact backup e <= (1 + g) sup|v - V*|, so aim d low enough that
-  // g^2 e / (1 - g) meets the tolerance; resume with a lower aim if rounding defeats it.
-  double target = g == 0.0 ? internal::ResidualTarget(g, options.tolerance)
-                           : options.tolerance * (1.0 - g) * (1.0 - g) / (g * g * g * (1.0 + g));
+  // sec. 6.3.3). Finalize() states the bound g e / (1 - g) from one exact backup of the final
+  // v, e = sup|T v - v|. Each state's last value was a backup of values that have since moved
+  // by at most this sweep's change d (the states swept after it, or in other chunks), so
+  // e <= g d, and stopping at d <= tolerance (1 - g) / (2 g) gives a bound of at most
+  // g tolerance / 2 (common practice); if rounding defeats it, resume from v with an aim 10
+  // times lower. The worst-case aim used before (d <= tolerance (1 - g)^2 / (g^3 (1 + g)),
+  // from e <= (1 + g) sup|v - V*|) is about 100 times lower at g = 0.99: 1M-state models,
+  // 2 threads, tolerance 1e-6, this aim met the bound at once (4.8e-7 to 4.9e-7) after 1,074
+  // sweeps against 1,328 (local), 988 against 1,225 (inventory), 1,799 against 2,238 (random).
+  double target = 0.5 * internal::ResidualTarget(g, options.tolerance);
   Solution solution;
   solution.method = Method::kGaussSeidel;
   solution.options = options;
