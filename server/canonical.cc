@@ -179,14 +179,10 @@ std::string CanonicalModelId(const ModelSpec& spec) {
   if (context == nullptr || EVP_DigestInit_ex(context.get(), EVP_sha256(), nullptr) != 1) {
     return ModelId(EncodeCanonicalModel(spec));
   }
-  std::string piece;
-  piece.reserve(kPieceBytes + 4096);
-  CanonicalModelCursor cursor(spec);
-  for (bool more = true; more;) {
-    piece.clear();
-    more = cursor.Next(piece, kPieceBytes);
+  WriteCanonicalModelPieces(spec, kPieceBytes, [&](std::string_view piece) {
     EVP_DigestUpdate(context.get(), piece.data(), piece.size());
-  }
+    return true;
+  });
   unsigned char digest[EVP_MAX_MD_SIZE];
   unsigned int length = 0;
   EVP_DigestFinal_ex(context.get(), digest, &length);

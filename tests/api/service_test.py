@@ -1120,12 +1120,8 @@ def read_response(sock, whole=False):
     return received
 
 
-def raw_exchange(port, data):
-    """Sends raw bytes on a new connection; returns the first response (read_response, with
-    10 s to answer)."""
-    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
-        s.sendall(data)
-        received = read_response(s)
+def parse_response(received):
+    """A Resp of the first response in `received` (status 0 if it has no status line)."""
     head, _, body = received.partition(b"\r\n\r\n")
     lines = head.decode("latin-1").split("\r\n")
     first = lines[0].split()
@@ -1135,6 +1131,14 @@ def raw_exchange(port, data):
         k, _, v = line.partition(":")
         headers[k.strip().lower()] = v.strip()
     return Resp(status, headers, body)
+
+
+def raw_exchange(port, data):
+    """Sends raw bytes on a new connection; returns the first response (read_response, with
+    10 s to answer)."""
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(data)
+        return parse_response(read_response(s))
 
 
 def chunked(data, piece=1000):
@@ -2161,13 +2165,8 @@ def scenario_k(api, server):
         s.sendall(request)
     answers = []
     for s in sockets:
-        head, _, body = read_response(s).partition(b"\r\n\r\n")
+        answers.append(parse_response(read_response(s)))
         s.close()
-        lines = head.decode("latin-1").split("\r\n")
-        headers = {k.strip().lower(): v.strip() for k, _, v in
-                   (line.partition(":") for line in lines[1:])}
-        status = int(lines[0].split()[1]) if len(lines[0].split()) > 1 else 0
-        answers.append(Resp(status, headers, body))
     refused = [a for a in answers if a.status == 429]
     taken = [a for a in answers if a.status in (200, 201)]
     problems = [api.check_response("POST", "/v1/models", a) for a in refused]
