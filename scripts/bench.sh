@@ -28,7 +28,9 @@
 # keep-alive connections and its threads; 64 connections saturate the 2 cores, 16 keep fewer
 # requests in flight; with 2 wrk threads the load generator competes with the servers for
 # both cores, with 1 it takes at most one core's worth),
-# BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1, BENCH_SKIP_MEMORY=1.
+# BENCH_SOLVE_LOAD_STATES (250000: the model solve_load_bench.py solves while it queries),
+# BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1 (also skips the queries while a
+# solve runs), BENCH_SKIP_MEMORY=1.
 set -euo pipefail
 
 ROOT=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
@@ -50,9 +52,11 @@ done
 if [[ $MODE == quick ]]; then
   STATES=${BENCH_STATES:-100000}; SWEEPS=${BENCH_SWEEPS:-20}; INGEST_REPS=2
   QUERY_SECONDS=5; QUERY_ROUNDS=1; KERNEL_MIN_TIME=0.05; TIME_LIMIT=300
+  SOLVE_LOAD_ROUNDS=1
 else
   STATES=${BENCH_STATES:-1000000}; SWEEPS=${BENCH_SWEEPS:-10}; INGEST_REPS=3
   QUERY_SECONDS=10; QUERY_ROUNDS=3; KERNEL_MIN_TIME=0.2; TIME_LIMIT=1800
+  SOLVE_LOAD_ROUNDS=3
 fi
 STRUCTURES=${BENCH_STRUCTURES:-random local local_shuffled grid inventory}
 CRITERIA_STRUCTURES=${BENCH_CRITERIA_STRUCTURES:-random local}
@@ -69,6 +73,7 @@ EXTRA_METHODS=${BENCH_EXTRA_METHODS:-value_iteration,policy_iteration,gauss_seid
 INGEST_STATES=${BENCH_INGEST_STATES:-100000}
 MEMORY_STATES=${BENCH_MEMORY_STATES:-$STATES}
 QUERY_RUNS=${BENCH_QUERY_RUNS:-64:1 16:1 64:2}
+SOLVE_LOAD_STATES=${BENCH_SOLVE_LOAD_STATES:-250000}
 for spec in $QUERY_RUNS; do  # Checked now, not after the long steps.
   if ! [[ $spec =~ ^[1-9][0-9]*:[1-9][0-9]*$ ]]; then
     echo "bench.sh: BENCH_QUERY_RUNS lists CONNECTIONS:WRK_THREADS pairs, not '$spec'" >&2
@@ -203,6 +208,12 @@ if [[ ${BENCH_SKIP_QUERIES:-0} != 1 ]]; then
       >"$WORK/$label.txt" 2>"$WORK/$label.err"
     sample_load "$label"
   done
+  say "queries while a solve runs, the solve at the HTTP threads' priority and below it" \
+    "(solve_load_bench.py)"
+  run "$PY" "$ROOT/scripts/bench/solve_load_bench.py" --mdpserve "$BIN/mdpserve" \
+    --root "$ROOT" --states "$SOLVE_LOAD_STATES" --rounds "$SOLVE_LOAD_ROUNDS" \
+    --seconds "$QUERY_SECONDS" >"$WORK/solve-load.json"
+  sample_load solve-load
 fi
 
 sample_load end

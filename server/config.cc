@@ -31,6 +31,16 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->envname("MDPSERVE_HTTP_THREADS")
       ->capture_default_str()
       ->check(CLI::Range(0, 1024));
+  app->add_option("--background-niceness", c.background_niceness,
+                  "how far below the HTTP threads the long work runs (solve jobs, the threads "
+                  "each solve sweeps with, and the thread that parses large uploads): added to "
+                  "their Linux nice value, 0 to 19, 0 = the same priority; it leaves the "
+                  "queries their CPU while a solve runs; a solve still takes every core the "
+                  "queries leave idle, but other programs on the machine at normal priority "
+                  "come first")
+      ->envname("MDPSERVE_BACKGROUND_NICENESS")
+      ->capture_default_str()
+      ->check(CLI::Range(0, 19));
   app->add_option("--idle-timeout", c.idle_timeout_seconds,
                   "seconds after which a connection that sends nothing (idle keep-alive, or a "
                   "request arriving too slowly) is closed")

@@ -148,6 +148,7 @@ struct HttpServer::Impl {
     t.threads = o.threads > 0 ? o.threads : std::max(2, UsableCpuCount());
     t.body_limit = o.body_limit;
     t.idle_timeout_seconds = o.idle_timeout_seconds;
+    t.large_request_niceness = o.large_request_niceness;
     return t;
   }
 

@@ -26,6 +26,7 @@ struct HttpOptions {
   int64_t body_limit = int64_t{256} << 20;  // Bytes; larger bodies get 413.
   int idle_timeout_seconds = 30;           // A connection silent this long is closed.
   std::string token;                       // Non-empty: required as "Bearer <token>".
+  int large_request_niceness = 0;  // Added to the large-request thread's nice value, 0 to 19.
 };
 
 class HttpServer {

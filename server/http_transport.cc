@@ -27,6 +27,8 @@
 #include <utility>
 #include <vector>
 
+#include "server/thread_setup.h"
+
 namespace mdp::server {
 namespace {
 
@@ -327,6 +329,9 @@ struct HttpTransport::Impl {
   // Answers the requests Offload() queued, the queue's remainder included once stopping,
   // and gives each connection back to the set to write its answer and read on.
   void WorkOnLargeRequests() {
+    // Refused: the thread keeps the others' priority (serve.cc logs that once at start).
+    NameThisThread("mdp-upload");
+    (void)RaiseThisThreadNiceness(options.large_request_niceness);
     for (;;) {
       Conn* c = nullptr;
       {
@@ -364,6 +369,7 @@ struct HttpTransport::Impl {
   }
 
   void Work() {
+    NameThisThread("mdp-http");
     // Where this thread's recv() puts a request head: appending what arrived to the
     // connection's buffer copies only those bytes, where growing the buffer by kReadBytes
     // zero-filled 256 KiB per read (a quarter of the server's time under query load).

@@ -48,6 +48,9 @@ struct TransportOptions {
   // Large requests waiting for those threads, at most; one more is refused with 429, so
   // that bodies read while the threads are busy cannot pile up in memory.
   int large_request_queue = 2;
+  // Added to the large-request threads' nice value (thread_setup.h), 0 to 19: parsing a
+  // large upload yields the CPU to the threads answering queries.
+  int large_request_niceness = 0;
 };
 
 // A complete request: method, target, path (percent-decoded), params (the query string,

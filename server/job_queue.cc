@@ -1,8 +1,11 @@
 #include "server/job_queue.h"
 
+#include "server/thread_setup.h"
+
 namespace mdp::server {
 
-JobQueue::JobQueue(int workers, int64_t capacity) : capacity_(capacity) {
+JobQueue::JobQueue(int workers, int64_t capacity, int niceness)
+    : capacity_(capacity), niceness_(niceness) {
   for (int i = 0; i < workers; ++i) workers_.emplace_back([this] { WorkerLoop(); });
 }
 
@@ -50,6 +53,10 @@ int64_t JobQueue::Shutdown() {
 }
 
 void JobQueue::WorkerLoop() {
+  // If the kernel refuses, the worker keeps the HTTP threads' priority: slower queries while
+  // a solve runs, nothing worse. serve.cc checks this once at start and says so in the log.
+  NameThisThread("mdp-solve");
+  (void)RaiseThisThreadNiceness(niceness_);
   for (;;) {
     Task task;
     {

@@ -22,7 +22,9 @@ class JobQueue {
   using Task = std::function<void()>;
 
   // Starts `workers` threads; at most `capacity` tasks wait at once (running ones excluded).
-  JobQueue(int workers, int64_t capacity);
+  // The workers raise their nice value by `niceness` (0 to 19; thread_setup.h) before
+  // they take a task, so tasks and the threads they start yield the CPU to the HTTP threads.
+  JobQueue(int workers, int64_t capacity, int niceness = 0);
   ~JobQueue();  // Calls Shutdown().
 
   // Queues `task`; kResourceExhausted if the queue is full, kUnavailable after Shutdown().
@@ -38,6 +40,7 @@ class JobQueue {
   void WorkerLoop();
 
   const int64_t capacity_;
+  const int niceness_;
   mutable std::mutex mu_;
   std::condition_variable work_available_;
   std::deque<Task> tasks_;  // GUARDED_BY(mu_)

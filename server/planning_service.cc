@@ -127,7 +127,8 @@ PlanningService::PlanningService(Store& store, ServiceOptions options)
     : store_(store),
       options_(std::move(options)),
       cache_(options_.cache_bytes),
-      queue_(std::make_unique<JobQueue>(options_.workers, options_.queue_capacity)) {}
+      queue_(std::make_unique<JobQueue>(options_.workers, options_.queue_capacity,
+                                        options_.worker_niceness)) {}
 
 PlanningService::~PlanningService() { Shutdown(0.0); }
 

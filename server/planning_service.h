@@ -31,6 +31,7 @@ struct ServiceOptions {
   int64_t queue_capacity = 64;             // Jobs waiting at most; more get kResourceExhausted.
   int64_t cache_bytes = int64_t{2} << 30;  // Byte budget of the model/solution cache.
   int solver_threads = 0;                  // Threads each solve uses for its sweeps; 0 = automatic.
+  int worker_niceness = 0;  // Added to the workers' nice value (JobQueue), 0 to 19.
   int64_t sync_verify_max_rows = 200'000;  // Larger models verify as a job.
   DecodeLimits limits;                     // Caps on uploaded documents.
   // Called on the worker thread when a job ends, with its final record and the seconds it

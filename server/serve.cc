@@ -14,6 +14,7 @@
 #include "server/http_server.h"
 #include "server/metrics.h"
 #include "server/planning_service.h"
+#include "server/thread_setup.h"
 
 namespace mdp::server {
 namespace {
@@ -151,6 +152,11 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
   http.threads = config.http_threads;
   http.idle_timeout_seconds = config.idle_timeout_seconds;
   http.body_limit = config.body_limit;
+  http.large_request_niceness = config.background_niceness;
+  if (Status nice = CheckThreadNiceness(config.background_niceness); !nice.ok()) {
+    spdlog::warn("{}: solves and large uploads run at the priority of the HTTP threads",
+                 nice.message());
+  }
 
   std::unique_ptr<Store> store;
   if (config.memory_store) {
@@ -179,6 +185,7 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
   service_options.queue_capacity = config.queue_length;
   service_options.cache_bytes = config.cache_bytes;
   service_options.solver_threads = config.solver_threads;
+  service_options.worker_niceness = config.background_niceness;
   service_options.on_job_finished = [&registry, solve_seconds, verify_seconds](
                                         const JobRecord& job, double seconds) {
     (job.kind == "solve" ? solve_seconds : verify_seconds)->Observe(seconds);

@@ -70,7 +70,7 @@ def floats(a):
     return ",".join(map(repr, a.tolist()))  # Shortest round-trip form: the exact double.
 
 
-def write_arrays_model(path, states, actions, outcomes, seed):
+def write_arrays_model(path, states, actions, outcomes, seed, discount=0.95):
     """A seeded random model: every state offers every action; each row has `outcomes`
     next states drawn uniformly (so rows rarely merge duplicates), probability 1/outcomes
     each (exact for powers of two), a row reward and a full-precision reward per outcome.
@@ -80,7 +80,8 @@ def write_arrays_model(path, states, actions, outcomes, seed):
     n = rows * outcomes
     with open(path, "wb") as f:
         f.write(b'{"format":"mdpserve/model-arrays@1","name":"memory-check","objective":'
-                b'"maximize","criterion":{"kind":"discounted","discount":0.95},"actions":[')
+                b'"maximize","criterion":{"kind":"discounted","discount":' + repr(discount).encode() +
+                b'},"actions":[')
         f.write(",".join('"a%d"' % a for a in range(actions)).encode() + b"]")
         f.write(b',"states":[')
         for begin in range(0, states, CHUNK):
@@ -124,14 +125,18 @@ def proc_status(pid):
 
 
 class Server:
-    def __init__(self, binary, workdir, body_limit, memory_store):
+    """`mdpserve serve` on 127.0.0.1, an ephemeral port, its files in `workdir`; `extra`
+    flags are appended to the command line."""
+
+    def __init__(self, binary, workdir, body_limit, memory_store, extra=()):
         self.port_file = os.path.join(workdir, "port")
         self.log = open(os.path.join(workdir, "server.log"), "wb")
         store = (["--memory-store"] if memory_store
                  else ["--data-dir", os.path.join(workdir, "data")])
         self.proc = subprocess.Popen(
             [binary, "serve", "--listen", "127.0.0.1:0", "--port-file", self.port_file,
-             "--log-level", "warn", "--body-limit", str(body_limit), "--workers", "1"] + store,
+             "--log-level", "warn", "--body-limit", str(body_limit), "--workers", "1"] + store +
+            list(extra),
             stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
         self.port = None
         deadline = time.monotonic() + START_TIMEOUT

@@ -95,6 +95,9 @@ class Run:
         self.ingest = [i for i in map(load_json, paths) if i.get("kind") == "ingest"]
         memory = os.path.join(work, "service-memory.json")
         self.memory = load_json(memory) if os.path.exists(memory) else None
+        solve_load = os.path.join(work, "solve-load.json")
+        self.solve_load = (load_json(solve_load) if os.path.exists(solve_load) and
+                           os.path.getsize(solve_load) > 0 else None)
         kernels = os.path.join(work, "kernels.json")
         self.kernels = json.load(open(kernels)) if os.path.exists(kernels) else None
         # (connections, wrk threads) -> bench_queries.sh output; fewer wrk threads first,
@@ -617,6 +620,52 @@ def queries_section(run):
     return "\n".join(out).rstrip()
 
 
+def solve_load_section(run):
+    d = run.solve_load
+    if not d:
+        return "Not measured in this run."
+    labels = {("same_priority", True): "solve at the HTTP threads' priority (niceness 0)",
+              ("lower_priority", True): f"solve at niceness {d['niceness']} (the default)",
+              ("lower_priority", False): "no solve running"}
+    out = [f"Query load: wrk -t1 -c{d['connections']} -d{d['seconds']}s --latency, each "
+           f"connection waiting {d['delay_ms']} ms between an answer and its next request; "
+           f"the solve: value iteration on a random {d['states']:,}-state x {d['actions']} x "
+           f"{d['outcomes']} model, discount {d['discount']}, on the automatic thread count "
+           f"(one per core). *Solve sweeps/s* are read from the job's progress: alone over the "
+           f"{d['solo_seconds']:g} s before the queries start, and while they run.", "",
+           "| Round | Server | req/s | p50 | p99 | errors | Solve sweeps/s alone "
+           "| Solve sweeps/s with the queries |",
+           "|---:|---|---:|---:|---:|---:|---:|---:|"]
+    for r in d["runs"]:
+        alone = r.get("solve_sweeps_per_second_alone")
+        beside = r.get("solve_sweeps_per_second_with_queries")
+        out.append(f"| {r['round']} | {labels[(r['server'], r['solve'])]} "
+                   f"| {r['requests_per_second']:,.0f} | {r['p50_seconds'] * 1e3:.2f} ms "
+                   f"| {r['p99_seconds'] * 1e3:.2f} ms | {r['errors']} "
+                   f"| {'–' if alone is None else f'{alone:.0f}'} "
+                   f"| {'–' if beside is None else f'{beside:.0f}'} |")
+
+    def p99s(server, solve):
+        return [r["p99_seconds"] * 1e3 for r in d["runs"]
+                if r["server"] == server and r["solve"] == solve]
+
+    def rates(server):
+        return [r["solve_sweeps_per_second_with_queries"] / r["solve_sweeps_per_second_alone"]
+                for r in d["runs"] if r["server"] == server and r["solve"]]
+
+    same, lower, idle = p99s("same_priority", True), p99s("lower_priority", True), \
+        p99s("lower_priority", False)
+    if same and lower and idle:
+        out += ["", f"p99 with the solve at the same priority: {min(same):.2f}-{max(same):.2f} ms; "
+                f"with the solve at niceness {d['niceness']}: {min(lower):.2f}-{max(lower):.2f} "
+                f"ms; with no solve: {min(idle):.2f}-{max(idle):.2f} ms. The solve kept "
+                f"{min(rates('lower_priority')):.0%}-{max(rates('lower_priority')):.0%} of its "
+                f"sweep rate beside the queries at niceness {d['niceness']} and "
+                f"{min(rates('same_priority')):.0%}-{max(rates('same_priority')):.0%} at the "
+                "same priority."]
+    return "\n".join(out)
+
+
 def kernels_section(run):
     if not run.kernels:
         return "Not measured in this run."
@@ -770,6 +819,16 @@ def report(run, mode, started, finished, solve_structure):
         "run; neither is picked for it.",
         "",
         queries_section(run),
+        "",
+        "## Queries while a solve runs",
+        "`scripts/bench/solve_load_bench.py`: two mdpserve processes side by side, one with "
+        "`--background-niceness 0` (a solve's threads at the HTTP threads' priority) and one "
+        "with the default, each answering a paced query load (a fixed rate, not as fast as "
+        "the server goes) while it runs a long solve job, in alternation round by round; "
+        "the last row of each round is the same load with no solve running. Both cores are "
+        "shared by the solve's 2 threads, the HTTP threads and wrk.",
+        "",
+        solve_load_section(run),
         "",
         "## Kernel micro-benchmarks (Google Benchmark)",
         "`kernel_bench`: the Bellman kernels of `solver/internal/bellman.h`; GB/s counts the "

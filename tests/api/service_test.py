@@ -36,7 +36,11 @@ Starts `mdpserve serve` processes on 127.0.0.1 with ephemeral ports (--listen 12
       request, nor do 3 clients that pipeline 200 requests each and read nothing; pipelined
       GET, HEAD, GET answered in order; framing errors (505, 501, 400, 431) as problems;
       Expect: 100-continue, under and over the body limit; 60 garbage requests; the idle
-      timeout closes silent and kept-alive connections.
+      timeout closes silent and kept-alive connections;
+  (k) large requests on a 1-thread server: a query is answered while a large upload is
+      parsed, 6 large uploads at once (3 taken, the others 429), the info-level log, and the
+      threads' names and nice values after a 2-thread solve (mdp-http at the process's value,
+      mdp-upload and mdp-solve, the solve's OpenMP thread included, 10 higher).
 Every JSON body received is validated against the OpenAPI response schema of its operation
 and status (Draft 2020-12; the api-schema/*.schema.json files are resolved by their $id).
 
@@ -2195,6 +2199,49 @@ def scenario_k(api, server):
             "GET /v1/models/{id} 404" in log and " 429 " in log and " 200 " not in log and
             " 201 " not in log, log[-600:])
 
+    # Priorities: the threads answering requests keep the process's nice value; the solve
+    # worker, the OpenMP threads a solve starts (this server has --solver-threads 2) and the
+    # large-request thread run 10 higher (--background-niceness, default 10).
+    start = raw_exchange(port, b"POST /v1/jobs HTTP/1.1\r\nHost: x\r\nConnection: close\r\n"
+                               b"Content-Type: application/json\r\nContent-Length: %d\r\n\r\n%s" %
+                         (len(b'{"model_id": "%s"}' % model_id.encode()),
+                          b'{"model_id": "%s"}' % model_id.encode()))
+    job_id = json.loads(start.body or b"{}").get("id", "")
+    deadline = time.monotonic() + JOB_TIMEOUT
+    status = ""
+    while time.monotonic() < deadline and status not in ("succeeded", "failed", "cancelled"):
+        resp = raw_exchange(port, b"GET /v1/jobs/%s HTTP/1.1\r\nHost: x\r\nConnection: close"
+                                  b"\r\n\r\n" % job_id.encode())
+        status = json.loads(resp.body or b"{}").get("status", "")
+        time.sleep(0.05)
+    threads = thread_table(server.proc.pid)
+    base = threads.get(server.proc.pid, ("", None))[1]
+    by_name = {}
+    for tid, (name, nice) in threads.items():
+        by_name.setdefault(name, []).append(nice)
+    expected = {"mdp-http": [base], "mdp-upload": [min(19, base + 10)],
+                "mdp-solve": [min(19, base + 10)] * 2}
+    R.check("k: after a solve on 2 threads: 1 mdp-http thread at the process's nice value "
+            "(%s), 1 mdp-upload and 2 mdp-solve threads (the worker and its OpenMP thread) "
+            "10 higher" % base, status == "succeeded" and
+            {k: sorted(by_name.get(k, [])) for k in expected} == expected,
+            "job %s %s, threads %s" % (job_id, status, by_name))
+
+
+def thread_table(pid):
+    """{thread id: (name, nice value)} of process `pid`, from /proc."""
+    out = {}
+    for task in glob.glob("/proc/%d/task/*" % pid):
+        try:
+            with open(os.path.join(task, "stat")) as f:
+                stat = f.read()
+        except OSError:
+            continue  # The thread ended meanwhile.
+        name = stat[stat.index("(") + 1:stat.rindex(")")]
+        fields = stat[stat.rindex(")") + 2:].split()
+        out[int(os.path.basename(task))] = (name, int(fields[16]))  # Field 19: nice.
+    return out
+
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
@@ -2252,6 +2299,7 @@ def main():
                                                    "--idle-timeout", "2",
                                                    "--body-limit", "65536"]), root, 2)
             scenario_k(api, server("large-requests", ["--memory-store", "--http-threads", "1",
+                                                      "--solver-threads", "2",
                                                       "--log-level", "info"]))
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback

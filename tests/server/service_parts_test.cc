@@ -3,9 +3,12 @@
 // server/job_queue (bounded queue, workers) and server/problem (status -> RFC 9457).
 #include <gtest/gtest.h>
 
+#include <algorithm>
 #include <atomic>
 #include <chrono>
+#include <mutex>
 #include <thread>
+#include <vector>
 
 #include "server/canonical.h"
 #include "server/job_queue.h"
@@ -13,6 +16,7 @@
 #include "server/problem.h"
 #include "server/result_cache.h"
 #include "server/solution_blob.h"
+#include "server/thread_setup.h"
 #include "solver/solver.h"
 #include "tests/testing/test_models.h"
 
@@ -205,6 +209,66 @@ TEST(JobQueueTest, FullQueueRefusesAndShutdownDropsTheWaiting) {
   const int64_t dropped = queue.Shutdown();
   EXPECT_LE(dropped, 2);
   EXPECT_EQ(queue.Submit(blocker).code(), StatusCode::kUnavailable);
+}
+
+TEST(JobQueueTest, WorkersAndTheThreadsTheyStartRunAtTheRaisedNiceValue) {
+  const int base = ThisThreadNiceness();
+  const int expected = std::min(19, base + 3);
+  JobQueue queue(1, 10, 3);
+  std::mutex mu;
+  std::vector<int> seen;  // The worker's nice value, then its OpenMP team's.
+  std::atomic<bool> done{false};
+  auto record = [&] {
+    {
+      std::lock_guard<std::mutex> lock(mu);
+      seen.push_back(ThisThreadNiceness());
+    }
+#pragma omp parallel num_threads(3)
+    {
+      std::lock_guard<std::mutex> lock(mu);
+      seen.push_back(ThisThreadNiceness());
+    }
+    done = true;
+  };
+  ASSERT_TRUE(queue.Submit(record).ok());
+  for (int i = 0; i < 500 && !done; ++i) std::this_thread::sleep_for(std::chrono::milliseconds(10));
+  ASSERT_TRUE(done.load());
+  ASSERT_EQ(seen.size(), 4u);
+  for (int nice : seen) EXPECT_EQ(nice, expected);
+  EXPECT_EQ(ThisThreadNiceness(), base);  // The caller's own priority is untouched.
+  // A queue without an increment leaves its workers at the caller's value.
+  JobQueue plain(1, 10);
+  std::atomic<int> plain_nice{-100};
+  ASSERT_TRUE(plain.Submit([&] { plain_nice = ThisThreadNiceness(); }).ok());
+  for (int i = 0; i < 500 && plain_nice == -100; ++i) {
+    std::this_thread::sleep_for(std::chrono::milliseconds(10));
+  }
+  EXPECT_EQ(plain_nice.load(), base);
+}
+
+TEST(ThreadSetupTest, NicenessIsCappedAt19AndIncrementsAreChecked) {
+  std::vector<int> after;
+  Status first = Status::Ok();
+  Status second = Status::Ok();
+  Status bad = Status::Ok();
+  std::thread t([&] {
+    first = RaiseThisThreadNiceness(15);
+    after.push_back(ThisThreadNiceness());
+    second = RaiseThisThreadNiceness(15);
+    after.push_back(ThisThreadNiceness());
+    bad = RaiseThisThreadNiceness(20);
+    after.push_back(ThisThreadNiceness());
+  });
+  t.join();
+  EXPECT_TRUE(first.ok()) << first.message();
+  EXPECT_TRUE(second.ok()) << second.message();
+  EXPECT_EQ(bad.code(), StatusCode::kInvalidArgument);
+  ASSERT_EQ(after.size(), 3u);
+  EXPECT_EQ(after[0], std::min(19, ThisThreadNiceness() + 15));
+  EXPECT_EQ(after[1], 19);
+  EXPECT_EQ(after[2], 19);
+  EXPECT_TRUE(CheckThreadNiceness(5).ok());
+  EXPECT_EQ(CheckThreadNiceness(-1).code(), StatusCode::kInvalidArgument);
 }
 
 TEST(ProblemTest, MapsStatusesToHttpAndRfc9457Bodies) {
