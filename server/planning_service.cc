@@ -588,26 +588,32 @@ std::string PlanningService::CurrentSolution(const std::string& model_id) {
 
 Result<std::shared_ptr<const Model>> PlanningService::LoadModel(const std::string& model_id) {
   if (auto model = cache_.GetModel(model_id)) return model;
-  Result<ModelRecord> record = store_.GetModel(model_id, true);
-  if (!record.ok()) return record.status();
-  Result<Model> compiled = CompileStoredModel(model_id, std::move(record->document),
-                                              options_.limits);
-  if (!compiled.ok()) return compiled.status();
-  auto model = std::make_shared<const Model>(std::move(*compiled));
-  cache_.PutModel(model_id, model);
-  return model;
+  // Concurrent misses share one read and compilation (single_flight.h).
+  return model_loads_.Do(model_id, [&]() -> Result<std::shared_ptr<const Model>> {
+    Result<ModelRecord> record = store_.GetModel(model_id, true);
+    if (!record.ok()) return record.status();
+    Result<Model> compiled =
+        CompileStoredModel(model_id, std::move(record->document), options_.limits);
+    if (!compiled.ok()) return compiled.status();
+    auto model = std::make_shared<const Model>(std::move(*compiled));
+    cache_.PutModel(model_id, model);
+    return model;
+  });
 }
 
 Result<std::shared_ptr<const Solution>> PlanningService::LoadSolution(
     const std::string& solution_id, const Model& model) {
   if (auto solution = cache_.GetSolution(solution_id)) return solution;
-  Result<SolutionRecord> record = store_.GetSolution(solution_id, true);
-  if (!record.ok()) return record.status();
-  Result<Solution> decoded = DecodeSolutionBlob(record->data, model.num_states(), model.num_rows());
-  if (!decoded.ok()) return decoded.status();
-  auto solution = std::make_shared<const Solution>(std::move(*decoded));
-  cache_.PutSolution(solution_id, solution);
-  return solution;
+  return solution_loads_.Do(solution_id, [&]() -> Result<std::shared_ptr<const Solution>> {
+    Result<SolutionRecord> record = store_.GetSolution(solution_id, true);
+    if (!record.ok()) return record.status();
+    Result<Solution> decoded =
+        DecodeSolutionBlob(record->data, model.num_states(), model.num_rows());
+    if (!decoded.ok()) return decoded.status();
+    auto solution = std::make_shared<const Solution>(std::move(*decoded));
+    cache_.PutSolution(solution_id, solution);
+    return solution;
+  });
 }
 
 Result<Plan> PlanningService::GetPlan(const std::string& model_id,

@@ -21,6 +21,7 @@
 #include "server/job_queue.h"
 #include "server/model_codec.h"
 #include "server/result_cache.h"
+#include "server/single_flight.h"
 #include "server/store.h"
 #include "solver/solver.h"
 
@@ -187,6 +188,8 @@ class PlanningService {
   ResultCache cache_;
   std::atomic<bool> accepting_{true};
 
+  SingleFlight<std::shared_ptr<const Model>> model_loads_;
+  SingleFlight<std::shared_ptr<const Solution>> solution_loads_;
   std::mutex mu_;
   std::map<std::string, std::shared_ptr<ActiveJob>> active_;  // By job id. GUARDED_BY(mu_)
   std::map<std::string, std::string> active_by_solution_;     // Solution id -> job id.

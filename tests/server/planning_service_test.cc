@@ -5,8 +5,11 @@
 
 #include <gtest/gtest.h>
 
+#include <atomic>
 #include <chrono>
+#include <optional>
 #include <thread>
+#include <vector>
 
 #include "server/api_codec.h"
 #include "server/canonical.h"
@@ -240,6 +243,72 @@ TEST_F(PlanningServiceTest, EvictedSolutionsAreReloadedFromTheStore) {
   AppendBestAction(a, *plan, 0);
   AppendBestAction(b, *service.GetPlan(id, ""), 0);
   EXPECT_EQ(a, b);
+}
+
+// A store that counts the reads that return a model's document or a solution's data.
+class CountingStore : public Store {
+ public:
+  explicit CountingStore(Store& inner) : inner_(inner) {}
+  int64_t MaxValueBytes() override { return inner_.MaxValueBytes(); }
+  Status PutModel(const ModelRecord& m, bool* created) override {
+    return inner_.PutModel(m, created);
+  }
+  Result<ModelRecord> GetModel(const std::string& id, bool with_document) override {
+    if (with_document) ++model_reads;
+    std::this_thread::sleep_for(std::chrono::milliseconds(with_document ? 100 : 0));
+    return inner_.GetModel(id, with_document);
+  }
+  Result<std::vector<ModelRecord>> ListModels() override { return inner_.ListModels(); }
+  Status DeleteModel(const std::string& id) override { return inner_.DeleteModel(id); }
+  Status PutSolution(const SolutionRecord& s) override { return inner_.PutSolution(s); }
+  Result<SolutionRecord> GetSolution(const std::string& id, bool with_data) override {
+    if (with_data) ++solution_reads;
+    std::this_thread::sleep_for(std::chrono::milliseconds(with_data ? 100 : 0));
+    return inner_.GetSolution(id, with_data);
+  }
+  Result<std::vector<SolutionRecord>> ListSolutions(const std::string& model_id) override {
+    return inner_.ListSolutions(model_id);
+  }
+  Status PutJob(const JobRecord& job) override { return inner_.PutJob(job); }
+  Result<JobRecord> GetJob(const std::string& id) override { return inner_.GetJob(id); }
+  Result<std::vector<JobRecord>> ListJobs(const std::string& model_id,
+                                          std::optional<JobStatus> status,
+                                          int64_t limit) override {
+    return inner_.ListJobs(model_id, status, limit);
+  }
+  std::atomic<int> model_reads{0};
+  std::atomic<int> solution_reads{0};
+
+ private:
+  Store& inner_;
+};
+
+TEST_F(PlanningServiceTest, ConcurrentQueriesOfAColdModelReadItOnce) {
+  std::string id;
+  {
+    PlanningService first(*store_, ServiceOptions{});
+    ASSERT_TRUE(first.Start().ok());
+    id = first.UploadModel(kGreenhouse)->record.id;
+    const std::string job = first.StartSolve(id, SolveOptions{})->job->record.id;
+    ASSERT_EQ(WaitForEnd(first, job).record.status, JobStatus::kSucceeded);
+  }
+  // A restart: a new service on the same store, nothing cached. Each store read of a
+  // document takes 100 ms here, so the 6 queries all arrive while the first read runs.
+  CountingStore counting(*store_);
+  PlanningService service(counting, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  std::vector<std::thread> queries;
+  std::atomic<int> answered{0};
+  for (int i = 0; i < 6; ++i) {
+    queries.emplace_back([&] {
+      Result<Plan> plan = service.GetPlan(id, "");
+      if (plan.ok() && static_cast<StateId>(plan->solution->values.size()) == plan->model->num_states()) ++answered;
+    });
+  }
+  for (std::thread& t : queries) t.join();
+  EXPECT_EQ(answered.load(), 6);
+  EXPECT_EQ(counting.model_reads.load(), 1);
+  EXPECT_EQ(counting.solution_reads.load(), 1);
 }
 
 TEST_F(PlanningServiceTest, DeleteRemovesModelSolutionsAndJobs) {

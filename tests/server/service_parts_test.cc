@@ -15,6 +15,7 @@
 #include "server/model_codec.h"
 #include "server/problem.h"
 #include "server/result_cache.h"
+#include "server/single_flight.h"
 #include "server/solution_blob.h"
 #include "server/thread_setup.h"
 #include "solver/solver.h"
@@ -244,6 +245,54 @@ TEST(JobQueueTest, WorkersAndTheThreadsTheyStartRunAtTheRaisedNiceValue) {
     std::this_thread::sleep_for(std::chrono::milliseconds(10));
   }
   EXPECT_EQ(plain_nice.load(), base);
+}
+
+TEST(SingleFlightTest, ConcurrentCallsForOneKeyShareOneLoad) {
+  SingleFlight<int> flight;
+  std::atomic<int> loads{0};
+  auto slow = [&]() -> Result<int> {
+    ++loads;
+    std::this_thread::sleep_for(std::chrono::milliseconds(200));
+    return 42;
+  };
+  std::vector<std::thread> callers;
+  std::vector<int> got(8, 0);
+  for (int i = 0; i < 8; ++i) {
+    callers.emplace_back([&, i] {
+      Result<int> r = flight.Do("model", slow);
+      got[i] = r.ok() ? *r : -1;
+    });
+  }
+  for (std::thread& t : callers) t.join();
+  // All 8 start within the 200 ms the first load takes; the others wait for it.
+  EXPECT_EQ(loads.load(), 1);
+  for (int v : got) EXPECT_EQ(v, 42);
+  // Results are not kept: the next call loads again.
+  EXPECT_EQ(*flight.Do("model", slow), 42);
+  EXPECT_EQ(loads.load(), 2);
+}
+
+TEST(SingleFlightTest, DifferentKeysLoadAtOnceAndErrorsAreSharedNotKept) {
+  SingleFlight<int> flight;
+  std::atomic<int> inside{0};
+  std::atomic<int> most_inside{0};
+  auto load = [&]() -> Result<int> {
+    const int now = ++inside;
+    int seen = most_inside.load();
+    while (now > seen && !most_inside.compare_exchange_weak(seen, now)) {
+    }
+    std::this_thread::sleep_for(std::chrono::milliseconds(100));
+    --inside;
+    return NotFoundError("no such model");
+  };
+  std::vector<Status> statuses(4, Status::Ok());
+  std::vector<std::thread> callers;
+  for (int i = 0; i < 4; ++i) {
+    callers.emplace_back([&, i] { statuses[i] = flight.Do(i < 2 ? "a" : "b", load).status(); });
+  }
+  for (std::thread& t : callers) t.join();
+  EXPECT_EQ(most_inside.load(), 2);  // "a" and "b" at the same time, never two of one key.
+  for (const Status& st : statuses) EXPECT_EQ(st.code(), StatusCode::kNotFound);
 }
 
 TEST(ThreadSetupTest, NicenessIsCappedAt19AndIncrementsAreChecked) {
