@@ -23,6 +23,7 @@ struct ServerConfig {
   int workers = 1;                         // Solve worker threads.
   int solver_threads = 0;                  // Threads per solve for sweeps; 0 = automatic.
   int http_threads = 0;                    // HTTP threads (requests handled at once); 0: auto.
+  bool warm_start = true;  // Load stored models with solutions into the cache after a start.
   int background_niceness = 10;  // Added to the nice value of solve and large-upload threads.
   int idle_timeout_seconds = 30;           // Silent connections are closed after this.
   int64_t body_limit = int64_t{256} << 20;  // Request body cap in bytes.

@@ -99,6 +99,19 @@ class PlanningService {
   // Recovers after a restart: jobs that were running are marked failed (their process died
   // under them), queued ones are queued again; each model's newest solution becomes current.
   Status Start();
+
+  struct WarmUpResult {
+    int64_t models = 0;   // Loaded, each with its current solution.
+    int64_t skipped = 0;  // Would not have fitted in what the cache budget had left.
+    int64_t failed = 0;   // Could not be loaded (the query will say why).
+  };
+  // Loads the stored models that have a solution, with their current solutions, into the
+  // cache, newest first, each only if its estimated size fits in what the budget has left
+  // (nothing is evicted for it); stops once the service stops accepting. For a thread of its
+  // own after Start() (serve.cc): a query of a model being loaded waits for that load
+  // instead of starting another (single_flight.h), so the first queries after a restart do
+  // not each wait for the store.
+  WarmUpResult WarmUp();
   // Stops accepting work, lets running jobs finish for up to `deadline_seconds`, then cancels
   // them (they go back to queued, and run again at the next Start()). Idempotent.
   void Shutdown(double deadline_seconds);

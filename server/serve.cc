@@ -228,6 +228,24 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
                config.memory_store ? "memory" : config.data_dir);
   PrintExamples(base, loaded, out);
 
+  // Warm start: on a background thread below the HTTP threads' priority, like the solves.
+  std::thread warmer;
+  if (config.warm_start) {
+    warmer = std::thread([&service, niceness = config.background_niceness] {
+      NameThisThread("mdp-warm");
+      (void)RaiseThisThreadNiceness(niceness);
+      const auto start = std::chrono::steady_clock::now();
+      const PlanningService::WarmUpResult warmed = service.WarmUp();
+      const double seconds =
+          std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+      if (warmed.models + warmed.skipped + warmed.failed == 0) return;
+      spdlog::info(
+          "warm start: {} models with their solutions loaded into the cache in {:.1f} s "
+          "({} MB cached); {} did not fit in the cache budget, {} could not be loaded",
+          warmed.models, seconds, service.cache().bytes() >> 20, warmed.skipped, warmed.failed);
+    });
+  }
+
   const double drain = config.drain_seconds;
   std::thread waiter([&stop_signals, &server, &service, drain] {
     int signal_number = 0;
@@ -241,6 +259,7 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
   // Serve() also returns if the listener fails; make sure the waiter can finish.
   pthread_kill(waiter.native_handle(), SIGTERM);
   waiter.join();
+  if (warmer.joinable()) warmer.join();  // The waiter stopped accepting: it ends after a load.
   service.Shutdown(config.shutdown_deadline);
   spdlog::info("stopped cleanly");
   return 0;

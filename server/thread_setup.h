@@ -13,7 +13,7 @@ namespace mdp::server {
 
 // Names the calling thread (at most 15 characters are kept): "mdp-http" answers requests,
 // "mdp-upload" parses large ones, "mdp-solve" runs jobs; a solve's OpenMP threads inherit
-// the name of the worker that started them.
+// the name of the worker that started them; "mdp-warm" fills the cache after a start.
 void NameThisThread(const char* name);
 
 // Raises the calling thread's nice value by `increment` (0 to 19; the result is capped at 19).

@@ -13,7 +13,8 @@ Starts `mdpserve serve` processes on 127.0.0.1 with ephemeral ports (--listen 12
       batch, explain (q = expected_reward + discounted_next_value), solution list, report and
       tables, verify (the solution's own values and policy pass, a perturbed policy fails
       and names the state), the same solve again answers 200 cached;
-  (b) restart: SIGTERM exits 0 within a bound; a new process on the same --data-dir gives
+  (b) restart: SIGTERM exits 0 within a bound; a new process on the same --data-dir has the
+      solved models and their solutions cached before any query (warm start) and gives
       byte-identical answers;
   (c) kill -9 during a solve: after a restart the job is failed with a reason naming the
       stop, and the store is intact (models listed, earlier answers identical, writable);
@@ -946,6 +947,35 @@ def scenario_b(api, server, m):
             code == 0, "exit code %s" % code)
     server.start()
     client = Client(api, server)
+    # Warm start: before any query, the solved models and their solutions are loaded into the
+    # cache by a background thread (each solved model counts 2 entries).
+    solved = len(m["solutions"])
+    deadline = time.monotonic() + 20
+    entries = misses = -1
+    while time.monotonic() < deadline:
+        samples = metric_samples(client.call("GET", "/metrics", expect=200,
+                                             name="b: metrics after restart").body.decode())
+        entries = samples.get(("mdpserve_cache_entries", ()), -1)
+        if entries >= 2 * solved:
+            break
+        time.sleep(0.05)
+    R.check("b: warm start: the %d solved models and their solutions are cached before any "
+            "query (%d entries)" % (solved, entries), entries >= 2 * solved)
+    # The solve stopped by SIGTERM runs again now and looks up its model; the miss counter is
+    # read once it has ended, so that only the queries below can move it.
+    view = wait_job(client, job_id, ("succeeded", "failed", "cancelled"), timeout=JOB_TIMEOUT)
+    miss = ("mdpserve_cache_requests_total", (("result", "miss"),))
+    samples = metric_samples(client.call("GET", "/metrics", expect=200,
+                                         name="b: metrics after the re-run solve").body.decode())
+    misses = samples.get(miss, -1)
+    for state in ("worn_peak", "new_peak"):
+        client.call("GET", "/v1/models/{id}/policy", {"id": m["pump_id"]}, {"state": state},
+                    expect=200, name="b: first queries after the restart")
+    samples = metric_samples(client.call("GET", "/metrics", expect=200,
+                                         name="b: metrics after the first queries").body.decode())
+    R.check("b: the first queries after the restart found the model and its solution cached "
+            "(cache misses %s before them, %s after)" % (misses, samples.get(miss)),
+            misses >= 0 and samples.get(miss) == misses)
     client.call("GET", "/readyz", expect=200, name="b: restarted server is ready")
     after = snapshot(client, m)
     compare_snapshots(before, after, "b: after restart")

@@ -311,6 +311,46 @@ TEST_F(PlanningServiceTest, ConcurrentQueriesOfAColdModelReadItOnce) {
   EXPECT_EQ(counting.solution_reads.load(), 1);
 }
 
+TEST_F(PlanningServiceTest, WarmUpLoadsSolvedModelsThatFitTheCacheBudget) {
+  auto renamed = [](const std::string& name) {
+    std::string doc(kGreenhouse);
+    doc.replace(doc.find("\"Greenhouse\""), 12, "\"" + name + "\"");
+    return doc;
+  };
+  std::vector<std::string> solved;
+  {
+    PlanningService first(*store_, ServiceOptions{});
+    ASSERT_TRUE(first.Start().ok());
+    for (const char* name : {"Greenhouse A", "Greenhouse B"}) {
+      const std::string id = first.UploadModel(renamed(name))->record.id;
+      const std::string job = first.StartSolve(id, SolveOptions{})->job->record.id;
+      ASSERT_EQ(WaitForEnd(first, job).record.status, JobStatus::kSucceeded);
+      solved.push_back(id);
+    }
+    ASSERT_TRUE(first.UploadModel(renamed("Greenhouse unsolved")).ok());
+  }
+  PlanningService service(*store_, ServiceOptions{});
+  ASSERT_TRUE(service.Start().ok());
+  const PlanningService::WarmUpResult warmed = service.WarmUp();
+  EXPECT_EQ(warmed.models, 2);  // The unsolved model is not loaded.
+  EXPECT_EQ(warmed.skipped, 0);
+  EXPECT_EQ(warmed.failed, 0);
+  EXPECT_EQ(service.cache().entries(), 4);  // 2 models and their solutions.
+  const int64_t misses = service.cache().misses();
+  for (const std::string& id : solved) ASSERT_TRUE(service.GetPlan(id, "").ok());
+  EXPECT_EQ(service.cache().misses(), misses);  // The queries found everything cached.
+
+  // A budget below the models' estimated size: nothing is loaded (nothing to evict for).
+  ServiceOptions small;
+  small.cache_bytes = 100;
+  PlanningService tight(*store_, small);
+  ASSERT_TRUE(tight.Start().ok());
+  const PlanningService::WarmUpResult none = tight.WarmUp();
+  EXPECT_EQ(none.models, 0);
+  EXPECT_EQ(none.skipped, 2);
+  EXPECT_EQ(tight.cache().entries(), 0);
+}
+
 TEST_F(PlanningServiceTest, DeleteRemovesModelSolutionsAndJobs) {
   PlanningService service(*store_, ServiceOptions{});
   ASSERT_TRUE(service.Start().ok());
