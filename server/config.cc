@@ -32,20 +32,20 @@ void AddServeOptions(CLI::App* app, ServerConfig& c) {
       ->capture_default_str()
       ->check(CLI::Range(0, 1024));
   app->add_flag("--warm-start,!--no-warm-start", c.warm_start,
-                "after a start, load the stored models that have solutions, with those "
-                "solutions, into the cache on a background thread (newest first, while they "
-                "fit in --cache-bytes), so that the first queries do not wait for the store; "
-                "the service answers meanwhile, and a query of a model being loaded waits for "
-                "that load")
+                "on by default: after a start, load the stored models that have solutions, "
+                "with those solutions, into the cache on a background thread (newest first, "
+                "while they fit in --cache-bytes), so that the first queries do not wait for "
+                "the store; the service answers meanwhile, and a query of a model being loaded "
+                "waits for that load")
       ->envname("MDPSERVE_WARM_START")
       ->capture_default_str();
   app->add_option("--background-niceness", c.background_niceness,
                   "how far below the HTTP threads the long work runs (solve jobs, the threads "
-                  "each solve sweeps with, and the thread that parses large uploads): added to "
-                  "their Linux nice value, 0 to 19, 0 = the same priority; it leaves the "
-                  "queries their CPU while a solve runs; a solve still takes every core the "
-                  "queries leave idle, but other programs on the machine at normal priority "
-                  "come first")
+                  "each solve sweeps with, the thread that parses large uploads, and the warm "
+                  "start): added to their Linux nice value, 0 to 19, 0 = the same priority; it "
+                  "leaves the queries their CPU while a solve runs; a solve still takes every "
+                  "core the queries leave idle, but other programs on the machine at normal "
+                  "priority come first")
       ->envname("MDPSERVE_BACKGROUND_NICENESS")
       ->capture_default_str()
       ->check(CLI::Range(0, 19));
