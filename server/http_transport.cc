@@ -329,9 +329,7 @@ struct HttpTransport::Impl {
   // Answers the requests Offload() queued, the queue's remainder included once stopping,
   // and gives each connection back to the set to write its answer and read on.
   void WorkOnLargeRequests() {
-    NameThisThread("mdp-upload");
-    // Refused: the thread keeps the others' priority (serve.cc logs that once at start).
-    (void)RaiseThisThreadNiceness(options.large_request_niceness);
+    BecomeBackgroundThread("mdp-upload", options.large_request_niceness);
     for (;;) {
       Conn* c = nullptr;
       {

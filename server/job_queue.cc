@@ -53,10 +53,7 @@ int64_t JobQueue::Shutdown() {
 }
 
 void JobQueue::WorkerLoop() {
-  // If the kernel refuses, the worker keeps the HTTP threads' priority: slower queries while
-  // a solve runs, nothing worse. serve.cc checks this once at start and says so in the log.
-  NameThisThread("mdp-solve");
-  (void)RaiseThisThreadNiceness(niceness_);
+  BecomeBackgroundThread("mdp-solve", niceness_);
   for (;;) {
     Task task;
     {

@@ -110,7 +110,8 @@ void GetModel(HttpContext& ctx, const Request&, Response& res) {
 
 // Sent in chunks of 1 MiB as it is written: the text of a 1M-state model is 2.4 GB.
 void GetModelDocument(HttpContext& ctx, const Request&, Response& res) {
-  Result<PlanningService::ModelDocument> document = ctx.service.GetModelDocument(ctx.path_params[0]);
+  Result<PlanningService::ModelDocument> document =
+      ctx.service.GetModelDocument(ctx.path_params[0]);
   if (!document.ok()) return WriteProblem(res, document.status());
   if (document->spec == nullptr) return WriteJson(res, 200, document->text);
   res.status = 200;
@@ -277,7 +278,8 @@ void ListSolutions(HttpContext& ctx, const Request&, Response& res) {
 }
 
 void GetSolution(HttpContext& ctx, const Request&, Response& res) {
-  Result<SolutionRecord> record = ctx.service.GetSolutionRecord(ctx.path_params[0], ctx.path_params[1]);
+  Result<SolutionRecord> record =
+      ctx.service.GetSolutionRecord(ctx.path_params[0], ctx.path_params[1]);
   if (!record.ok()) return WriteProblem(res, record.status());
   WriteJson(res, 200, EncodeSolutionRecord(*record).dump());
 }
@@ -313,7 +315,8 @@ void Verify(HttpContext& ctx, const Request& req, Response& res) {
 void Compare(HttpContext& ctx, const Request& req, Response& res) {
   if (!req.has_param("with")) return WriteProblem(res, MissingParam("with"));
   Result<ComparisonReport> report = ctx.service.Compare(
-      ctx.path_params[0], Param(req, "solution_id"), Param(req, "with"), Param(req, "with_solution_id"));
+      ctx.path_params[0], Param(req, "solution_id"), Param(req, "with"),
+      Param(req, "with_solution_id"));
   if (!report.ok()) return WriteProblem(res, report.status());
   WriteJson(res, 200, EncodeComparison(*report).dump());
 }

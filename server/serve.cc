@@ -5,6 +5,7 @@
 #include <spdlog/spdlog.h>
 
 #include <chrono>
+#include <functional>
 #include <ostream>
 #include <thread>
 #include <utility>
@@ -129,6 +130,21 @@ void PrintExamples(const std::string& base,
       << std::flush;
 }
 
+// The warm start (PlanningService::WarmUp), on a background thread below the HTTP threads'
+// priority like the solves; logs what it loaded.
+void WarmCache(PlanningService& service, int niceness) {
+  BecomeBackgroundThread("mdp-warm", niceness);
+  const auto start = std::chrono::steady_clock::now();
+  const PlanningService::WarmUpResult warmed = service.WarmUp();
+  const double seconds =
+      std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  if (warmed.models + warmed.skipped + warmed.failed == 0) return;
+  spdlog::info(
+      "warm start: {} models with their solutions loaded into the cache in {:.1f} s ({} MB "
+      "cached); {} did not fit in the cache budget, {} could not be loaded",
+      warmed.models, seconds, service.cache().bytes() >> 20, warmed.skipped, warmed.failed);
+}
+
 }  // namespace
 
 int RunServe(const ServerConfig& config, std::ostream& out) {
@@ -228,22 +244,9 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
                config.memory_store ? "memory" : config.data_dir);
   PrintExamples(base, loaded, out);
 
-  // Warm start: on a background thread below the HTTP threads' priority, like the solves.
   std::thread warmer;
   if (config.warm_start) {
-    warmer = std::thread([&service, niceness = config.background_niceness] {
-      NameThisThread("mdp-warm");
-      (void)RaiseThisThreadNiceness(niceness);
-      const auto start = std::chrono::steady_clock::now();
-      const PlanningService::WarmUpResult warmed = service.WarmUp();
-      const double seconds =
-          std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
-      if (warmed.models + warmed.skipped + warmed.failed == 0) return;
-      spdlog::info(
-          "warm start: {} models with their solutions loaded into the cache in {:.1f} s "
-          "({} MB cached); {} did not fit in the cache budget, {} could not be loaded",
-          warmed.models, seconds, service.cache().bytes() >> 20, warmed.skipped, warmed.failed);
-    });
+    warmer = std::thread(WarmCache, std::ref(service), config.background_niceness);
   }
 
   const double drain = config.drain_seconds;

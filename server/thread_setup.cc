@@ -39,6 +39,11 @@ Status RaiseThisThreadNiceness(int increment) {
   return Status::Ok();
 }
 
+void BecomeBackgroundThread(const char* name, int increment) {
+  NameThisThread(name);
+  (void)RaiseThisThreadNiceness(increment);
+}
+
 Status CheckThreadNiceness(int increment) {
   Status status = Status::Ok();
   std::thread probe([&status, increment] { status = RaiseThisThreadNiceness(increment); });

@@ -25,6 +25,12 @@ Status RaiseThisThreadNiceness(int increment);
 // The nice value of the calling thread.
 int ThisThreadNiceness();
 
+// A background thread's start: NameThisThread(name), then RaiseThisThreadNiceness(increment).
+// If the kernel refuses the raise, the thread keeps its creator's priority (slower queries
+// while it works, nothing worse); serve.cc checks that once at start (CheckThreadNiceness)
+// and says so in the log.
+void BecomeBackgroundThread(const char* name, int increment);
+
 // Whether RaiseThisThreadNiceness(increment) works here: tries it on a short-lived thread of
 // its own, so the caller's priority is unchanged.
 Status CheckThreadNiceness(int increment);

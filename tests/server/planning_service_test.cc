@@ -302,7 +302,10 @@ TEST_F(PlanningServiceTest, ConcurrentQueriesOfAColdModelReadItOnce) {
   for (int i = 0; i < 6; ++i) {
     queries.emplace_back([&] {
       Result<Plan> plan = service.GetPlan(id, "");
-      if (plan.ok() && static_cast<StateId>(plan->solution->values.size()) == plan->model->num_states()) ++answered;
+      if (plan.ok() && static_cast<StateId>(plan->solution->values.size()) ==
+                           plan->model->num_states()) {
+        ++answered;
+      }
     });
   }
   for (std::thread& t : queries) t.join();
