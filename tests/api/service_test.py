@@ -85,6 +85,7 @@ class Report:
     def __init__(self):
         self.passed = 0
         self.failed = 0
+        self.failures = []  # repeated at the end, where a truncated log still shows them
         self.lock = threading.Lock()
 
     def check(self, name, ok, detail=""):
@@ -94,7 +95,9 @@ class Report:
                 print("PASS %s" % name)
             else:
                 self.failed += 1
-                print("FAIL %s%s" % (name, (": %s" % detail) if detail else ""))
+                line = "FAIL %s%s" % (name, (": %s" % detail) if detail else "")
+                self.failures.append(line[:2000])
+                print(line)
             sys.stdout.flush()
         return ok
 
@@ -2347,6 +2350,10 @@ def main():
                         print("--- last lines of the %s server's log:\n%s" %
                               (s.name, tail.decode("utf-8", "replace")))
     print("(%.1f s)" % (time.monotonic() - started))
+    if R.failures:
+        print("--- the failed checks again:")
+        for line in R.failures:
+            print(line)
     print("%d passed, %d failed" % (R.passed, R.failed))
     return 1 if R.failed else 0
 
