@@ -355,6 +355,16 @@ void PlanningService::Persist(ActiveJob& job) {
   if (options_.on_job_event) options_.on_job_event(copy);
 }
 
+int64_t PlanningService::CountActiveJobs(JobStatus status) const {
+  int64_t count = 0;
+  std::lock_guard<std::mutex> lock(mu_);
+  for (const auto& [id, job] : active_) {
+    std::lock_guard<std::mutex> job_lock(job->mu);
+    count += job->record.status == status;
+  }
+  return count;
+}
+
 JobView PlanningService::ViewOf(ActiveJob& job) {
   std::lock_guard<std::mutex> lock(job.mu);
   JobView view{job.record, job.progress, job.phase};
@@ -365,13 +375,19 @@ JobView PlanningService::ViewOf(ActiveJob& job) {
 void PlanningService::RunJob(const std::shared_ptr<ActiveJob>& job) {
   { std::lock_guard<std::mutex> barrier(mu_); }
   bool skip = false;
+  bool cancelled_in_queue = false;
   {
     std::lock_guard<std::mutex> lock(job->mu);
-    skip = job->record.status == JobStatus::kCancelled || job->cancel.cancelled();
+    cancelled_in_queue = job->record.status == JobStatus::kCancelled;
+    skip = cancelled_in_queue || job->cancel.cancelled();
     if (!skip) {
       job->record.status = JobStatus::kRunning;
       job->record.started_at = NowRfc3339();
     }
+  }
+  if (cancelled_in_queue) {  // CancelJob ended, stored and counted it.
+    Retire(*job);
+    return;
   }
   Status status = Status(StatusCode::kCancelled, "cancelled before it started");
   const auto started = std::chrono::steady_clock::now();
@@ -382,35 +398,48 @@ void PlanningService::RunJob(const std::shared_ptr<ActiveJob>& job) {
                                               : RunVerify(*job);
     ReturnFreedMemory();  // The job's working memory is freed by now.
   }
+  JobRecord final_record;
+  bool stopped_by_shutdown = false;
   {
     std::lock_guard<std::mutex> lock(job->mu);
-    if (job->stopped_by_shutdown && status.code() == StatusCode::kCancelled) {
-      job->record.status = JobStatus::kQueued;  // Runs again after the restart.
-      job->record.started_at.clear();
-    } else if (status.code() == StatusCode::kCancelled) {
-      job->record.status = JobStatus::kCancelled;
-      job->record.error = "cancelled";
-      job->record.finished_at = NowRfc3339();
+    final_record = job->record;
+    stopped_by_shutdown = job->stopped_by_shutdown;
+  }
+  if (stopped_by_shutdown && status.code() == StatusCode::kCancelled) {
+    final_record.status = JobStatus::kQueued;  // Runs again after the restart.
+    final_record.started_at.clear();
+  } else {
+    if (status.code() == StatusCode::kCancelled) {
+      final_record.status = JobStatus::kCancelled;
+      final_record.error = "cancelled";
     } else if (!status.ok()) {
-      job->record.status = JobStatus::kFailed;
-      job->record.error = status.message();
-      job->record.finished_at = NowRfc3339();
+      final_record.status = JobStatus::kFailed;
+      final_record.error = status.message();
     } else {
-      job->record.status = JobStatus::kSucceeded;
-      job->record.finished_at = NowRfc3339();
+      final_record.status = JobStatus::kSucceeded;
+    }
+    final_record.finished_at = NowRfc3339();
+    // Counted before GET shows the end, so that a client that sees a job end finds it in
+    // mdpserve_jobs_finished_total and the duration histogram.
+    if (options_.on_job_finished) {
+      options_.on_job_finished(
+          final_record,
+          std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count());
     }
   }
-  Persist(*job);
-  if (options_.on_job_finished) {
-    const double seconds =
-        std::chrono::duration<double>(std::chrono::steady_clock::now() - started).count();
+  {
     std::lock_guard<std::mutex> lock(job->mu);
-    options_.on_job_finished(job->record, seconds);
+    job->record = std::move(final_record);
   }
+  Persist(*job);
+  Retire(*job);
+}
+
+void PlanningService::Retire(const ActiveJob& job) {
   std::lock_guard<std::mutex> lock(mu_);
-  active_.erase(job->record.id);
+  active_.erase(job.record.id);
   for (auto it = active_by_solution_.begin(); it != active_by_solution_.end(); ++it) {
-    if (it->second == job->record.id) {
+    if (it->second == job.record.id) {
       active_by_solution_.erase(it);
       break;
     }
@@ -573,6 +602,7 @@ Result<JobView> PlanningService::CancelJob(const std::string& id) {
       job->record.status = JobStatus::kCancelled;
       job->record.error = "cancelled";
       job->record.finished_at = NowRfc3339();
+      if (options_.on_job_finished) options_.on_job_finished(job->record, 0.0);
       was_queued = true;
     }
   }

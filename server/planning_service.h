@@ -35,8 +35,9 @@ struct ServiceOptions {
   int worker_niceness = 0;  // Added to the workers' nice value (JobQueue), 0 to 19.
   int64_t sync_verify_max_rows = 200'000;  // Larger models verify as a job.
   DecodeLimits limits;                     // Caps on uploaded documents.
-  // Called on the worker thread when a job ends, with its final record and the seconds it
-  // ran; for metrics. Must be quick and thread-safe.
+  // Called when a job ends, with its final record and the seconds it ran (0 for a job
+  // cancelled while queued), before the end shows in its view; for metrics. Not called for a
+  // job stopped by shutdown, which is queued again. Must be quick and thread-safe.
   std::function<void(const JobRecord&, double)> on_job_finished;
   // Called whenever a job record changes state (queued, running, finished); for logs.
   std::function<void(const JobRecord&)> on_job_event;
@@ -168,13 +169,19 @@ class PlanningService {
   // Verifies a candidate (a values or policy document, optionally with "tolerance").
   Result<VerifyStart> Verify(const std::string& model_id, std::string_view body);
 
-  // Gauges for /metrics.
-  int64_t queued_jobs() const { return queue_->queued(); }
-  int64_t running_jobs() const { return queue_->running(); }
+  // Gauges for /metrics: the jobs whose views say queued or running now, so that the gauges
+  // never disagree with GET /v1/jobs/{id} (a cancelled job may wait in the queue, or be
+  // unwinding on its worker, after its view says cancelled).
+  int64_t queued_jobs() const { return CountActiveJobs(JobStatus::kQueued); }
+  int64_t running_jobs() const { return CountActiveJobs(JobStatus::kRunning); }
   const ResultCache& cache() const { return cache_; }
 
  private:
   struct ActiveJob;
+
+  int64_t CountActiveJobs(JobStatus status) const;
+  // Forgets an ended (or re-queued) job: later views of it come from the store.
+  void Retire(const ActiveJob& job);
 
   // UploadModel's work; `released` as for DecodeModel.
   Result<UploadResult> Upload(std::string_view document, const TextReleased& released);
@@ -203,7 +210,7 @@ class PlanningService {
 
   SingleFlight<std::shared_ptr<const Model>> model_loads_;
   SingleFlight<std::shared_ptr<const Solution>> solution_loads_;
-  std::mutex mu_;
+  mutable std::mutex mu_;
   std::map<std::string, std::shared_ptr<ActiveJob>> active_;  // By job id. GUARDED_BY(mu_)
   std::map<std::string, std::string> active_by_solution_;     // Solution id -> job id.
   // Model id -> its current solution id. Its own lock: queries read it on the hot path and

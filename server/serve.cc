@@ -4,6 +4,7 @@
 #include <spdlog/sinks/stdout_color_sinks.h>
 #include <spdlog/spdlog.h>
 
+#include <atomic>
 #include <chrono>
 #include <functional>
 #include <ostream>
@@ -132,12 +133,14 @@ void PrintExamples(const std::string& base,
 
 // The warm start (PlanningService::WarmUp), on a background thread below the HTTP threads'
 // priority like the solves; logs what it loaded.
-void WarmCache(PlanningService& service, int niceness) {
+// `warming` is cleared when the cache is warm (the mdpserve_cache_warming gauge).
+void WarmCache(PlanningService& service, int niceness, std::atomic<bool>& warming) {
   BecomeBackgroundThread("mdp-warm", niceness);
   const auto start = std::chrono::steady_clock::now();
   const PlanningService::WarmUpResult warmed = service.WarmUp();
   const double seconds =
       std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  warming = false;
   if (warmed.models + warmed.skipped + warmed.failed == 0) return;
   spdlog::info(
       "warm start: {} models with their solutions loaded into the cache in {:.1f} s ({} MB "
@@ -221,6 +224,11 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
     return kExitBadConfig;
   }
   RegisterServiceMetrics(registry, service);
+  std::atomic<bool> warming{config.warm_start};
+  registry.RegisterGaugeCallback(
+      "mdpserve_cache_warming",
+      "1 while the warm start loads stored models and solutions into the cache, else 0.",
+      [&warming] { return warming ? 1.0 : 0.0; });
 
   std::vector<std::pair<std::string, std::string>> loaded;
   Status preloaded = Preload(service, config.preload, loaded, out);
@@ -246,7 +254,8 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
 
   std::thread warmer;
   if (config.warm_start) {
-    warmer = std::thread(WarmCache, std::ref(service), config.background_niceness);
+    warmer = std::thread(WarmCache, std::ref(service), config.background_niceness,
+                         std::ref(warming));
   }
 
   const double drain = config.drain_seconds;

@@ -7,6 +7,7 @@
 
 #include <atomic>
 #include <chrono>
+#include <mutex>
 #include <optional>
 #include <thread>
 #include <vector>
@@ -181,6 +182,62 @@ TEST_F(PlanningServiceTest, FullQueueRefusesAndCancelStopsARunningSolve) {
   EXPECT_EQ(service.CancelJob(first->job->record.id).status().code(),
             StatusCode::kFailedPrecondition);
   EXPECT_EQ(service.GetPlan(up->record.id, "").status().code(), StatusCode::kFailedPrecondition);
+}
+
+// The gauges and the finished-job callback agree with the job views at every moment: a job
+// whose view says it ended is counted as finished and no longer as queued or running, even
+// while its worker is still storing it (the slow on_job_event widens that window).
+TEST_F(PlanningServiceTest, MetricsAgreeWithJobViewsWhenJobsEnd) {
+  ServiceOptions options;
+  options.workers = 1;
+  options.queue_capacity = 1;
+  std::mutex mu;
+  std::vector<std::pair<std::string, JobStatus>> finished;
+  options.on_job_finished = [&](const JobRecord& job, double) {
+    std::lock_guard<std::mutex> lock(mu);
+    finished.emplace_back(job.id, job.status);
+  };
+  options.on_job_event = [](const JobRecord& job) {
+    if (job.status == JobStatus::kCancelled) {
+      std::this_thread::sleep_for(std::chrono::milliseconds(200));
+    }
+  };
+  auto finished_now = [&] {
+    std::lock_guard<std::mutex> lock(mu);
+    return finished;
+  };
+  PlanningService service(*store_, options);
+  ASSERT_TRUE(service.Start().ok());
+  Result<UploadResult> up = service.UploadModel(SlowModel(20000, 3));
+  ASSERT_TRUE(up.ok() && up->errors.empty());
+  SolveOptions slow;
+  slow.method = Method::kValueIteration;
+  slow.tolerance = 1e-12;
+  const std::string first = service.StartSolve(up->record.id, slow)->job->record.id;
+  WaitForStatus(service, first, JobStatus::kRunning);
+  slow.tolerance = 1e-11;
+  const std::string second = service.StartSolve(up->record.id, slow)->job->record.id;
+  EXPECT_EQ(service.queued_jobs(), 1);
+  EXPECT_EQ(service.running_jobs(), 1);
+
+  // Cancelled while queued: it ends at once, though it stays in the worker queue.
+  ASSERT_TRUE(service.CancelJob(second).ok());
+  EXPECT_EQ(service.GetJob(second)->record.status, JobStatus::kCancelled);
+  EXPECT_EQ(service.queued_jobs(), 0);
+  EXPECT_EQ(finished_now(), (std::vector<std::pair<std::string, JobStatus>>{
+                                {second, JobStatus::kCancelled}}));
+
+  // Cancelled while running: the first view that says so finds it counted.
+  ASSERT_TRUE(service.CancelJob(first).ok());
+  const auto end = std::chrono::steady_clock::now() + std::chrono::seconds(30);
+  while (service.GetJob(first)->record.status == JobStatus::kRunning &&
+         std::chrono::steady_clock::now() < end) {
+    std::this_thread::yield();
+  }
+  ASSERT_EQ(service.GetJob(first)->record.status, JobStatus::kCancelled);
+  EXPECT_EQ(service.running_jobs(), 0);
+  EXPECT_EQ(finished_now().size(), 2u);
+  EXPECT_EQ(finished_now().back(), std::make_pair(first, JobStatus::kCancelled));
 }
 
 TEST_F(PlanningServiceTest, RestartFailsInterruptedJobsAndRequeuesWaitingOnes) {
