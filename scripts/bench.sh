@@ -214,6 +214,11 @@ if [[ ${BENCH_SKIP_QUERIES:-0} != 1 ]]; then
     --root "$ROOT" --states "$SOLVE_LOAD_STATES" --rounds "$SOLVE_LOAD_ROUNDS" \
     --seconds "$QUERY_SECONDS" >"$WORK/solve-load.json"
   sample_load solve-load
+  say "a solve beside busy loops and saturating queries, mdpserve's OpenMP spin count against" \
+    "the runtime's default (contended_solve_bench.py)"
+  run "$PY" "$ROOT/scripts/bench/contended_solve_bench.py" --mdpserve "$BIN/mdpserve" \
+    --rounds "$SOLVE_LOAD_ROUNDS" >"$WORK/contended-solve.json"
+  sample_load contended-solve
 fi
 
 sample_load end

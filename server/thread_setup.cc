@@ -6,6 +6,7 @@
 
 #include <algorithm>
 #include <cerrno>
+#include <cstdlib>
 #include <cstring>
 #include <string>
 #include <thread>
@@ -49,6 +50,16 @@ Status CheckThreadNiceness(int increment) {
   std::thread probe([&status, increment] { status = RaiseThisThreadNiceness(increment); });
   probe.join();
   return status;
+}
+
+void ExecAgainWithOpenMpSpinCount(char** argv) {
+  if (std::getenv("OMP_WAIT_POLICY") != nullptr || std::getenv("GOMP_SPINCOUNT") != nullptr) {
+    return;
+  }
+  if (setenv("GOMP_SPINCOUNT", kOpenMpSpinCount, 0) != 0) return;
+  execv("/proc/self/exe", argv);
+  // No /proc, or the binary is gone: run on with the default, and say so to no child.
+  unsetenv("GOMP_SPINCOUNT");
 }
 
 }  // namespace mdp::server

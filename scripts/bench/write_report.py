@@ -98,6 +98,9 @@ class Run:
         solve_load = os.path.join(work, "solve-load.json")
         self.solve_load = (load_json(solve_load) if os.path.exists(solve_load) and
                            os.path.getsize(solve_load) > 0 else None)
+        contended = os.path.join(work, "contended-solve.json")
+        self.contended = (load_json(contended) if os.path.exists(contended) and
+                          os.path.getsize(contended) > 0 else None)
         kernels = os.path.join(work, "kernels.json")
         self.kernels = json.load(open(kernels)) if os.path.exists(kernels) else None
         # (connections, wrk threads) -> bench_queries.sh output; fewer wrk threads first,
@@ -666,6 +669,32 @@ def solve_load_section(run):
     return "\n".join(out)
 
 
+def contended_section(run):
+    d = run.contended
+    if not d:
+        return "Not measured in this run."
+    settings = list(d["server_environment"])
+    out = [f"A 2-thread value iteration of a random {d['states']:,}-state x 4 x 8 model, "
+           f"discount 0.99, tolerance about 1e-6; {d['rounds']} rounds, the order of the two "
+           f"servers alternating. *busy*: beside {d['busy_loops']} busy loops of another "
+           "program at nice 0 (the solve runs at the background nice value, 10); *queries*: "
+           "beside `wrk -t1 -c64` asking the same server for a best action as fast as it "
+           "answers. Seconds are the solution report's solve_seconds.", "",
+           "| Scenario | " + " | ".join(settings) + " | Ratio |",
+           "|---|" + "---:|" * len(settings) + "---:|"]
+    for scenario, summary in d["summary"].items():
+        cells = []
+        for setting in settings:
+            secs = sorted(r["solve_seconds"] for r in d["runs"]
+                          if r["scenario"] == scenario and r["setting"] == setting)
+            cells.append(f"{secs[0]:.2f}-{secs[-1]:.2f} s")
+        out.append(f"| {scenario} | " + " | ".join(cells) +
+                   f" | {summary['runtime_default_over_mdpserve']:.2f}x |")
+    out += ["", "Ratio: the median time per sweep with the runtime's default over the median "
+            "with mdpserve's spin count (above 1: mdpserve's is faster)."]
+    return "\n".join(out)
+
+
 def kernels_section(run):
     if not run.kernels:
         return "Not measured in this run."
@@ -829,6 +858,15 @@ def report(run, mode, started, finished, solve_structure):
         "shared by the solve's 2 threads, the HTTP threads and wrk.",
         "",
         solve_load_section(run),
+        "",
+        "## A solve on a busy host",
+        "`scripts/bench/contended_solve_bench.py`: two mdpserve processes side by side, one "
+        "started with `GOMP_SPINCOUNT=300000` (the OpenMP runtime's default, which mdpserve "
+        "keeps when it is set) and one with nothing set (mdpserve sets 5000, "
+        "`server/thread_setup.h`), solving the same model idle, beside busy loops and beside "
+        "saturating queries.",
+        "",
+        contended_section(run),
         "",
         "## Kernel micro-benchmarks (Google Benchmark)",
         "`kernel_bench`: the Bellman kernels of `solver/internal/bellman.h`; GB/s counts the "

@@ -41,7 +41,9 @@ Starts `mdpserve serve` processes on 127.0.0.1 with ephemeral ports (--listen 12
   (k) large requests on a 1-thread server: a query is answered while a large upload is
       parsed, 6 large uploads at once (3 taken, the others 429), the info-level log, and the
       threads' names and nice values after a 2-thread solve (mdp-http at the process's value,
-      mdp-upload and mdp-solve, the solve's OpenMP thread included, 10 higher).
+      mdp-upload and mdp-solve, the solve's OpenMP thread included, 10 higher), and the
+      OpenMP spin count it set itself (GOMP_SPINCOUNT=5000); a server given
+      OMP_WAIT_POLICY keeps it and gets no spin count.
 Every JSON body received is validated against the OpenAPI response schema of its operation
 and status (Draft 2020-12; the api-schema/*.schema.json files are resolved by their $id).
 
@@ -211,8 +213,9 @@ class Resp:
 
 
 class Server:
-    def __init__(self, binary, workdir, name, args):
+    def __init__(self, binary, workdir, name, args, env=None):
         self.binary = binary
+        self.env = env  # variables set (or, when None, removed) on top of the test's
         self.workdir = workdir
         self.name = name
         self.args = args
@@ -230,7 +233,8 @@ class Server:
         self.proc = subprocess.Popen(
             [self.binary, "serve", "--listen", "127.0.0.1:0", "--port-file", port_file] +
             ([] if "--log-level" in self.args else ["--log-level", "warn"]) + self.args,
-            stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
+            stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+            env=self.environment())
         deadline = time.monotonic() + START_TIMEOUT
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
@@ -246,6 +250,15 @@ class Server:
                 pass
             time.sleep(0.02)
         raise RuntimeError("%s wrote no port file within %.0f s" % (self.name, START_TIMEOUT))
+
+    def environment(self):
+        env = dict(os.environ)
+        for k, v in (self.env or {}).items():
+            if v is None:
+                env.pop(k, None)
+            else:
+                env[k] = v
+        return env
 
     def alive(self):
         return self.proc is not None and self.proc.poll() is None
@@ -2164,8 +2177,12 @@ def scenario_j(api, server, root, idle_timeout):
 
 def scenario_k(api, server):
     """The server runs with --http-threads 1: one thread answers every request with a small
-    body, and requests with bodies of 1 MiB or more go to a thread of their own."""
+    body, and requests with bodies of 1 MiB or more go to a thread of their own. It starts
+    with neither GOMP_SPINCOUNT nor OMP_WAIT_POLICY set, so it sets the spin count itself."""
     port = server.port
+    env = openmp_environment(server.proc.pid)
+    R.check("k: started without OpenMP settings, the server executed itself again (same "
+            "process id) with GOMP_SPINCOUNT=5000", env == ["GOMP_SPINCOUNT=5000"], str(env))
     doc = json.dumps(random_model(12, n=40000)).encode()
     health = b"GET /healthz HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n\r\n"
     with socket.create_connection(("127.0.0.1", port), timeout=60) as up:
@@ -2265,6 +2282,22 @@ def scenario_k(api, server):
             "job %s %s, threads %s" % (job_id, status, by_name))
 
 
+def openmp_environment(pid):
+    """The OpenMP variables in the environment process `pid` was executed with."""
+    with open("/proc/%d/environ" % pid, "rb") as f:
+        return sorted(e.decode() for e in f.read().split(b"\0")
+                      if e.startswith(b"GOMP_") or e.startswith(b"OMP_"))
+
+
+def scenario_openmp(server):
+    """A server started with OMP_WAIT_POLICY set keeps it and gets no GOMP_SPINCOUNT."""
+    env = openmp_environment(server.proc.pid)
+    R.check("openmp: OMP_WAIT_POLICY=passive given: kept, no GOMP_SPINCOUNT added",
+            env == ["OMP_WAIT_POLICY=passive"], str(env))
+    code, _ = server.terminate()
+    R.check("openmp: the server stops with exit code 0", code == 0, str(code))
+
+
 def thread_table(pid):
     """{thread id: (name, nice value)} of process `pid`, from /proc."""
     out = {}
@@ -2291,8 +2324,8 @@ def main():
     started = time.monotonic()
     servers = []
     with tempfile.TemporaryDirectory(prefix="mdpserve-api-test-") as work:
-        def server(name, extra):
-            s = Server(binary, work, name, extra)
+        def server(name, extra, env=None):
+            s = Server(binary, work, name, extra, env)
             servers.append(s)
             return s.start()
 
@@ -2337,7 +2370,10 @@ def main():
                                                    "--body-limit", "65536"]), root, 2)
             scenario_k(api, server("large-requests", ["--memory-store", "--http-threads", "1",
                                                       "--solver-threads", "2",
-                                                      "--log-level", "info"]))
+                                                      "--log-level", "info"],
+                                   {"GOMP_SPINCOUNT": None, "OMP_WAIT_POLICY": None}))
+            scenario_openmp(server("openmp-kept", ["--memory-store"],
+                                   {"GOMP_SPINCOUNT": None, "OMP_WAIT_POLICY": "passive"}))
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback
             traceback.print_exc()
