@@ -184,7 +184,7 @@ def main():
     print(json.dumps({"kind": "contended_solve", "states": args.states,
                       "busy_loops": args.busy_loops, "rounds": args.rounds,
                       "server_environment": {k: s.environ for k, s in servers.items()},
-                      "runs": runs, "summary": summary}, indent=1))
+                      "runs": runs, "summary": summary}))
     return 0
 
 

@@ -675,7 +675,8 @@ def contended_section(run):
         return "Not measured in this run."
     settings = list(d["server_environment"])
     out = [f"A 2-thread value iteration of a random {d['states']:,}-state x 4 x 8 model, "
-           f"discount 0.99, tolerance about 1e-6; {d['rounds']} rounds, the order of the two "
+           f"discount 0.99, tolerance about 1e-6; {d['rounds']} round"
+           f"{'s' if d['rounds'] != 1 else ''}, the order of the two "
            f"servers alternating. *busy*: beside {d['busy_loops']} busy loops of another "
            "program at nice 0 (the solve runs at the background nice value, 10); *queries*: "
            "beside `wrk -t1 -c64` asking the same server for a best action as fast as it "
@@ -687,7 +688,8 @@ def contended_section(run):
         for setting in settings:
             secs = sorted(r["solve_seconds"] for r in d["runs"]
                           if r["scenario"] == scenario and r["setting"] == setting)
-            cells.append(f"{secs[0]:.2f}-{secs[-1]:.2f} s")
+            cells.append(f"{secs[0]:.2f} s" if len(secs) == 1 else
+                         f"{secs[0]:.2f}-{secs[-1]:.2f} s")
         out.append(f"| {scenario} | " + " | ".join(cells) +
                    f" | {summary['runtime_default_over_mdpserve']:.2f}x |")
     out += ["", "Ratio: the median time per sweep with the runtime's default over the median "
