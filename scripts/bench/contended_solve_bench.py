@@ -24,7 +24,6 @@ setting and their ratio. Every process started is stopped by its PID.
         [--states 40000] [--rounds 3] [--busy-loops 2]
 """
 import argparse
-import http.client
 import json
 import os
 import signal
@@ -35,80 +34,49 @@ import tempfile
 import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from service_memory import write_arrays_model  # noqa: E402
+from service_memory import Server, write_arrays_model  # noqa: E402
 
-START_TIMEOUT = 30.0
 SOLVE_TIMEOUT = 600.0
 SETTINGS = {"runtime default (GOMP_SPINCOUNT=300000)": "300000",
             "mdpserve default (5000)": None}
 
 
-class Server:
-    def __init__(self, binary, workdir, name, spin):
-        env = {k: v for k, v in os.environ.items()
-               if k not in ("GOMP_SPINCOUNT", "OMP_WAIT_POLICY")}
-        if spin is not None:
-            env["GOMP_SPINCOUNT"] = spin
-        port_file = os.path.join(workdir, name + ".port")
-        self.log = open(os.path.join(workdir, name + ".log"), "wb")
-        self.proc = subprocess.Popen(
-            [binary, "serve", "--memory-store", "--listen", "127.0.0.1:0", "--port-file",
-             port_file, "--log-level", "warn", "--solver-threads", "2",
-             "--body-limit", str(1 << 30)],
-            env=env, stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
-        self.port = None
-        deadline = time.monotonic() + START_TIMEOUT
-        while self.port is None and time.monotonic() < deadline:
-            if self.proc.poll() is not None:
-                raise RuntimeError("mdpserve serve exited with %s" % self.proc.returncode)
-            if os.path.exists(port_file):
-                text = open(port_file).read().strip()
-                self.port = int(text) if text else None
-            time.sleep(0.02)
-        if self.port is None:
-            raise RuntimeError("mdpserve serve wrote no port file")
-        with open("/proc/%d/environ" % self.proc.pid, "rb") as f:
-            self.environ = [e.decode() for e in f.read().split(b"\0")
-                            if e.startswith(b"GOMP_") or e.startswith(b"OMP_")]
+def start_server(binary, workdir, spin):
+    """A server whose environment has GOMP_SPINCOUNT=spin (none if None) and no
+    OMP_WAIT_POLICY; returns it and the OpenMP variables it runs with, from /proc."""
+    env = {k: v for k, v in os.environ.items() if k not in ("GOMP_SPINCOUNT", "OMP_WAIT_POLICY")}
+    if spin is not None:
+        env["GOMP_SPINCOUNT"] = spin
+    os.makedirs(workdir)
+    server = Server(binary, workdir, 1 << 30, True, ["--solver-threads", "2"], env)
+    with open("/proc/%d/environ" % server.proc.pid, "rb") as f:
+        environ = [e.decode() for e in f.read().split(b"\0")
+                   if e.startswith(b"GOMP_") or e.startswith(b"OMP_")]
+    return server, environ
 
-    def call(self, method, path, body=None):
-        conn = http.client.HTTPConnection("127.0.0.1", self.port, timeout=SOLVE_TIMEOUT)
-        try:
-            headers = {"Content-Type": "application/json"} if body is not None else {}
-            conn.request(method, path, body=body, headers=headers)
-            r = conn.getresponse()
-            return r.status, json.loads(r.read() or b"null")
-        finally:
-            conn.close()
 
-    def stop(self):
-        if self.proc.poll() is None:
-            os.kill(self.proc.pid, signal.SIGTERM)
-            try:
-                self.proc.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                os.kill(self.proc.pid, signal.SIGKILL)
-                self.proc.wait()
-        self.log.close()
+def call(server, method, path, body=None):
+    status, data = server.request(method, path, body)
+    return status, json.loads(data or b"null")
 
 
 def solve(server, model_id, tolerance):
     """Runs a value iteration job to its end; returns the solution report."""
     body = json.dumps({"model_id": model_id, "options": {
         "method": "value_iteration", "tolerance": tolerance}}).encode()
-    status, job = server.call("POST", "/v1/jobs", body)
+    status, job = call(server, "POST", "/v1/jobs", body)
     if status != 202:
         raise RuntimeError("solve not started: %s %s" % (status, job))
     deadline = time.monotonic() + SOLVE_TIMEOUT
     while time.monotonic() < deadline:
-        status, view = server.call("GET", "/v1/jobs/" + job["id"])
+        status, view = call(server, "GET", "/v1/jobs/" + job["id"])
         if view["status"] not in ("queued", "running"):
             break
         time.sleep(0.02)
     if view["status"] != "succeeded":
         raise RuntimeError("solve ended %s" % view)
-    status, report = server.call(
-        "GET", "/v1/models/%s/solutions/%s" % (model_id, view["solution_id"]))
+    status, report = call(
+        server, "GET", "/v1/models/%s/solutions/%s" % (model_id, view["solution_id"]))
     return report
 
 
@@ -120,7 +88,7 @@ def main():
     parser.add_argument("--busy-loops", type=int, default=2)
     args = parser.parse_args()
     runs = []
-    servers = {}
+    servers, environ = {}, {}
     helpers = []
     with tempfile.TemporaryDirectory(prefix="mdpserve-contended-") as work:
         try:
@@ -130,9 +98,9 @@ def main():
                 doc = f.read()
             ids = {}
             for i, (setting, spin) in enumerate(SETTINGS.items()):
-                servers[setting] = Server(os.path.abspath(args.mdpserve), work, "s%d" % i,
-                                          spin)
-                status, up = servers[setting].call("POST", "/v1/models", doc)
+                servers[setting], environ[setting] = start_server(
+                    os.path.abspath(args.mdpserve), os.path.join(work, "s%d" % i), spin)
+                status, up = call(servers[setting], "POST", "/v1/models", doc)
                 if status not in (200, 201):
                     raise RuntimeError("upload refused: %s %s" % (status, up))
                 ids[setting] = up["id"]
@@ -183,7 +151,7 @@ def main():
                              "runtime_default_over_mdpserve": base / ours}
     print(json.dumps({"kind": "contended_solve", "states": args.states,
                       "busy_loops": args.busy_loops, "rounds": args.rounds,
-                      "server_environment": {k: s.environ for k, s in servers.items()},
+                      "server_environment": environ,
                       "runs": runs, "summary": summary}))
     return 0
 

@@ -126,9 +126,9 @@ def proc_status(pid):
 
 class Server:
     """`mdpserve serve` on 127.0.0.1, an ephemeral port, its files in `workdir`; `extra`
-    flags are appended to the command line."""
+    flags are appended to the command line; `env`, if given, is its whole environment."""
 
-    def __init__(self, binary, workdir, body_limit, memory_store, extra=()):
+    def __init__(self, binary, workdir, body_limit, memory_store, extra=(), env=None):
         self.port_file = os.path.join(workdir, "port")
         self.log = open(os.path.join(workdir, "server.log"), "wb")
         store = (["--memory-store"] if memory_store
@@ -137,7 +137,7 @@ class Server:
             [binary, "serve", "--listen", "127.0.0.1:0", "--port-file", self.port_file,
              "--log-level", "warn", "--body-limit", str(body_limit), "--workers", "1"] + store +
             list(extra),
-            stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
+            stdout=self.log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, env=env)
         self.port = None
         deadline = time.monotonic() + START_TIMEOUT
         while time.monotonic() < deadline and self.port is None:

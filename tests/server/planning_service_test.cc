@@ -47,6 +47,14 @@ std::string SlowModel(int states, uint64_t seed) {
   return doc + "]}";
 }
 
+// Value iteration to `tolerance`: on SlowModel, a solve that runs until cancelled.
+SolveOptions SlowValueIteration(double tolerance) {
+  SolveOptions o;
+  o.method = Method::kValueIteration;
+  o.tolerance = tolerance;
+  return o;
+}
+
 JobView WaitForEnd(PlanningService& service, const std::string& job_id, double seconds = 30) {
   const auto end = std::chrono::steady_clock::now() + std::chrono::duration<double>(seconds);
   for (;;) {
@@ -156,9 +164,7 @@ TEST_F(PlanningServiceTest, FullQueueRefusesAndCancelStopsARunningSolve) {
   ASSERT_TRUE(service.Start().ok());
   Result<UploadResult> up = service.UploadModel(SlowModel(20000, 1));
   ASSERT_TRUE(up.ok() && up->errors.empty());
-  SolveOptions slow;
-  slow.method = Method::kValueIteration;
-  slow.tolerance = 1e-12;
+  SolveOptions slow = SlowValueIteration(1e-12);
   Result<SolveStart> first = service.StartSolve(up->record.id, slow);
   ASSERT_TRUE(first.ok());
   WaitForStatus(service, first->job->record.id, JobStatus::kRunning);
@@ -208,15 +214,11 @@ TEST_F(PlanningServiceTest, MetricsAgreeWithJobViewsWhenJobsEnd) {
   };
   PlanningService service(*store_, options);
   ASSERT_TRUE(service.Start().ok());
-  Result<UploadResult> up = service.UploadModel(SlowModel(20000, 3));
-  ASSERT_TRUE(up.ok() && up->errors.empty());
-  SolveOptions slow;
-  slow.method = Method::kValueIteration;
-  slow.tolerance = 1e-12;
-  const std::string first = service.StartSolve(up->record.id, slow)->job->record.id;
+  const std::string model = service.UploadModel(SlowModel(20000, 3))->record.id;
+  const std::string first = service.StartSolve(model, SlowValueIteration(1e-12))->job->record.id;
   WaitForStatus(service, first, JobStatus::kRunning);
-  slow.tolerance = 1e-11;
-  const std::string second = service.StartSolve(up->record.id, slow)->job->record.id;
+  const std::string second =
+      service.StartSolve(model, SlowValueIteration(1e-11))->job->record.id;
   EXPECT_EQ(service.queued_jobs(), 1);
   EXPECT_EQ(service.running_jobs(), 1);
 
@@ -267,9 +269,7 @@ TEST_F(PlanningServiceTest, RestartFailsInterruptedJobsAndRequeuesWaitingOnes) {
 
 TEST_F(PlanningServiceTest, ShutdownDuringASolvePutsItBackInTheQueueForNextStart) {
   std::string model_id, job_id;
-  SolveOptions slow;
-  slow.method = Method::kValueIteration;
-  slow.tolerance = 1e-12;
+  const SolveOptions slow = SlowValueIteration(1e-12);
   {
     PlanningService service(*store_, ServiceOptions{});
     ASSERT_TRUE(service.Start().ok());
