@@ -39,8 +39,9 @@ Status CheckThreadNiceness(int increment);
 // spinning first and then sleeping. The runtime's default spin (300,000 rounds when neither
 // variable below is set) burns the CPU a busy host's other threads need: beside 2 busy loops
 // on the 2-core host, a 2-thread value iteration of a 40,000-state model took 7.3-7.7 s with
-// it and 3.2-4.3 s with 5,000 rounds (1 thread: 4.2-5.2 s); idle, both took the same time
-// (1.0-1.6 s, noise), as did a 1,000,000-state policy iteration (1.6-2.0 s).
+// it and 3.2-4.3 s with 5,000 rounds (1 thread: 4.2-5.2 s). Idle, the medians of 8
+// alternating rounds were 1.07 s and 1.09 s (a full benchmark run's, 0.76x; noise is large
+// here), and a 1,000,000-state policy iteration took 1.6-2.0 s either way.
 inline constexpr char kOpenMpSpinCount[] = "5000";
 
 // Run first in main, before any thread starts. If neither OMP_WAIT_POLICY nor GOMP_SPINCOUNT
