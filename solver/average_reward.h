@@ -244,8 +244,13 @@ Result<AverageRewardSolution> RelativeValueIteration(const Model& m,
 // Returns kInvalidArgument for bad options; kResourceExhausted if memory runs out; kInternal
 // if the first policy's evaluation fails. A later policy that cannot be evaluated in double
 // precision is retried with half of its switches, and the run ends kStalled if even one
-// switch cannot be. The time limit and cancel are heard inside an evaluation too. A run
-// stopped early returns the evaluated bias with the narrowest bracket, which is valid. options.aperiodicity is not used.
+// switch cannot be. A run that ends kStalled (or whose first evaluation fails) is followed
+// by a second, within what is left of the time and iteration limits, from the discounted
+// optimum at a discount near 1 (average_reward.cc, DiscountedWarmStart); the solution
+// counts both runs' iterations, sweeps and time, and is the second's unless that one
+// certified a wider bracket. The time limit and cancel are heard inside an evaluation too.
+// A run stopped early returns the evaluated bias with the narrowest bracket, which is valid.
+// options.aperiodicity is not used.
 // `progress` (may be null) is called once per improvement.
 Result<AverageRewardSolution> AverageRewardPolicyIteration(const Model& m,
                                                            const AverageRewardOptions& options,

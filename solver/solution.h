@@ -44,7 +44,8 @@ enum class SolveOutcome {
   kIterationLimit,  // max_iterations reached first.
   kTimeLimit,       // time_limit_seconds passed first.
   kCancelled,       // The CancelToken fired.
-  kStalled,         // The residual stopped shrinking (floating-point floor) above tolerance.
+  kStalled,         // The residual stopped shrinking above tolerance (floating-point floor;
+                    // relative value iteration: also progress too slow to see).
 };
 
 std::string_view SolveOutcomeName(SolveOutcome outcome);  // "converged", ...

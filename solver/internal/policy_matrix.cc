@@ -5,9 +5,9 @@
 
 namespace mdp::internal {
 
-void PolicyMatrix::Assign(const Model& m, const RowId* rows, int threads) {
+void PolicyMatrix::Assign(const Model& m, const RowId* rows, double discount, int threads) {
   const StateId n = m.num_states();
-  discount_ = m.discount();
+  discount_ = discount;
   kernels_ = ChooseKernels(m);
   begin_.resize(static_cast<size_t>(n) + 1);
   reward_.resize(n);

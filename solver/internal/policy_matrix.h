@@ -22,8 +22,13 @@ namespace mdp::internal {
 class PolicyMatrix {
  public:
   // Copies row rows[s] of every state (an empty row with reward 0 where rows[s] < 0, as for
-  // terminal states). Reuses its buffers across calls.
-  void Assign(const Model& m, const RowId* rows, int threads);
+  // terminal states). Reuses its buffers across calls. The system's discount is the
+  // model's, or `discount` (in (0, 1)) where given: average-reward policy iteration's warm
+  // start solves the model at discounts near 1 (average_reward.cc).
+  void Assign(const Model& m, const RowId* rows, int threads) {
+    Assign(m, rows, m.discount(), threads);
+  }
+  void Assign(const Model& m, const RowId* rows, double discount, int threads);
 
   StateId size() const { return static_cast<StateId>(reward_.size()); }
   double discount() const { return discount_; }

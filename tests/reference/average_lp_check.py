@@ -83,7 +83,11 @@ def solve(n, rows, objective):
     c = np.zeros(n + 1)
     c[0] = sign  # Minimise g (maximise) or -g (minimise).
     bounds = [(None, None)] + [(0.0, 0.0)] + [(None, None)] * (n - 1)
-    res = linprog(c, A_ub=a_ub, b_ub=b, bounds=bounds, method="highs")
+    # HiGHS's default feasibility tolerances (1e-7) left a certificate of the slowly mixing
+    # rings of average_reward_test.cc with dual frequencies down to -7e-8.
+    res = linprog(c, A_ub=a_ub, b_ub=b, bounds=bounds, method="highs",
+                  options={"primal_feasibility_tolerance": 1e-10,
+                           "dual_feasibility_tolerance": 1e-10})
     if res.status != 0:
         raise RuntimeError(f"linprog failed: status {res.status}: {res.message}")
     g = res.x[0]
