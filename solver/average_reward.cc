@@ -1030,9 +1030,14 @@ Result<AverageRewardSolution> PolicyIterationWithRestart(const Model& m,
   const bool reports = progress != nullptr && *progress;
   Result<AverageRewardSolution> second =
       PolicyIterationT<kMaximize>(m, rest, reports ? &continued : nullptr, cancel, true);
-  if (!second.ok()) return first.ok() ? std::move(first) : std::move(second);
   const double seconds =
       std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  if (!second.ok()) {
+    // The first run stands, with the time both took (the second's counts died with it).
+    if (!first.ok()) return second;
+    first->solve_seconds = seconds;
+    return first;
+  }
   // The second run stands unless it certified a wider bracket than the first.
   if (first.ok() && second->outcome != SolveOutcome::kConverged &&
       second->gain_upper - second->gain_lower > first->gain_upper - first->gain_lower) {
