@@ -521,8 +521,11 @@ SolveOptions RunLimits(const AverageRewardOptions& options) {
 // the gain cannot improve, on q among the rows that keep it. A state keeps its row unless
 // another is better by more than the slack, so rounding noise cannot make the method cycle.
 
-template <bool kMaximize>
-int64_t ImproveGain(const Model& m, const double* g, double slack, RowId* rows, int threads) {
+// rows[s] = the first row of s with the best value(r), unless the current row is within
+// `slack` of it; states without a row (rows[s] < 0) are skipped. Returns the number changed.
+template <bool kMaximize, typename RowValue>
+int64_t ImproveRows(const Model& m, const RowValue& value, double slack, RowId* rows,
+                    int threads) {
   int64_t changed = 0;
 #pragma omp parallel for num_threads(threads) reduction(+ : changed) schedule(dynamic, 8192)
   for (StateId s = 0; s < m.num_states(); ++s) {
@@ -530,19 +533,25 @@ int64_t ImproveGain(const Model& m, const double* g, double slack, RowId* rows, 
     RowId best = -1;
     double best_value = 0.0;
     for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-      const double value = RowExpectation(m, r, g);
-      if (best < 0 || internal::Better<kMaximize>(value, best_value)) {
+      const double x = value(r);
+      if (best < 0 || internal::Better<kMaximize>(x, best_value)) {
         best = r;
-        best_value = value;
+        best_value = x;
       }
     }
-    const double current = RowExpectation(m, rows[s], g);
+    const double current = value(rows[s]);
     if (internal::Better<kMaximize>(best_value, kMaximize ? current + slack : current - slack)) {
       rows[s] = best;
       ++changed;
     }
   }
   return changed;
+}
+
+template <bool kMaximize>
+int64_t ImproveGain(const Model& m, const double* g, double slack, RowId* rows, int threads) {
+  return ImproveRows<kMaximize>(
+      m, [&](RowId r) { return RowExpectation(m, r, g); }, slack, rows, threads);
 }
 
 template <bool kMaximize>
@@ -702,33 +711,13 @@ inline constexpr int kWarmStartImprovements = 50;
 inline constexpr double kWarmStartEvaluationWork = 200.0;
 inline constexpr int kWarmStartSweeps = 8;
 
-// rows[s] = a best row of s for r + discount P v (terminal states keep -1); a state keeps its
-// row unless another is better by more than `slack`. Returns the number of states changed.
+// ImproveRows on r + discount P v.
 template <bool kMaximize>
 int64_t ImproveDiscounted(const Model& m, const double* v, double discount, double slack,
                           RowId* rows, int threads) {
-  int64_t changed = 0;
-#pragma omp parallel for num_threads(threads) reduction(+ : changed) schedule(dynamic, 8192)
-  for (StateId s = 0; s < m.num_states(); ++s) {
-    if (rows[s] < 0) continue;
-    RowId best = -1;
-    double best_q = 0.0;
-    double current_q = 0.0;
-    for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-      const double q = m.row_reward(r) + discount * RowExpectation(m, r, v);
-      if (r == rows[s]) current_q = q;
-      if (best < 0 || internal::Better<kMaximize>(q, best_q)) {
-        best = r;
-        best_q = q;
-      }
-    }
-    if (best != rows[s] &&
-        internal::Better<kMaximize>(best_q, kMaximize ? current_q + slack : current_q - slack)) {
-      rows[s] = best;
-      ++changed;
-    }
-  }
-  return changed;
+  return ImproveRows<kMaximize>(
+      m, [&](RowId r) { return m.row_reward(r) + discount * RowExpectation(m, r, v); }, slack,
+      rows, threads);
 }
 
 // The system I - discount P of the policy `rows` in the form the factors take: entries
