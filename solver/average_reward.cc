@@ -771,11 +771,12 @@ Result<bool> FactoredDiscountedValues(const Model& m, std::span<const RowId> row
   return true;
 }
 
-// Replaces `rows` by the last discounted optimum reached (above); stops early, keeping the
+// Replaces `rows` by the policy that policy iteration at the discounts above reaches (each
+// discount's optimum unless kWarmStartImprovements ran out first); stops early, keeping the
 // policy reached so far, when stop_check fires. Each policy's values come from BiCGSTAB,
 // warm-started, while it meets its target within kWarmStartEvaluationWork; once it misses
-// (a slowly mixing chain at a discount near 1), from the chain's factors where they fit.
-// Returns the work done, in sweeps.
+// (a slowly mixing chain at a discount near 1), from the chain's factors, unless they once
+// did not fit (an expander's fill) or failed. Returns the work done, in sweeps.
 template <bool kMaximize>
 int64_t DiscountedWarmStart(const Model& m, const internal::StopCheck& stop_check,
                             double reward_scale, int threads, std::vector<RowId>& rows) {
@@ -786,7 +787,8 @@ int64_t DiscountedWarmStart(const Model& m, const internal::StopCheck& stop_chec
   std::vector<double> v(n, 0.0);
   double work = 0.0;
   double last_gap = 0.0;
-  bool factor = false;
+  bool factor = false;      // Evaluate by factors.
+  bool factors_fit = true;  // No factorisation has been declined or failed.
   for (double gap = kWarmStartFirstGap; gap >= 0.5 * kWarmStartLastGap; gap *= 0.1) {
     const double discount = 1.0 - gap;
     if (last_gap > 0.0) {
@@ -805,7 +807,7 @@ int64_t DiscountedWarmStart(const Model& m, const internal::StopCheck& stop_chec
             FactoredDiscountedValues(m, rows, discount, stop_check, &work, v);
         if (!factored.ok()) return static_cast<int64_t>(std::ceil(work));
         solved = *factored;
-        if (!solved) factor = false;  // An expander's fill: BiCGSTAB from here on.
+        if (!solved) factor = factors_fit = false;  // BiCGSTAB from here on.
       }
       if (!solved) {
         policy.Assign(m, rows.data(), discount, threads);
@@ -817,7 +819,7 @@ int64_t DiscountedWarmStart(const Model& m, const internal::StopCheck& stop_chec
             policy, target, kWarmStartEvaluationWork, threads, interrupted, plan, v);
         work += r.work;
         if (r.interrupted) return static_cast<int64_t>(std::ceil(work));
-        if (r.residual > target) factor = true;
+        if (r.residual > target && factors_fit) factor = true;
       }
       LookAheadSweeps<kMaximize>(m, discount, 0.0, kWarmStartSweeps, v);
       work += kWarmStartSweeps;
