@@ -348,8 +348,8 @@ TEST(AverageRewardTest, MatchesLinearProgramOnRandomUnichainModels) {
 // `reach` of s either way (weights uniform), earning a reward uniform in [0, 1). The best
 // policies gather the chain where rewards are high; many policies on the way have several
 // such places, each kept for longer than a double can count. Policy iteration started from
-// the greedy policy stalled on these rings (gain brackets of [0.68, 66] and wider), and
-// relative value iteration gains about 1e-3 per 100,000 sweeps there.
+// the greedy policy alone stalls on the first two rings of the test below (reported gains of
+// 3.3e5 and 4.9e13); the third, of reach 1, it solves either way.
 ModelSpec SlowRingSpec(uint64_t seed, StateId states, int reach) {
   std::mt19937_64 rng(seed);
   std::uniform_real_distribution<double> unit(0.0, 1.0);
