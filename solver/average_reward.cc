@@ -751,13 +751,11 @@ internal::LeakySystem DiscountedSystem(const Model& m, std::span<const RowId> ro
 Result<bool> FactoredDiscountedValues(const Model& m, std::span<const RowId> rows,
                                       double discount, const internal::StopCheck& stop_check,
                                       double* work, std::vector<double>& v) {
-  constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
   const internal::LeakySystem a = DiscountedSystem(m, rows, discount);
   const double budget = internal::FactorBudgetBytes(m);
-  internal::FactorPlan plan =
-      internal::PlanFactors(a, static_cast<int64_t>(budget / kBytesPerLowerEntry));
+  internal::FactorPlan plan = internal::PlanWithin(a, budget);
   *work += 2.0;
-  if (!plan.complete || plan.bytes() > budget) return false;
+  if (!internal::FactorsFit(plan, a.entries(), budget, false)) return false;
   const double entries = static_cast<double>(std::max<int64_t>(1, a.entries()));
   *work += plan.multiply_adds / entries;
   internal::MMatrixLu factors;

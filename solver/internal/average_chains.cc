@@ -120,20 +120,6 @@ struct SolveContext {
   bool SkipPlan(int64_t size) const { return size >= declined_before; }
 };
 
-// The plan for `system`, counting no further than the budget allows.
-FactorPlan PlanWithin(const LeakySystem& system, double budget_bytes) {
-  constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
-  return PlanFactors(system, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
-}
-
-// Whether the factors of `plan` are to be used for a system of `entries` entries: they fit
-// the memory budget and, when `mind_work`, the work budget (average_chains.h).
-bool FactorsFit(const FactorPlan& plan, int64_t entries, double budget_bytes, bool mind_work) {
-  if (!plan.complete || plan.bytes() > budget_bytes) return false;
-  return !mind_work || plan.multiply_adds <=
-                           kFactorWorkFloor + kFactorWorkPerEntry * static_cast<double>(entries);
-}
-
 // Whether to factor `system` by `plan` rather than iterate; records a refusal.
 bool PreferFactors(const LeakySystem& system, const FactorPlan& plan, SolveContext& context) {
   if (FactorsFit(plan, system.entries(), context.budget_bytes, true)) return true;
@@ -751,6 +737,17 @@ ChainStructure AnalyseChain(const Model& m, std::span<const RowId> rows) {
     out.classes[class_of_component[comp]].push_back(s);
   }
   return out;
+}
+
+FactorPlan PlanWithin(const LeakySystem& system, double budget_bytes) {
+  constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
+  return PlanFactors(system, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
+}
+
+bool FactorsFit(const FactorPlan& plan, int64_t entries, double budget_bytes, bool mind_work) {
+  if (!plan.complete || plan.bytes() > budget_bytes) return false;
+  return !mind_work || plan.multiply_adds <=
+                           kFactorWorkFloor + kFactorWorkPerEntry * static_cast<double>(entries);
 }
 
 double FactorBudgetBytes(const Model& m) {

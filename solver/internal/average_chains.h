@@ -10,6 +10,7 @@
 #include <span>
 #include <vector>
 
+#include "solver/internal/mmatrix_lu.h"
 #include "solver/internal/stop_check.h"
 #include "solver/model.h"
 #include "solver/status.h"
@@ -90,6 +91,11 @@ inline constexpr double kFactorWorkFloor = 1e9;
 // Four times the bytes of the model's transitions (next state and probability per entry),
 // and at least 512 MiB. The total criterion's factored evaluations (total_reward.cc) share it.
 double FactorBudgetBytes(const Model& m);
+// The factor plan of `system`, counting no further than `budget_bytes` of factors allow.
+FactorPlan PlanWithin(const LeakySystem& system, double budget_bytes);
+// Whether the factors of `plan` are to be used for a system of `entries` entries: they fit
+// the memory budget and, when `mind_work`, the work budget above.
+bool FactorsFit(const FactorPlan& plan, int64_t entries, double budget_bytes, bool mind_work);
 
 // Solves (I - P) g = 0, g + (I - P) h = r for the policy `rows` (as AnalyseChain), with
 // h = 0 at the smallest state of each recurrent class, which makes the solution unique
