@@ -309,7 +309,8 @@ TEST(BellmanKernelsTest, CsrCombineComputesItsDefinition) {
 // outcome, to the state after it, except that states 0-9 have two outcomes (to 10 and 11)
 // and states 10 and 11 lead to 12, whose value is +infinity. The windows of states 0-9 read
 // entries that point at 12 (p * inf would be NaN, 0 * inf too), yet their values must be the
-// definition's finite ones; 10 and 11 back up to +infinity, the rest are finite.
+// definition's finite ones; 10 and 11 back up to +infinity, the rest are finite. The same for
+// Gauss-Seidel, sequential and in chunks, whose windows choose between two value arrays.
 TEST(BellmanKernelsTest, ShortRowsIgnoreTheEntriesAfterThemEvenInfiniteOnes) {
   const StateId n = 40;
   ModelSpec spec;
@@ -345,6 +346,29 @@ TEST(BellmanKernelsTest, ShortRowsIgnoreTheEntriesAfterThemEvenInfiniteOnes) {
         ASSERT_TRUE(std::isfinite(out[s])) << "state " << s;
         ASSERT_EQ(out[s], 1.0 + s + 0.5 * in[(s + 1) % n]) << "state " << s;
       }
+    }
+    // Gauss-Seidel in place, and in chunks of 8 states on 1 and 2 threads (states 8 and 9
+    // read 10 and 11 from their own chunk, 0-7 from the previous sweep; neither is updated
+    // before them). States 12-38 read s + 1 before it is updated; 39 reads the new value of 0
+    // in place, and its previous one from another chunk.
+    for (int threads : {0, 1, 2}) {
+      SCOPED_TRACE(threads == 0 ? std::string("sequential")
+                                : "chunks of 8 on " + std::to_string(threads) + " threads");
+      std::vector<double> out = in;
+      if (threads == 0) {
+        internal::GaussSeidelSweep(m, out.data(), k);
+      } else {
+        internal::BlockGaussSeidelSweep(m, in.data(), out.data(), threads, k, 8);
+      }
+      for (StateId s = 0; s < 10; ++s) {
+        ASSERT_EQ(out[s], 1.0 + s + 0.5 * (0.25 * 20.0 + 0.75 * 22.0)) << "state " << s;
+      }
+      EXPECT_EQ(out[10], std::numeric_limits<double>::infinity());
+      EXPECT_EQ(out[11], std::numeric_limits<double>::infinity());
+      for (StateId s = 12; s + 1 < n; ++s) {
+        ASSERT_EQ(out[s], 1.0 + s + 0.5 * in[s + 1]) << "state " << s;
+      }
+      EXPECT_EQ(out[n - 1], n + 0.5 * (threads == 0 ? out[0] : in[0]));
     }
   }
 }
