@@ -11,6 +11,7 @@
 #include <vector>
 
 #include "solver/internal/mmatrix_lu.h"
+#include "solver/internal/row_dot.h"
 #include "solver/internal/stop_check.h"
 #include "solver/model.h"
 #include "solver/status.h"
@@ -19,12 +20,7 @@ namespace mdp::internal {
 
 // sum_s' p(s' | row r) x(s').
 inline double RowExpectation(const Model& m, RowId r, const double* x) {
-  const int64_t* begin = m.row_entry_begin_data();
-  const StateId* next = m.entry_next_data();
-  const double* prob = m.entry_probability_data();
-  double acc = 0.0;
-  for (int64_t e = begin[r], end = begin[r + 1]; e < end; ++e) acc += prob[e] * x[next[e]];
-  return acc;
+  return RowSum(m, r, x);
 }
 
 // Strongly connected components of a graph on the states, numbered so that every edge goes

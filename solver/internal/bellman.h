@@ -7,19 +7,16 @@
 #include <cmath>
 #include <limits>
 
+#include "solver/internal/row_dot.h"
 #include "solver/model.h"
 #include "solver/options.h"
 
 namespace mdp::internal {
 
 // Q value of row `r` against values `v`: r(s, a) + g * sum_s' p(s' | s, a) v(s').
+// The portable kernels' KernelRowQ, bit for bit.
 inline double RowQ(const Model& m, RowId r, const double* v) {
-  const int64_t* begin = m.row_entry_begin_data();
-  const StateId* next = m.entry_next_data();
-  const double* prob = m.entry_probability_data();
-  double acc = 0.0;
-  for (int64_t e = begin[r], end = begin[r + 1]; e < end; ++e) acc += prob[e] * v[next[e]];
-  return m.row_reward_data()[r] + m.discount() * acc;
+  return m.row_reward_data()[r] + m.discount() * RowSum(m, r, v);
 }
 
 // True iff `a` is strictly better than `b` under the objective.
