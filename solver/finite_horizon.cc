@@ -13,11 +13,7 @@ namespace {
 
 // Q of row r against next-stage values v, with the caller's discount g.
 double StageQ(const Model& m, RowId r, const double* v, double g) {
-  double acc = 0.0;
-  for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
-    acc += m.entry_probability(e) * v[m.entry_next(e)];
-  }
-  return m.row_reward(r) + g * acc;
+  return m.row_reward(r) + g * internal::RowSum(m, r, v);
 }
 
 Status CheckOptions(const Model& m, const FiniteHorizonOptions& o) {

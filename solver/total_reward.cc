@@ -45,11 +45,7 @@ double RoundingAllowance(int64_t terms, double magnitude) {
 
 // r(s, a) + sum_s' p(s' | s, a) v(s'), undiscounted.
 inline double RowValue(const Model& m, RowId r, const double* v) {
-  double acc = 0.0;
-  for (int64_t e = m.entry_begin(r), end = m.entry_end(r); e < end; ++e) {
-    acc += m.entry_probability(e) * v[m.entry_next(e)];
-  }
-  return m.row_reward(r) + acc;
+  return m.row_reward(r) + internal::RowSum(m, r, v);
 }
 
 // ---------------------------------------------------------------------------------------

@@ -39,11 +39,7 @@ void ListResiduals(std::span<const double> candidate, const std::vector<double>&
 
 // sum_s' p(s' | row r) v(s'): the undiscounted expectation (kAverage, kTotal).
 double RowMean(const Model& m, RowId r, std::span<const double> v) {
-  double acc = 0.0;
-  for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
-    acc += m.entry_probability(e) * v[m.entry_next(e)];
-  }
-  return acc;
+  return internal::RowSum(m, r, v.data());
 }
 
 bool Better(const Model& m, double a, double b) {

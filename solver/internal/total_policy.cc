@@ -3,6 +3,8 @@
 #include <algorithm>
 #include <cmath>
 
+#include "solver/internal/row_dot.h"
+
 namespace mdp::internal {
 
 void TotalPolicyMatrix::Assign(const Model& m, const std::vector<StateId>& states,
@@ -88,10 +90,10 @@ double TotalPolicyMatrix::Residual(const double* b, const double* x, double* res
   double sup = 0.0;
 #pragma omp parallel for num_threads(threads) reduction(max : sup) schedule(static, 4096)
   for (int64_t i = 0; i < n; ++i) {
-    double acc = b[i];
-    for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
-      acc += probability_[e] * x[column_[e]];
-    }
+    const int64_t e = begin_[i];
+    const double acc =
+        b[i] + RowDot(column_.data() + e, probability_.data() + e, begin_[i + 1] - e, x,
+                      e + 8 <= begin_[n]);
     res[i] = acc - x[i];
     sup = std::max(sup, std::fabs(res[i]));
   }
@@ -102,11 +104,9 @@ void TotalPolicyMatrix::MultiplySystem(const double* x, double* y, int threads) 
   const int64_t n = size();
 #pragma omp parallel for num_threads(threads) schedule(static, 4096)
   for (int64_t i = 0; i < n; ++i) {
-    double acc = 0.0;
-    for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
-      acc += probability_[e] * x[column_[e]];
-    }
-    y[i] = x[i] - acc;
+    const int64_t e = begin_[i];
+    y[i] = x[i] - RowDot(column_.data() + e, probability_.data() + e, begin_[i + 1] - e, x,
+                         e + 8 <= begin_[n]);
   }
 }
 
