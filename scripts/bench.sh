@@ -98,9 +98,14 @@ trap 'exit 143' TERM
 
 say() { echo "bench.sh: $*" >&2; }
 sample_load() { echo "$1 $(cut -d' ' -f1-3 /proc/loadavg)" >>"$WORK/load.txt"; }
-# Runs a command after logging it (repository-relative) to commands.txt.
+# Runs a command after logging it (repository-relative) to commands.txt; an argument with
+# a space in it is logged in single quotes, so that the logged line runs as it reads.
 run() {
-  echo "$*" | sed "s#$WORK#\$RUN#g; s#$ROOT/##g; s#$ROOT#.#g" >>"$WORK/commands.txt"
+  local line="" arg
+  for arg in "$@"; do
+    if [[ "$arg" == *[[:space:]]* ]]; then line+="'$arg' "; else line+="$arg "; fi
+  done
+  echo "${line% }" | sed "s#$WORK#\$RUN#g; s#$ROOT/##g; s#$ROOT#.#g" >>"$WORK/commands.txt"
   "$@"
 }
 
