@@ -25,7 +25,7 @@ namespace {
 using internal::AnalyseChain;
 using internal::AverageEvaluation;
 using internal::ChainStructure;
-using internal::RowExpectation;
+using internal::RowSum;
 
 constexpr double kInf = std::numeric_limits<double>::infinity();
 
@@ -92,7 +92,7 @@ Bracket Residuals(const Model& m, double scale, const double* x, double* d, RowI
     RowId best = -1;
     double best_value = 0.0;
     for (RowId r = row_begin[s], end = row_begin[s + 1]; r < end; ++r) {
-      const double value = reward[r] + scale * (RowExpectation(m, r, x) - x[s]);
+      const double value = reward[r] + scale * (RowSum(m, r, x) - x[s]);
       if (best < 0 || internal::Better<kMaximize>(value, best_value)) {
         best = r;
         best_value = value;
@@ -305,7 +305,7 @@ void FinishSolution(const Model& m, std::vector<double> h, const AverageRewardOp
   for (StateId s = 0; s < n; ++s) {
     double b = 0.0;
     for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-      out.q[r] = m.row_reward(r) + RowExpectation(m, r, h.data());
+      out.q[r] = m.row_reward(r) + RowSum(m, r, h.data());
       if (r == m.row_begin(s) || internal::Better<kMaximize>(out.q[r], b)) b = out.q[r];
       scale = std::max(scale, std::fabs(out.q[r]));
     }
@@ -382,15 +382,15 @@ MultichainRows ClassifyRows(const Model& m, std::span<const double> g, std::span
     double best_gain = 0.0;
     bool any = false;
     for (RowId r = begin; r < end; ++r) {
-      const double expected = RowExpectation(m, r, g.data());
+      const double expected = RowSum(m, r, g.data());
       if (r == begin || internal::Better<kMaximize>(expected, best_gain)) best_gain = expected;
       keeps[r] = std::fabs(expected - g[s]) <= keep_tolerance ? 1 : 0;
       any = any || keeps[r] != 0;
-      q[r] = m.row_reward(r) + RowExpectation(m, r, h.data());
+      q[r] = m.row_reward(r) + RowSum(m, r, h.data());
     }
     if (!any) {  // Only possible in a run stopped early: then the best sum p g decides.
       for (RowId r = begin; r < end; ++r) {
-        keeps[r] = std::fabs(RowExpectation(m, r, g.data()) - best_gain) <= keep_tolerance;
+        keeps[r] = std::fabs(RowSum(m, r, g.data()) - best_gain) <= keep_tolerance;
       }
     }
     bool first = true;
@@ -427,9 +427,9 @@ Bracket CertifiedBracket(const Model& m, std::span<const double> g, std::span<co
   for (StateId s = 0; s < n; ++s) {
     for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
       max_reward = std::max(max_reward, std::fabs(m.row_reward(r)));
-      const double drop = sign * (g[s] - RowExpectation(m, r, g.data()));
+      const double drop = sign * (g[s] - RowSum(m, r, g.data()));
       if (!(drop > keep_tolerance)) continue;
-      const double excess = sign * (m.row_reward(r) + RowExpectation(m, r, h.data()) - h[s] - g[s]);
+      const double excess = sign * (m.row_reward(r) + RowSum(m, r, h.data()) - h[s] - g[s]);
       big_m = std::max(big_m, excess / drop);
     }
   }
@@ -551,7 +551,7 @@ int64_t ImproveRows(const Model& m, const RowValue& value, double slack, RowId* 
 template <bool kMaximize>
 int64_t ImproveGain(const Model& m, const double* g, double slack, RowId* rows, int threads) {
   return ImproveRows<kMaximize>(
-      m, [&](RowId r) { return RowExpectation(m, r, g); }, slack, rows, threads);
+      m, [&](RowId r) { return RowSum(m, r, g); }, slack, rows, threads);
 }
 
 template <bool kMaximize>
@@ -565,7 +565,7 @@ int64_t ImproveBias(const Model& m, const double* g, const double* h, double gai
     if (begin == end) continue;
     double best_gain = 0.0;
     for (RowId r = begin; r < end; ++r) {
-      const double value = RowExpectation(m, r, g);
+      const double value = RowSum(m, r, g);
       if (r == begin || internal::Better<kMaximize>(value, best_gain)) best_gain = value;
     }
     RowId best = -1;
@@ -573,8 +573,8 @@ int64_t ImproveBias(const Model& m, const double* g, const double* h, double gai
     double current_q = 0.0;
     bool current_eligible = false;
     for (RowId r = begin; r < end; ++r) {
-      if (std::fabs(RowExpectation(m, r, g) - best_gain) > gain_slack) continue;
-      const double q = m.row_reward(r) + RowExpectation(m, r, h);
+      if (std::fabs(RowSum(m, r, g) - best_gain) > gain_slack) continue;
+      const double q = m.row_reward(r) + RowSum(m, r, h);
       if (r == rows[s]) {
         current_q = q;
         current_eligible = true;
@@ -623,7 +623,7 @@ void LookAheadSweeps(const Model& m, double discount, double g, int sweeps,
       const StateId s = forward ? i : n - 1 - i;
       double best = 0.0;
       for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-        const double q = m.row_reward(r) + discount * RowExpectation(m, r, v.data());
+        const double q = m.row_reward(r) + discount * RowSum(m, r, v.data());
         if (r == m.row_begin(s) || internal::Better<kMaximize>(q, best)) best = q;
       }
       v[s] = best - g;
@@ -647,7 +647,7 @@ bool KeepBetterHalf(const Model& m, const AverageEvaluation& eval, std::span<con
   for (StateId s = 0; s < m.num_states(); ++s) {
     if (from[s] == to[s]) continue;
     auto value = [&](RowId r, const std::vector<double>& x) {
-      return RowExpectation(m, r, x.data());
+      return RowSum(m, r, x.data());
     };
     auto ranked = [](double x) { return std::isnan(x) ? -kInf : x; };  // A strict order.
     switches.push_back({ranked(sign * (value(to[s], eval.gain) - value(from[s], eval.gain))),
@@ -716,7 +716,7 @@ template <bool kMaximize>
 int64_t ImproveDiscounted(const Model& m, const double* v, double discount, double slack,
                           RowId* rows, int threads) {
   return ImproveRows<kMaximize>(
-      m, [&](RowId r) { return m.row_reward(r) + discount * RowExpectation(m, r, v); }, slack,
+      m, [&](RowId r) { return m.row_reward(r) + discount * RowSum(m, r, v); }, slack,
       rows, threads);
 }
 

@@ -37,11 +37,6 @@ void ListResiduals(std::span<const double> candidate, const std::vector<double>&
                        [](const StateResidual& r) { return r.residual; });
 }
 
-// sum_s' p(s' | row r) v(s'): the undiscounted expectation (kAverage, kTotal).
-double RowMean(const Model& m, RowId r, std::span<const double> v) {
-  return internal::RowSum(m, r, v.data());
-}
-
 bool Better(const Model& m, double a, double b) {
   return m.objective() == Objective::kMaximize ? a > b : a < b;
 }
@@ -114,7 +109,7 @@ ValuesReport AverageValues(const Model& m, std::span<const double> h,
   for (StateId s = 0; s < n; ++s) {
     backup[s] = h[s];  // A terminal state's self-loop with reward 0: d = 0.
     for (RowId r = m.row_begin(s); r < m.row_end(s); ++r) {
-      const double q = m.row_reward(r) + RowMean(m, r, h);
+      const double q = m.row_reward(r) + internal::RowSum(m, r, h.data());
       if (r == m.row_begin(s) || Better(m, q, backup[s])) backup[s] = q;
     }
     d[s] = backup[s] - h[s];
@@ -199,7 +194,7 @@ ValuesReport TotalValues(const Model& m, std::span<const double> v,
         safe = m.entry_probability(e) <= 0.0 || reaches[m.entry_next(e)];
       }
       if (!safe) continue;
-      const double q = m.row_reward(r) + RowMean(m, r, v);
+      const double q = m.row_reward(r) + internal::RowSum(m, r, v.data());
       if (std::isnan(backup[s]) || Better(m, q, backup[s])) backup[s] = q;
     }
     if (std::isnan(v[s])) {

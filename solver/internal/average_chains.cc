@@ -376,7 +376,7 @@ void ClassResiduals(const Model& m, std::span<const RowId> rows, std::span<const
   d.resize(cls.size());
   for (size_t i = 0; i < cls.size(); ++i) {
     const StateId s = cls[i];
-    d[i] = m.row_reward(rows[s]) + RowExpectation(m, rows[s], out.bias.data()) - out.bias[s];
+    d[i] = m.row_reward(rows[s]) + RowSum(m, rows[s], out.bias.data()) - out.bias[s];
   }
 }
 
@@ -602,7 +602,7 @@ Status EvaluateClass(const Model& m, std::span<const RowId> rows, std::span<cons
   // so it is within max |d - g| of the computed g.
   for (const StateId s : cls) {
     const double d =
-        m.row_reward(rows[s]) + RowExpectation(m, rows[s], out.bias.data()) - out.bias[s];
+        m.row_reward(rows[s]) + RowSum(m, rows[s], out.bias.data()) - out.bias[s];
     const double error = std::fabs(d - class_gain);
     if (!(error <= out.gain_error)) out.gain_error = error;  // NaN propagates.
   }
@@ -737,11 +737,6 @@ ChainStructure AnalyseChain(const Model& m, std::span<const RowId> rows) {
     out.classes[class_of_component[comp]].push_back(s);
   }
   return out;
-}
-
-FactorPlan PlanWithin(const LeakySystem& system, double budget_bytes) {
-  constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
-  return PlanFactors(system, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
 }
 
 bool FactorsFit(const FactorPlan& plan, int64_t entries, double budget_bytes, bool mind_work) {

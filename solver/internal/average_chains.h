@@ -18,11 +18,6 @@
 
 namespace mdp::internal {
 
-// sum_s' p(s' | row r) x(s').
-inline double RowExpectation(const Model& m, RowId r, const double* x) {
-  return RowSum(m, r, x);
-}
-
 // Strongly connected components of a graph on the states, numbered so that every edge goes
 // to a component with the same or a smaller number.
 struct Components {
@@ -87,8 +82,6 @@ inline constexpr double kFactorWorkFloor = 1e9;
 // Four times the bytes of the model's transitions (next state and probability per entry),
 // and at least 512 MiB. The total criterion's factored evaluations (total_reward.cc) share it.
 double FactorBudgetBytes(const Model& m);
-// The factor plan of `system`, counting no further than `budget_bytes` of factors allow.
-FactorPlan PlanWithin(const LeakySystem& system, double budget_bytes);
 // Whether the factors of `plan` are to be used for a system of `entries` entries: they fit
 // the memory budget and, when `mind_work`, the work budget above.
 bool FactorsFit(const FactorPlan& plan, int64_t entries, double budget_bytes, bool mind_work);

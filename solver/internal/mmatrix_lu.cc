@@ -199,6 +199,11 @@ double FactorPlan::bytes() const {
          static_cast<double>(order.size()) * (2 * sizeof(int64_t) + sizeof(double));
 }
 
+FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes) {
+  constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
+  return PlanFactors(a, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
+}
+
 FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries) {
   FactorPlan plan;
   const int32_t n = a.size;

@@ -57,6 +57,9 @@ struct FactorPlan {
 // complete = false once they pass max_lower_entries, or before ordering when two searches
 // meet a layer so wide that they would (see the .cc). Time O(entries + min(count, cap)).
 FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries);
+// PlanFactors counting no further than `budget_bytes` of factors allow (each entry of L and
+// of U holds an index and a value, FactorPlan::bytes).
+FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes);
 
 class MMatrixLu {
  public:

@@ -69,9 +69,7 @@ Status TotalPolicyMatrix::Factor(double budget_bytes, double max_multiply_adds,
     }
     system.row_begin[i + 1] = static_cast<int64_t>(system.col.size());
   }
-  // Each entry of L and of U holds an index and a value (FactorPlan::bytes).
-  constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
-  FactorPlan plan = PlanFactors(system, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
+  FactorPlan plan = PlanWithin(system, budget_bytes);
   if (!plan.complete || plan.bytes() > budget_bytes || plan.multiply_adds > max_multiply_adds) {
     return Status::Ok();
   }
