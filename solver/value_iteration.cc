@@ -5,6 +5,7 @@
 
 #include "solver/internal/bellman.h"
 #include "solver/internal/run_control.h"
+#include "solver/internal/tiled_sweep.h"
 
 namespace mdp {
 namespace {
@@ -18,6 +19,9 @@ void SetOutcome(std::optional<SolveOutcome> stop, Solution& solution) {
     solution.outcome = stop.value_or(SolveOutcome::kStalled);
   }
 }
+
+// Value iteration decides on the tiled copy after this many sweeps.
+constexpr int64_t kSweepsBeforeTiling = 4;
 
 }  // namespace
 
@@ -35,12 +39,25 @@ Solution ValueIteration(const Model& m, const SolveOptions& options, const Progr
   std::vector<double> v(m.num_states(), 0.0);
   std::vector<double> next(m.num_states(), 0.0);
   std::optional<SolveOutcome> stop;
+  // Large models with scattered next states sweep a cache-blocked copy of the entries, with
+  // the same values bit for bit (internal/tiled_sweep.h); the copy is built once the residual
+  // says enough sweeps remain to repay it (at most one sweep's change shrinks by g per sweep).
+  std::optional<internal::TiledEntries> tiled;
+  bool tiling_decided = false;
   for (;;) {
-    const double e = internal::SyncSweep(m, v.data(), next.data(), threads);
+    const double e = tiled ? tiled->Sweep(m, v.data(), next.data(), threads)
+                           : internal::SyncSweep(m, v.data(), next.data(), threads);
     v.swap(next);
     ++solution.iterations;
     ++solution.sweeps;
     if (e <= target) break;
+    if (!tiling_decided && solution.sweeps >= kSweepsBeforeTiling) {
+      tiling_decided = true;
+      const double left = g > 0.0 && g < 1.0 ? std::log(target / e) / std::log(g) : 0.0;
+      if (left >= internal::kTiledMinSweepsLeft && internal::TilingPays(m, threads)) {
+        tiled = internal::TiledEntries::Build(m, threads);
+      }
+    }
     stop = control.After(solution.iterations, solution.sweeps, e, g * e / (1.0 - g), "sweep");
     if (stop) break;
   }

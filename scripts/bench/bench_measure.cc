@@ -88,12 +88,23 @@ double ReferenceSweep(const Model& m, const double* in, double* out, int threads
   return diff;
 }
 
-Timing TimeSweeps(const Model& m, SweepKernel kernel, int threads, int repetitions,
-                  double min_seconds) {
+SolverSweep::SolverSweep(const Model& m) : m_(m) {
+  const int threads = internal::ThreadCount(0);
+  Stopwatch clock;
+  if (internal::TilingPays(m, threads)) tiled_ = internal::TiledEntries::Build(m, threads);
+  build_seconds_ = clock.seconds();
+}
+
+double SolverSweep::operator()(const double* in, double* out, int threads) const {
+  return tiled_ ? tiled_->Sweep(m_, in, out, threads) : internal::SyncSweep(m_, in, out, threads);
+}
+
+Timing TimeSweeps(const Model& m, const SolverSweep& project, SweepKernel kernel, int threads,
+                  int repetitions, double min_seconds) {
   std::vector<double> a(m.num_states(), 0.0), b(m.num_states(), 0.0);
   double sink = 0.0;
   auto sweep = [&] {
-    sink += kernel == SweepKernel::kProject ? internal::SyncSweep(m, a.data(), b.data(), threads)
+    sink += kernel == SweepKernel::kProject ? project(a.data(), b.data(), threads)
                                             : ReferenceSweep(m, a.data(), b.data(), threads);
     a.swap(b);
   };
@@ -111,11 +122,12 @@ Timing TimeSweeps(const Model& m, SweepKernel kernel, int threads, int repetitio
   return Summarise(std::move(seconds));
 }
 
-PairedTiming TimePairedWithProbe(const Model& m, BandwidthProbe& probe, int threads, int rounds) {
+PairedTiming TimePairedWithProbe(const Model& m, const SolverSweep& project,
+                                 BandwidthProbe& probe, int threads, int rounds) {
   std::vector<double> a(m.num_states(), 0.0), b(m.num_states(), 0.0);
   double sink = 0.0;
   auto sweep = [&] {
-    sink += internal::SyncSweep(m, a.data(), b.data(), threads);
+    sink += project(a.data(), b.data(), threads);
     a.swap(b);
   };
   sweep();

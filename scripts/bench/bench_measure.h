@@ -8,8 +8,10 @@
 #include <chrono>
 #include <cstdint>
 #include <memory>
+#include <optional>
 #include <vector>
 
+#include "solver/internal/tiled_sweep.h"
 #include "solver/model.h"
 
 namespace mdp::bench {
@@ -49,9 +51,25 @@ class BandwidthProbe {
   double checksum_ = 0.0;
 };
 
+// The synchronous sweep value iteration runs on `m` once it has decided (value_iteration.cc):
+// over a tiled copy of the entries when internal::TilingPays(m), else internal::SyncSweep.
+// Both give the same values bit for bit. Holds a reference to `m`.
+class SolverSweep {
+ public:
+  explicit SolverSweep(const Model& m);
+  double operator()(const double* in, double* out, int threads) const;
+  bool tiled() const { return tiled_.has_value(); }
+  double build_seconds() const { return build_seconds_; }
+
+ private:
+  const Model& m_;
+  std::optional<internal::TiledEntries> tiled_;
+  double build_seconds_ = 0.0;
+};
+
 // Which loop a sweep timing runs.
 enum class SweepKernel {
-  kProject,    // mdp::internal::SyncSweep: the solver's own synchronous sweep.
+  kProject,    // SolverSweep: the solver's own synchronous sweep.
   kReference,  // A plain loop over the same arrays (max over rows, fused residual) for scale.
 };
 
@@ -59,8 +77,8 @@ enum class SweepKernel {
 // that warm caches and the thread pool: at least `repetitions` of them and, up to 10x that
 // many, until `min_seconds` have passed, so that the best of them finds a quiet moment on a
 // shared machine.
-Timing TimeSweeps(const Model& m, SweepKernel kernel, int threads, int repetitions,
-                  double min_seconds);
+Timing TimeSweeps(const Model& m, const SolverSweep& project, SweepKernel kernel, int threads,
+                  int repetitions, double min_seconds);
 
 // The probe and the solver's sweep timed in alternation, one of each per round, so that both
 // see the same moment of a shared machine: `rounds` pairs after 2 untimed sweeps and one
@@ -71,7 +89,8 @@ struct PairedTiming {
   Timing sweep;
   std::vector<double> ratio;  // Sorted.
 };
-PairedTiming TimePairedWithProbe(const Model& m, BandwidthProbe& probe, int threads, int rounds);
+PairedTiming TimePairedWithProbe(const Model& m, const SolverSweep& project,
+                                 BandwidthProbe& probe, int threads, int rounds);
 
 // One synchronous sweep with the reference loop; returns sup |out - in|. Maximising models.
 double ReferenceSweep(const Model& m, const double* in, double* out, int threads);

@@ -212,14 +212,16 @@ std::vector<double> CheckValues(const Model& m, int sweeps) {
 }
 
 // Sweep timings of the solver's kernel and the reference loop, 1 thread and all threads.
-std::vector<JsonObject> TimeAllSweeps(const Model& m, int sweeps, double min_seconds) {
+std::vector<JsonObject> TimeAllSweeps(const Model& m, const SolverSweep& project, int sweeps,
+                                      double min_seconds) {
   std::vector<JsonObject> timings;
   const int all_threads = internal::ThreadCount(0);
   for (int threads : {1, all_threads}) {
     if (sweeps <= 0) break;
     for (SweepKernel kernel : {SweepKernel::kProject, SweepKernel::kReference}) {
       timings.push_back(TimingJson(kernel == SweepKernel::kProject ? "project" : "reference",
-                                   threads, TimeSweeps(m, kernel, threads, sweeps, min_seconds)));
+                                   threads,
+                                   TimeSweeps(m, project, kernel, threads, sweeps, min_seconds)));
     }
     if (threads == all_threads) break;
   }
@@ -228,11 +230,12 @@ std::vector<JsonObject> TimeAllSweeps(const Model& m, int sweeps, double min_sec
 
 // The probe and the solver's sweep in alternation (TimePairedWithProbe), 1 thread and all.
 std::vector<JsonObject> TimeAllPaired(const Model& m, int64_t probe_bytes, int rounds) {
+  const SolverSweep project(m);
   BandwidthProbe probe(probe_bytes);
   std::vector<JsonObject> out;
   const int all_threads = internal::ThreadCount(0);
   for (int threads : {1, all_threads}) {
-    const PairedTiming t = TimePairedWithProbe(m, probe, threads, rounds);
+    const PairedTiming t = TimePairedWithProbe(m, project, probe, threads, rounds);
     const std::vector<double>& ratio = t.ratio;
     out.push_back(JsonObject()
                       .Add("threads", threads)
@@ -273,7 +276,7 @@ JsonObject MeasureRenumbering(const Model& m, int sweeps, double min_seconds) {
   out.Add("extra_rss_bytes", ResidentBytes() - rss_before);
   out.Add("copy_model_bytes", copy.ByteSize());
   out.Add("far_after", internal::FarEntryFraction(copy, {}, threads));
-  out.Add("sweeps", TimeAllSweeps(copy, sweeps, min_seconds));
+  out.Add("sweeps", TimeAllSweeps(copy, SolverSweep(copy), sweeps, min_seconds));
   return out;
 }
 
@@ -427,7 +430,15 @@ int RunModel(Flags& flags) {
     }
   }
   report.Add("threads_all", internal::ThreadCount(0));
-  report.Add("sweeps", TimeAllSweeps(m, sweeps, min_seconds));
+  if (sweeps > 0) {
+    // Freed before the solves, which build their own when value iteration decides to.
+    const SolverSweep project(m);
+    report.AddRaw("sweep_tiled", project.tiled() ? "true" : "false");
+    report.Add("tile_build_seconds", project.build_seconds());
+    report.Add("sweeps", TimeAllSweeps(m, project, sweeps, min_seconds));
+  } else {
+    report.Add("sweeps", std::vector<JsonObject>{});
+  }
   if (measure_renumbering && sweeps > 0) {
     report.Add("renumber", MeasureRenumbering(m, sweeps, min_seconds));
   }
@@ -467,6 +478,7 @@ int RunSweepOnRequest(Flags& flags) {
                           .str()
                           .c_str());
   std::fflush(stdout);
+  const SolverSweep project(m);
   std::vector<double> a(m.num_states(), 0.0), b(m.num_states(), 0.0);
   double sink = 0.0;
   char line[256];
@@ -482,7 +494,7 @@ int RunSweepOnRequest(Flags& flags) {
     std::vector<double> seconds;
     for (int i = 0; i < count; ++i) {
       Stopwatch clock;
-      sink += internal::SyncSweep(m, a.data(), b.data(), used);
+      sink += project(a.data(), b.data(), used);
       seconds.push_back(clock.seconds());
       a.swap(b);
     }
