@@ -20,9 +20,6 @@ void SetOutcome(std::optional<SolveOutcome> stop, Solution& solution) {
   }
 }
 
-// Value iteration decides on the tiled copy after this many sweeps.
-constexpr int64_t kSweepsBeforeTiling = 4;
-
 }  // namespace
 
 Solution ValueIteration(const Model& m, const SolveOptions& options, const ProgressFn* progress,
@@ -40,10 +37,9 @@ Solution ValueIteration(const Model& m, const SolveOptions& options, const Progr
   std::vector<double> next(m.num_states(), 0.0);
   std::optional<SolveOutcome> stop;
   // Large models with scattered next states sweep a cache-blocked copy of the entries, with
-  // the same values bit for bit (internal/tiled_sweep.h); the copy is built once the residual
-  // says enough sweeps remain to repay it (at most one sweep's change shrinks by g per sweep).
+  // the same values bit for bit (internal/tiled_sweep.h), built when the residual says enough
+  // sweeps remain to repay it.
   std::optional<internal::TiledEntries> tiled;
-  bool tiling_decided = false;
   for (;;) {
     const double e = tiled ? tiled->Sweep(m, v.data(), next.data(), threads)
                            : internal::SyncSweep(m, v.data(), next.data(), threads);
@@ -51,12 +47,9 @@ Solution ValueIteration(const Model& m, const SolveOptions& options, const Progr
     ++solution.iterations;
     ++solution.sweeps;
     if (e <= target) break;
-    if (!tiling_decided && solution.sweeps >= kSweepsBeforeTiling) {
-      tiling_decided = true;
-      const double left = g > 0.0 && g < 1.0 ? std::log(target / e) / std::log(g) : 0.0;
-      if (left >= internal::kTiledMinSweepsLeft && internal::TilingPays(m, threads)) {
-        tiled = internal::TiledEntries::Build(m, threads);
-      }
+    if (solution.sweeps == internal::kTiledDecideAfterSweeps &&
+        internal::ShouldTile(m, threads, e, target)) {
+      tiled = internal::TiledEntries::Build(m, threads);
     }
     stop = control.After(solution.iterations, solution.sweeps, e, g * e / (1.0 - g), "sweep");
     if (stop) break;

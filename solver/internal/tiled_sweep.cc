@@ -188,4 +188,11 @@ bool TilingPays(const Model& m, int threads) {
          FarEntryFraction(m, {}, threads) >= kTiledMinFarFraction;
 }
 
+bool ShouldTile(const Model& m, int threads, double residual, double target) {
+  const double g = m.discount();
+  if (!(g > 0.0 && g < 1.0) || !(residual > target) || !(target > 0.0)) return false;
+  const double left = std::log(target / residual) / std::log(g);
+  return left >= kTiledMinSweepsLeft && TilingPays(m, threads);
+}
+
 }  // namespace mdp::internal

@@ -43,9 +43,13 @@ inline constexpr StateId kTiledMinStates = StateId{1} << 19;
 inline constexpr int64_t kTiledMinEntries = int64_t{1} << 22;
 // ... at least this fraction of them far from their state (FarEntryFraction, renumber.h).
 inline constexpr double kTiledMinFarFraction = 0.2;
-// Value iteration builds the copy only when its residual is still this many sweeps at the
-// discount from its target: building takes about as long as 15-25 sweeps (1M x 4 x 8, random).
-inline constexpr double kTiledMinSweepsLeft = 100.0;
+// Value iteration decides after this many sweeps (ShouldTile) ...
+inline constexpr int64_t kTiledDecideAfterSweeps = 4;
+// ... and builds the copy only when its residual is still this many sweeps from its target at
+// the discount's rate. Building took as long as 13-16 sweeps of the random 1M x 4 x 8 model
+// (0.35-0.45 s against 28 ms), and on a quiet host the copy saved as little as 2-5 % of a
+// sweep there, so only long runs repay it at that size.
+inline constexpr double kTiledMinSweepsLeft = 200.0;
 
 class TiledEntries {
  public:
@@ -78,6 +82,12 @@ class TiledEntries {
 // True iff value iteration on m should sweep a TiledEntries copy: m has kTiledMinStates
 // states, kTiledMinEntries entries, and FarEntryFraction(m) >= kTiledMinFarFraction.
 bool TilingPays(const Model& m, int threads);
+
+// Value iteration's decision after kTiledDecideAfterSweeps sweeps, the last of which changed V
+// by `residual`, aiming at `target`: at discount g in (0, 1) the change shrinks by about g
+// per sweep (by at least that factor: it may take fewer), so log(target / residual) / log(g)
+// sweeps remain; true iff that is at least kTiledMinSweepsLeft and TilingPays(m).
+bool ShouldTile(const Model& m, int threads, double residual, double target);
 
 }  // namespace mdp::internal
 

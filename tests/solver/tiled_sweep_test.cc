@@ -160,25 +160,37 @@ TEST(TiledSweepTest, TheRuleTilesLargeScatteredModelsOnly) {
   EXPECT_FALSE(internal::TilingPays(small, 2));
 }
 
-// Value iteration switches to the tiled sweep on this model after a few sweeps (the rule
-// above, and about 190 sweeps to go at discount 0.9). Its sweeps, final residual and values
-// must be those of the row sweep run to the same stopping rule, written out here.
+TEST(TiledSweepTest, ShouldTileCountsTheSweepsLeftAtTheDiscount) {
+  const Model m = LargeScatteredModel();  // Discount 0.9: one sweep divides by 0.9.
+  const double target = 1e-9;
+  const double at_limit = target / std::pow(0.9, internal::kTiledMinSweepsLeft);
+  EXPECT_TRUE(internal::ShouldTile(m, 2, at_limit * 1.01, target));
+  EXPECT_FALSE(internal::ShouldTile(m, 2, at_limit * 0.99, target));
+  EXPECT_FALSE(internal::ShouldTile(m, 2, target, target));  // Done already.
+}
+
+// Value iteration switches to the tiled sweep on this model (ShouldTile is true after the
+// deciding sweep, checked below on the same bits). Its sweeps, final residual and values must
+// be those of the row sweep run to the same stopping rule, written out here.
 TEST(TiledSweepTest, ValueIterationGivesTheSameAnswerWithTheTiledSweep) {
   const Model m = LargeScatteredModel();
   SolveOptions options;
   options.method = Method::kValueIteration;
-  options.tolerance = 1e-6;
+  options.tolerance = 1e-9;
   options.threads = 2;
   const Solution solution = ValueIteration(m, options, nullptr, nullptr);
 
   const double target = internal::ResidualTarget(m.discount(), options.tolerance);
   std::vector<double> v(m.num_states(), 0.0), next(m.num_states(), 0.0);
   int64_t sweeps = 0;
-  for (double e = target + 1.0; e > target; ++sweeps) {
+  bool tiles = false;
+  for (double e = target + 1.0; e > target;) {
     e = internal::SyncSweep(m, v.data(), next.data(), 2, KernelSet::kPortable);
     v.swap(next);
+    ++sweeps;
+    if (sweeps == internal::kTiledDecideAfterSweeps) tiles = internal::ShouldTile(m, 2, e, target);
   }
-  ASSERT_GT(sweeps, 100);
+  ASSERT_TRUE(tiles) << "the model no longer exercises the tiled path";
   // Finalize: residual from one more backup v1 = T v, values the best Q against v1.
   std::vector<double> v1(m.num_states()), v2(m.num_states());
   const double residual = internal::SyncSweep(m, v.data(), v1.data(), 2, KernelSet::kPortable);
