@@ -20,6 +20,7 @@ namespace mdp {
 namespace {
 
 using internal::KernelSet;
+using testing::SomeValues;
 
 // (T v)(s) from the definition: the max (or min) over the rows of s of
 // r + g * sum p v(next), or 0 at a terminal state. Each row's sum is kept in long double, so
@@ -42,14 +43,6 @@ std::vector<double> DefinitionBackup(const Model& m, const std::vector<double>& 
   std::vector<double> out(m.num_states());
   for (StateId s = 0; s < m.num_states(); ++s) out[s] = DefinitionBackupAt(m, v, s, g);
   return out;
-}
-
-std::vector<double> SomeValues(StateId n, uint64_t seed) {
-  std::mt19937_64 rng(seed);
-  std::uniform_real_distribution<double> u(-50.0, 50.0);
-  std::vector<double> v(n);
-  for (double& x : v) x = u(rng);
-  return v;
 }
 
 // Rows of 1 to 12 outcomes, so every tail length of the gather loop (0-3 after blocks of 4

@@ -17,6 +17,8 @@
 #include <utility>
 #include <vector>
 
+#include "tests/testing/test_models.h"
+
 namespace mdp {
 namespace {
 
@@ -104,11 +106,7 @@ RowMajorMatrix RingSystem(int n, double g) {
 }
 
 std::vector<double> RandomVector(uint64_t seed, int n) {
-  std::mt19937_64 rng(seed);
-  std::uniform_real_distribution<double> value(-10.0, 10.0);
-  std::vector<double> v(n);
-  for (double& x : v) x = value(rng);
-  return v;
+  return testing::SomeValues(n, seed, -10.0, 10.0);
 }
 
 // b - A x, computed here with Eigen.

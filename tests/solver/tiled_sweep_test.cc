@@ -10,7 +10,6 @@
 #include <cmath>
 #include <cstring>
 #include <limits>
-#include <random>
 #include <vector>
 
 #include "solver/internal/bellman.h"
@@ -24,6 +23,7 @@ namespace mdp {
 namespace {
 
 using internal::KernelSet;
+using testing::SomeValues;
 using internal::TiledEntries;
 
 // 100,000 states with 1-4 rows of 1-12 entries each, next states anywhere: 4 blocks of next
@@ -36,14 +36,6 @@ Model SpreadModel(Objective objective, uint64_t seed) {
   o.objective = objective;
   o.discount = 0.95;
   return testing::MustBuild(testing::RandomSpec(seed, o));
-}
-
-std::vector<double> SomeValues(StateId n, uint64_t seed) {
-  std::mt19937_64 rng(seed);
-  std::uniform_real_distribution<double> u(-50.0, 50.0);
-  std::vector<double> v(n);
-  for (double& x : v) x = u(rng);
-  return v;
 }
 
 // Bitwise equality, NaN included.

@@ -115,6 +115,14 @@ Criterion CriterionOf(CriterionKind kind, double discount, int64_t horizon) {
   return c;
 }
 
+std::vector<double> SomeValues(StateId n, uint64_t seed, double lo, double hi) {
+  std::mt19937_64 rng(seed);
+  std::uniform_real_distribution<double> u(lo, hi);
+  std::vector<double> v(n);
+  for (double& x : v) x = u(rng);
+  return v;
+}
+
 Policy RandomPolicy(const Model& m, uint64_t seed) {
   std::mt19937_64 rng(seed);
   Policy p;

@@ -46,6 +46,9 @@ Criterion CriterionOf(CriterionKind kind, double discount = 1.0, int64_t horizon
 // A seeded stochastic policy: random weights over each state's rows, about a third of them 0.
 Policy RandomPolicy(const Model& m, uint64_t seed);
 
+// n seeded values drawn uniformly from [lo, hi): inputs for sweeps and products.
+std::vector<double> SomeValues(StateId n, uint64_t seed, double lo = -50.0, double hi = 50.0);
+
 // A one-line outcome list entry for SpecWriter.
 struct Out {
   std::string next;
