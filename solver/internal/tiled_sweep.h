@@ -11,7 +11,7 @@
 // does (one sum for longer rows and rows without a window, as its plain loop does).
 //
 // Measured on 1,000,000 states x 4 actions x 8 random next states, 30 alternating sweeps each
-// (medians): 2 threads 28.6-31.0 ms against 35.2-73.7 ms row by row, 1 thread 52.8-60.1 ms
+// (medians, a stand-alone copy of both loops over the same arrays): 2 threads 28.6-31.0 ms against 35.2-73.7 ms row by row, 1 thread 52.8-60.1 ms
 // against 72.9-121 ms; the row sweep's time moved with the load of the host's shared cache,
 // the tiled one's much less (on a quiet host a plain loop came within 3 %: 28.8 against
 // 29.5 ms, BENCHMARKS.md of 2026-12-04). The gain grows once V outgrows the shared cache:
