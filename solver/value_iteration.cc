@@ -48,7 +48,10 @@ Solution ValueIteration(const Model& m, const SolveOptions& options, const Progr
     ++solution.sweeps;
     if (e <= target) break;
     if (solution.sweeps == internal::kTiledDecideAfterSweeps &&
-        internal::ShouldTile(m, threads, e, target)) {
+        internal::ShouldTile(m, threads, e, target,
+                             internal::SweepsAllowed(options, solution.iterations,
+                                                     solution.sweeps,
+                                                     control.elapsed_seconds()))) {
       tiled = internal::TiledEntries::Build(m, threads);
     }
     stop = control.After(solution.iterations, solution.sweeps, e, g * e / (1.0 - g), "sweep");

@@ -188,11 +188,22 @@ bool TilingPays(const Model& m, int threads) {
          FarEntryFraction(m, {}, threads) >= kTiledMinFarFraction;
 }
 
-bool ShouldTile(const Model& m, int threads, double residual, double target) {
+bool ShouldTile(const Model& m, int threads, double residual, double target,
+                double sweeps_allowed) {
   const double g = m.discount();
   if (!(g > 0.0 && g < 1.0) || !(residual > target) || !(target > 0.0)) return false;
   const double left = std::log(target / residual) / std::log(g);
-  return left >= kTiledMinSweepsLeft && TilingPays(m, threads);
+  return std::min(left, sweeps_allowed) >= kTiledMinSweepsLeft && TilingPays(m, threads);
+}
+
+double SweepsAllowed(const SolveOptions& options, int64_t iterations, int64_t sweeps,
+                     double elapsed_seconds) {
+  double allowed = static_cast<double>(options.max_iterations - iterations);
+  if (options.time_limit_seconds > 0 && sweeps > 0) {
+    const double pace = std::max(elapsed_seconds / static_cast<double>(sweeps), 1e-9);
+    allowed = std::min(allowed, (options.time_limit_seconds - elapsed_seconds) / pace);
+  }
+  return allowed;
 }
 
 }  // namespace mdp::internal

@@ -24,10 +24,12 @@
 #define MDP_SOLVER_INTERNAL_TILED_SWEEP_H_
 
 #include <cstdint>
+#include <limits>
 #include <optional>
 #include <vector>
 
 #include "solver/model.h"
+#include "solver/options.h"
 
 namespace mdp::internal {
 
@@ -86,8 +88,16 @@ bool TilingPays(const Model& m, int threads);
 // Value iteration's decision after kTiledDecideAfterSweeps sweeps, the last of which changed V
 // by `residual`, aiming at `target`: at discount g in (0, 1) the change shrinks by about g
 // per sweep (by at least that factor: it may take fewer), so log(target / residual) / log(g)
-// sweeps remain; true iff that is at least kTiledMinSweepsLeft and TilingPays(m).
-bool ShouldTile(const Model& m, int threads, double residual, double target);
+// sweeps remain, of which the run's limits allow `sweeps_allowed` (its iteration limit, and
+// its time limit at the pace so far); true iff the fewer of the two is at least
+// kTiledMinSweepsLeft and TilingPays(m).
+bool ShouldTile(const Model& m, int threads, double residual, double target,
+                double sweeps_allowed = std::numeric_limits<double>::infinity());
+// The sweeps a run's limits still allow after `iterations` iterations and `sweeps` sweeps in
+// `elapsed_seconds`: its iterations left, and with a time limit no more than the time left
+// at the pace so far.
+double SweepsAllowed(const SolveOptions& options, int64_t iterations, int64_t sweeps,
+                     double elapsed_seconds);
 
 }  // namespace mdp::internal
 

@@ -159,6 +159,21 @@ TEST(TiledSweepTest, ShouldTileCountsTheSweepsLeftAtTheDiscount) {
   EXPECT_TRUE(internal::ShouldTile(m, 2, at_limit * 1.01, target));
   EXPECT_FALSE(internal::ShouldTile(m, 2, at_limit * 0.99, target));
   EXPECT_FALSE(internal::ShouldTile(m, 2, target, target));  // Done already.
+  // The run's limits leave too few sweeps (iteration or time limit).
+  EXPECT_TRUE(internal::ShouldTile(m, 2, at_limit * 10.0, target, 200.0));
+  EXPECT_FALSE(internal::ShouldTile(m, 2, at_limit * 10.0, target, 199.0));
+}
+
+TEST(TiledSweepTest, SweepsAllowedByTheLimits) {
+  SolveOptions options;
+  options.max_iterations = 1000;
+  EXPECT_DOUBLE_EQ(internal::SweepsAllowed(options, 4, 4, 1.0), 996.0);
+  options.time_limit_seconds = 10.0;  // 1 s for 4 sweeps: 9 s left at 0.25 s per sweep.
+  EXPECT_DOUBLE_EQ(internal::SweepsAllowed(options, 4, 4, 1.0), 36.0);
+  options.max_iterations = 20;
+  EXPECT_DOUBLE_EQ(internal::SweepsAllowed(options, 4, 4, 1.0), 16.0);
+  options.max_iterations = 1000;
+  EXPECT_LE(internal::SweepsAllowed(options, 4, 4, 11.0), 0.0);  // Past the limit already.
 }
 
 // Value iteration switches to the tiled sweep on this model (ShouldTile is true after the
