@@ -36,49 +36,6 @@ void SortTileByColumn(uint32_t* code, double* p, int64_t size, uint32_t* code_tm
   pass(code_tmp, p_tmp, code, p, 8, uint32_t{1} << (kTileColumnBits - 8));
 }
 
-template <bool kMaximize>
-double SweepT(const Model& m, const double* in, double* out, int threads,
-              const std::vector<StateId>& block_state_begin, int64_t column_blocks,
-              const int64_t* tile_begin, const uint32_t* code, const double* probability,
-              std::vector<std::vector<double>>& sums) {
-  const RowId* rb = m.state_row_begin_data();
-  const double* reward = m.row_reward_data();
-  const double g = m.discount();
-  const int64_t blocks = static_cast<int64_t>(block_state_begin.size()) - 1;
-  double diff = 0.0;
-#pragma omp parallel num_threads(threads) reduction(max : diff)
-  {
-    double* sum = sums[omp_get_thread_num()].data();
-    // Blocks on demand, as the row sweep hands out its chunks (bellman_kernels.inc).
-#pragma omp for schedule(dynamic, 1)
-    for (int64_t b = 0; b < blocks; ++b) {
-      const StateId s0 = block_state_begin[b], s1 = block_state_begin[b + 1];
-      const RowId r0 = rb[s0];
-      std::fill_n(sum, 2 * (rb[s1] - r0), 0.0);
-      for (int64_t c = 0; c < column_blocks; ++c) {
-        const double* v = in + (c << kTileColumnBits);
-        const int64_t tile = b * column_blocks + c;
-        for (int64_t e = tile_begin[tile], end = tile_begin[tile + 1]; e < end; ++e) {
-          const uint32_t x = code[e];
-          sum[x >> kTileColumnBits] += probability[e] * v[x & kColumnMask];
-        }
-      }
-      // As SyncSweepT: the running best is a plain max (min) from the first row.
-      for (StateId s = s0; s < s1; ++s) {
-        double best = 0.0;
-        for (RowId r = rb[s], end = rb[s + 1]; r < end; ++r) {
-          const RowId k = 2 * (r - r0);
-          const double q = reward[r] + g * (sum[k] + sum[k + 1]);
-          best = r == rb[s] ? q : kMaximize ? std::max(best, q) : std::min(best, q);
-        }
-        diff = std::max(diff, std::fabs(best - in[s]));
-        out[s] = best;
-      }
-    }
-  }
-  return diff;
-}
-
 }  // namespace
 
 std::optional<TiledEntries> TiledEntries::Build(const Model& m, int threads) {
@@ -106,16 +63,12 @@ std::optional<TiledEntries> TiledEntries::Build(const Model& m, int threads) {
   t.column_blocks_ = (int64_t{n} + kColumnMask) >> kTileColumnBits;
   const int64_t cb = t.column_blocks_;
   t.tile_begin_.assign(static_cast<size_t>(blocks * cb + 1), 0);
-  auto block_entries = [&](int64_t b, int64_t* first, int64_t* last) {
-    *first = eb[rb[t.block_state_begin_[b]]];
-    *last = eb[rb[t.block_state_begin_[b + 1]]];
-  };
   // Each block counts into its own tiles: no two threads write one counter.
 #pragma omp parallel for num_threads(threads) schedule(dynamic, 1)
   for (int64_t b = 0; b < blocks; ++b) {
     int64_t* count = t.tile_begin_.data() + b * cb + 1;
-    int64_t first, last;
-    block_entries(b, &first, &last);
+    const int64_t first = eb[rb[t.block_state_begin_[b]]];
+    const int64_t last = eb[rb[t.block_state_begin_[b + 1]]];
     for (int64_t e = first; e < last; ++e) ++count[next[e] >> kTileColumnBits];
   }
   for (size_t i = 1; i < t.tile_begin_.size(); ++i) t.tile_begin_[i] += t.tile_begin_[i - 1];
@@ -160,27 +113,57 @@ std::optional<TiledEntries> TiledEntries::Build(const Model& m, int threads) {
   return t;
 }
 
+template <bool kMaximize>
+double TiledEntries::SweepT(const Model& m, const double* in, double* out, int threads) const {
+  const RowId* rb = m.state_row_begin_data();
+  const double* reward = m.row_reward_data();
+  const double g = m.discount();
+  const int64_t blocks = num_blocks();
+  const int64_t* tile_begin = tile_begin_.data();
+  const uint32_t* code = code_.data();
+  const double* probability = probability_.data();
+  double diff = 0.0;
+#pragma omp parallel num_threads(threads) reduction(max : diff)
+  {
+    double* sum = sums_[omp_get_thread_num()].data();
+    // Blocks on demand, as the row sweep hands out its chunks (bellman_kernels.inc).
+#pragma omp for schedule(dynamic, 1)
+    for (int64_t b = 0; b < blocks; ++b) {
+      const StateId s0 = block_state_begin_[b], s1 = block_state_begin_[b + 1];
+      const RowId r0 = rb[s0];
+      std::fill_n(sum, 2 * (rb[s1] - r0), 0.0);
+      for (int64_t c = 0; c < column_blocks_; ++c) {
+        const double* v = in + (c << kTileColumnBits);
+        const int64_t tile = b * column_blocks_ + c;
+        for (int64_t e = tile_begin[tile], end = tile_begin[tile + 1]; e < end; ++e) {
+          const uint32_t x = code[e];
+          sum[x >> kTileColumnBits] += probability[e] * v[x & kColumnMask];
+        }
+      }
+      // As SyncSweepT: the running best is a plain max (min) from the first row.
+      for (StateId s = s0; s < s1; ++s) {
+        double best = 0.0;
+        for (RowId r = rb[s], end = rb[s + 1]; r < end; ++r) {
+          const RowId k = 2 * (r - r0);
+          const double q = reward[r] + g * (sum[k] + sum[k + 1]);
+          best = r == rb[s] ? q : kMaximize ? std::max(best, q) : std::min(best, q);
+        }
+        diff = std::max(diff, std::fabs(best - in[s]));
+        out[s] = best;
+      }
+    }
+  }
+  return diff;
+}
+
 double TiledEntries::Sweep(const Model& m, const double* in, double* out, int threads) const {
   threads = std::max(threads, 1);
   if (static_cast<int>(sums_.size()) < threads) {
     const size_t size = sums_.empty() ? 0 : sums_.front().size();
     sums_.resize(static_cast<size_t>(threads), std::vector<double>(size));
   }
-  return m.objective() == Objective::kMaximize
-             ? SweepT<true>(m, in, out, threads, block_state_begin_, column_blocks_,
-                            tile_begin_.data(), code_.data(), probability_.data(), sums_)
-             : SweepT<false>(m, in, out, threads, block_state_begin_, column_blocks_,
-                             tile_begin_.data(), code_.data(), probability_.data(), sums_);
-}
-
-int64_t TiledEntries::bytes() const {
-  int64_t sums = 0;
-  for (const std::vector<double>& s : sums_) sums += static_cast<int64_t>(s.size());
-  return static_cast<int64_t>(code_.size() * sizeof(uint32_t) +
-                              probability_.size() * sizeof(double) +
-                              tile_begin_.size() * sizeof(int64_t) +
-                              block_state_begin_.size() * sizeof(StateId)) +
-         sums * static_cast<int64_t>(sizeof(double));
+  return m.objective() == Objective::kMaximize ? SweepT<true>(m, in, out, threads)
+                                               : SweepT<false>(m, in, out, threads);
 }
 
 bool TilingPays(const Model& m, int threads) {

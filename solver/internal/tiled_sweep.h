@@ -64,12 +64,13 @@ class TiledEntries {
   // calls on one object (each thread's row sums are kept between calls).
   double Sweep(const Model& m, const double* in, double* out, int threads) const;
 
-  // Bytes held (entries, tile offsets, block bounds, the row sums of the last Sweep).
-  int64_t bytes() const;
   int64_t num_blocks() const { return static_cast<int64_t>(block_state_begin_.size()) - 1; }
   int64_t num_column_blocks() const { return column_blocks_; }
 
  private:
+  template <bool kMaximize>
+  double SweepT(const Model& m, const double* in, double* out, int threads) const;
+
   std::vector<StateId> block_state_begin_;  // Blocks of states, each <= kTileMaxRows rows.
   int64_t column_blocks_ = 0;
   // Tile (block b, column block c) is [tile_begin_[b * column_blocks_ + c], ... + 1).

@@ -23,8 +23,8 @@ namespace mdp {
 namespace {
 
 using internal::KernelSet;
-using testing::SomeValues;
 using internal::TiledEntries;
+using testing::SomeValues;
 
 // 100,000 states with 1-4 rows of 1-12 entries each, next states anywhere: 4 blocks of next
 // states and several blocks of rows.
