@@ -150,6 +150,157 @@ class CuthillMcKee {
   std::vector<int32_t> last_;
 };
 
+// Nested dissection (George 1973, "Nested dissection of a regular finite element mesh",
+// SIAM J. Numer. Anal. 10(2); the automatic form of George and Liu 1981, ch. 8; from
+// memory): a connected part is split by a middle layer of a breadth-first search from a
+// pseudo-peripheral unknown, both sides are ordered (the same way, recursively) before the
+// layer, and parts of at most kLeaf unknowns in the order of the search. Eliminating a side
+// then never fills across the layer, so on a grid of side w the factors hold about
+// n log n entries where a band order needs n w. Only the unknowns of the layer that touch
+// the far side separate; the others join the near side.
+class Dissection {
+ public:
+  Dissection(const std::vector<int64_t>& begin, const std::vector<int32_t>& adj)
+      : begin_(begin),
+        adj_(adj),
+        n_(static_cast<int32_t>(begin.size()) - 1),
+        part_(n_, kUnlabelled),
+        stamp_(n_, -1),
+        level_(n_, 0) {}
+
+  std::vector<int32_t> Order() {
+    // order is filled from the back: a part's layer first, then its sides, which are split
+    // later (after the parts on the stack above them) and so come before it.
+    std::vector<int32_t> order(n_);
+    int32_t back = n_;
+    std::vector<int32_t> stack;  // Seeds of parts to order; part_[seed] is the part's label.
+    for (int32_t v = 0; v < n_; ++v) {
+      if (part_[v] == kUnlabelled) stack.push_back(Label(v, kUnlabelled));
+    }
+    std::vector<int32_t> members;
+    while (!stack.empty()) {
+      const int32_t seed = stack.back();
+      stack.pop_back();
+      const int32_t label = part_[seed];
+      Search(PseudoPeripheral(seed, label), label);
+      const auto size = static_cast<int32_t>(queue_.size());
+      const auto depth = static_cast<int32_t>(layer_begin_.size()) - 1;  // Layers.
+      if (size <= kLeaf || depth < 3) {
+        for (int32_t q = size - 1; q >= 0; --q) order[--back] = queue_[q];
+        for (const int32_t v : queue_) part_[v] = kOrdered;
+        continue;
+      }
+      // The first layer past the first whose end reaches half the part (not the first or
+      // the last layer, so both sides are nonempty).
+      int32_t middle = 1;
+      while (middle + 1 < depth - 1 && layer_begin_[middle + 1] <= size / 2) ++middle;
+      for (int32_t q = layer_begin_[middle]; q < layer_begin_[middle + 1]; ++q) {
+        const int32_t v = queue_[q];
+        if (TouchesLevel(v, label, middle + 1)) {
+          part_[v] = kOrdered;
+          order[--back] = v;
+        } else {
+          level_[v] = middle - 1;  // Joins the near side.
+        }
+      }
+      members.assign(queue_.begin(), queue_.end());
+      for (const int32_t v : members) {
+        if (part_[v] == label) stack.push_back(Label(v, label));
+      }
+    }
+    return order;
+  }
+
+ private:
+  static constexpr int32_t kLeaf = 64;
+  static constexpr int32_t kUnlabelled = -1;
+  static constexpr int32_t kOrdered = -2;
+
+  // Gives the connected set of unknowns labelled `from_label` around v a new label; returns v.
+  int32_t Label(int32_t v, int32_t from_label) {
+    const int32_t label = next_label_++;
+    collect_.assign(1, v);
+    part_[v] = label;
+    for (size_t h = 0; h < collect_.size(); ++h) {
+      const int32_t u = collect_[h];
+      for (int64_t e = begin_[u]; e < begin_[u + 1]; ++e) {
+        if (part_[adj_[e]] == from_label) {
+          part_[adj_[e]] = label;
+          collect_.push_back(adj_[e]);
+        }
+      }
+    }
+    return v;
+  }
+
+  bool TouchesLevel(int32_t v, int32_t label, int32_t level) const {
+    for (int64_t e = begin_[v]; e < begin_[v + 1]; ++e) {
+      if (part_[adj_[e]] == label && level_[adj_[e]] == level) return true;
+    }
+    return false;
+  }
+
+  // Breadth-first search of part `label` from `from`: queue_ in search order, layer k in
+  // queue_[layer_begin_[k], layer_begin_[k + 1]), level_ set for every unknown reached.
+  void Search(int32_t from, int32_t label) {
+    ++search_;
+    queue_.assign(1, from);
+    layer_begin_.assign(1, 0);
+    stamp_[from] = search_;
+    level_[from] = 0;
+    for (size_t begin = 0; begin < queue_.size();) {
+      const size_t end = queue_.size();
+      layer_begin_.push_back(static_cast<int32_t>(end));  // This layer is [begin, end).
+      const auto next = static_cast<int32_t>(layer_begin_.size()) - 1;
+      for (size_t q = begin; q < end; ++q) {
+        const int32_t v = queue_[q];
+        for (int64_t e = begin_[v]; e < begin_[v + 1]; ++e) {
+          const int32_t u = adj_[e];
+          if (part_[u] == label && stamp_[u] != search_) {
+            stamp_[u] = search_;
+            level_[u] = next;
+            queue_.push_back(u);
+          }
+        }
+      }
+      begin = end;
+    }
+  }
+
+  // As CuthillMcKee::PseudoPeripheral, within part `label`.
+  int32_t PseudoPeripheral(int32_t root, int32_t label) {
+    int32_t x = root;
+    int32_t depth = -1;
+    for (int round = 0; round < 4; ++round) {
+      Search(x, label);
+      const auto d = static_cast<int32_t>(layer_begin_.size()) - 1;
+      if (d <= depth) break;
+      depth = d;
+      int32_t best = queue_[layer_begin_[d - 1]];
+      for (int32_t q = layer_begin_[d - 1]; q < layer_begin_[d]; ++q) {
+        if (Degree(queue_[q]) < Degree(best)) best = queue_[q];
+      }
+      if (best == x) break;
+      x = best;
+    }
+    return x;
+  }
+
+  int64_t Degree(int32_t v) const { return begin_[v + 1] - begin_[v]; }
+
+  const std::vector<int64_t>& begin_;
+  const std::vector<int32_t>& adj_;
+  int32_t n_;
+  std::vector<int32_t> part_;   // A part's label, kUnlabelled or kOrdered.
+  std::vector<int32_t> stamp_;  // == search_ iff reached by the current search.
+  std::vector<int32_t> level_;  // Layer in the last search that reached the unknown.
+  int32_t search_ = -1;
+  int32_t next_label_ = 0;
+  std::vector<int32_t> queue_;
+  std::vector<int32_t> layer_begin_;  // Layers + 1 entries.
+  std::vector<int32_t> collect_;
+};
+
 // The pattern of row k of L (by position): the unknowns met walking up the elimination tree
 // from each neighbour j < k of k until k or an unknown already met (Liu 1990, "The role of
 // elimination trees in sparse factorization", SIAM J. Matrix Anal. Appl. 11(1), from
@@ -204,26 +355,14 @@ FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes) {
   return PlanFactors(a, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
 }
 
-FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries) {
-  FactorPlan plan;
-  const int32_t n = a.size;
-  std::vector<int64_t>& begin = plan.pattern_begin;
-  std::vector<int32_t>& adj = plan.pattern;
-  SymmetricPattern(a, begin, adj);
-  // A quick look before the order: in a Cuthill-McKee order an unknown's factor row reaches
-  // back about a layer's width, so a layer of w unknowns means some n w / 4 entries or more
-  // in the layers around it; an expander's layers grow geometrically, and searches from two
-  // spread unknowns that meet a layer wider than 4 cap / n make the count pointless (a
-  // guess that can only send a system to the iterative solver, never change an answer).
-  if (n > 0) {
-    const int64_t max_width = std::max<int64_t>(16, 4 * max_lower_entries / n);
-    std::vector<int32_t> stamp(n, -1);
-    if (HasWideLayer(begin, adj, 0, max_width, stamp, 0) ||
-        HasWideLayer(begin, adj, n / 2, max_width, stamp, 1)) {
-      return plan;
-    }
-  }
-  plan.order = CuthillMcKee(begin, adj).Order();
+namespace {
+
+// Elimination tree and counts of the factors of `plan.order`, complete = false once they
+// pass max_lower_entries.
+void CountFactors(FactorPlan& plan, int64_t max_lower_entries) {
+  const int32_t n = static_cast<int32_t>(plan.order.size());
+  const std::vector<int64_t>& begin = plan.pattern_begin;
+  const std::vector<int32_t>& adj = plan.pattern;
   plan.position.assign(n, 0);
   for (int32_t k = 0; k < n; ++k) plan.position[plan.order[k]] = k;
   // Elimination tree by path compression (Liu 1990, from memory).
@@ -246,19 +385,75 @@ FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries) {
   std::vector<int32_t> mark(n, -1);
   std::vector<int64_t> count(n, 0);
   int64_t total = 0;
+  plan.complete = false;
   for (int32_t k = 0; k < n; ++k) {
     RowSubtree(k, plan.order, plan.position, begin, adj, plan.parent, mark, [&](int32_t r) {
       ++count[r];
       ++total;
     });
-    if (total > max_lower_entries) return plan;
+    if (total > max_lower_entries) return;
   }
   plan.lower_entries = total;
+  plan.multiply_adds = 0.0;
   for (int32_t j = 0; j < n; ++j) {
     plan.multiply_adds += static_cast<double>(count[j]) * static_cast<double>(count[j] + 1);
   }
   plan.complete = true;
-  return plan;
+}
+
+}  // namespace
+
+FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries, FactorOrdering ordering) {
+  FactorPlan plan;
+  const int32_t n = a.size;
+  SymmetricPattern(a, plan.pattern_begin, plan.pattern);
+  if (n == 0) {
+    plan.complete = true;
+    return plan;
+  }
+  std::vector<int32_t> stamp(n, -1);
+  auto wide = [&](int64_t max_width) {
+    return HasWideLayer(plan.pattern_begin, plan.pattern, 0, max_width, stamp, 0) ||
+           HasWideLayer(plan.pattern_begin, plan.pattern, n / 2, max_width, stamp, 1);
+  };
+  // A quick look before each order. In a Cuthill-McKee order an unknown's factor row
+  // reaches back about a layer's width, so a layer of w unknowns means some n w / 4 entries
+  // or more in the layers around it; an expander's layers grow geometrically, and searches
+  // from two spread unknowns that meet a layer wider than 4 cap / n make the count
+  // pointless. Nested dissection ends with a separating layer, whose unknowns fill in
+  // completely: a layer of w means about w^2 / 2 entries, so one wider than sqrt(2 cap)
+  // rules it out. (Guesses that can only send a system to the iterative solver, never
+  // change an answer.)
+  if (ordering != FactorOrdering::kDissection &&
+      !wide(std::max<int64_t>(16, 4 * max_lower_entries / n))) {
+    plan.order = CuthillMcKee(plan.pattern_begin, plan.pattern).Order();
+    plan.ordering = FactorOrdering::kCuthillMcKee;
+    CountFactors(plan, max_lower_entries);
+    // A band of up to kBandWork work per unknown (128 entries per column, a ring's band
+    // is a few dozen) is kept without trying the other order.
+    constexpr double kBandWork = 128.0 * 128.0;
+    if (ordering == FactorOrdering::kCuthillMcKee ||
+        (plan.complete && plan.multiply_adds <= kBandWork * n)) {
+      return plan;
+    }
+  }
+  const auto max_separator =
+      static_cast<int64_t>(std::sqrt(2.0 * static_cast<double>(max_lower_entries)));
+  if (ordering == FactorOrdering::kAutomatic && wide(std::max<int64_t>(16, max_separator))) {
+    return plan;
+  }
+  FactorPlan dissected;
+  dissected.pattern_begin = std::move(plan.pattern_begin);
+  dissected.pattern = std::move(plan.pattern);
+  dissected.order = Dissection(dissected.pattern_begin, dissected.pattern).Order();
+  dissected.ordering = FactorOrdering::kDissection;
+  CountFactors(dissected, max_lower_entries);
+  if (plan.complete && !(dissected.complete && dissected.multiply_adds < plan.multiply_adds)) {
+    plan.pattern_begin = std::move(dissected.pattern_begin);  // The band stays.
+    plan.pattern = std::move(dissected.pattern);
+    return plan;
+  }
+  return dissected;
 }
 
 Status MMatrixLu::Factorize(const LeakySystem& a, FactorPlan plan, const StopCheck& stop) {

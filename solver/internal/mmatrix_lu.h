@@ -33,6 +33,13 @@ struct LeakySystem {
   int64_t entries() const { return row_begin.back(); }
 };
 
+// How PlanFactors orders the unknowns.
+enum class FactorOrdering {
+  kAutomatic,     // Cuthill-McKee; nested dissection when that does not fit.
+  kCuthillMcKee,  // Reverse Cuthill-McKee only: a band.
+  kDissection,    // Nested dissection only.
+};
+
 // The elimination order and the predicted size and work of the factors.
 struct FactorPlan {
   std::vector<int32_t> order;          // order[k]: the unknown eliminated k-th.
@@ -45,18 +52,25 @@ struct FactorPlan {
   int64_t lower_entries = 0;
   double multiply_adds = 0.0;  // The factorisation's work: sum over columns of count^2.
   // False iff planning gave up (a wide search layer, or the count passed the cap); the
-  // order and the counts are then unset.
+  // order and the counts are then not to be used.
   bool complete = false;
+  FactorOrdering ordering = FactorOrdering::kAutomatic;  // The order tried last.
 
   // Bytes the factors take (indices and values of L and U, the pivots).
   double bytes() const;
 };
 
-// Orders the unknowns (reverse Cuthill-McKee on the pattern of A + A^T, each connected part
-// searched from a pseudo-peripheral unknown) and counts the factors' entries, giving up with
-// complete = false once they pass max_lower_entries, or before ordering when two searches
-// meet a layer so wide that they would (see the .cc). Time O(entries + min(count, cap)).
-FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries);
+// Orders the unknowns and counts the factors' entries, giving up with complete = false once
+// they pass max_lower_entries. kAutomatic first tries reverse Cuthill-McKee on the pattern
+// of A + A^T (each connected part searched from a pseudo-peripheral unknown), which keeps
+// chains on a line or a ring in a narrow band; when that does not fit, or fits in a band
+// wider than about 128, it also tries nested dissection, which keeps the factors of a grid
+// near n log n entries where a band holds n^1.5, and keeps the plan with less work. Each
+// order is skipped without counting when searches from two spread unknowns meet a layer
+// too wide for it (an expander; see the .cc). Time O(entries log n + min(count, cap)) per
+// order tried.
+FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries,
+                       FactorOrdering ordering = FactorOrdering::kAutomatic);
 // PlanFactors counting no further than `budget_bytes` of factors allow (each entry of L and
 // of U holds an index and a value, FactorPlan::bytes).
 FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes);

@@ -29,6 +29,7 @@ namespace {
 using internal::AverageEvaluation;
 using internal::AverageSolveCounts;
 using internal::EvaluateAverage;
+using internal::FactorOrdering;
 using internal::FactorPlan;
 using internal::LeakySystem;
 using internal::MMatrixLu;
@@ -219,34 +220,110 @@ Eigen::SparseMatrix<double> Assemble(const LeakySystem& a) {
   return m;
 }
 
-TEST(MMatrixLuTest, SolvesAsEigensSparseLuDoes) {
-  for (uint64_t seed = 1; seed <= 4; ++seed) {
-    SCOPED_TRACE(seed);
-    const LeakySystem a = RandomLeakySystem(seed, 400);
-    FactorPlan plan = PlanFactors(a, kNoCap);
-    ASSERT_TRUE(plan.complete);
-    MMatrixLu lu;
-    ASSERT_OK(lu.Factorize(a, std::move(plan), StopCheck{}));
-    const Eigen::SparseMatrix<double> matrix = Assemble(a);
-    Eigen::SparseLU<Eigen::SparseMatrix<double>> reference;
-    reference.compute(matrix);
-    ASSERT_EQ(reference.info(), Eigen::Success);
-    std::mt19937_64 rng(seed);
-    Eigen::VectorXd b(a.size);
-    for (int32_t i = 0; i < a.size; ++i) b[i] = static_cast<double>(rng() % 2001) / 1000.0 - 1.0;
-    Eigen::VectorXd x = b;
-    lu.Solve(std::span<double>(x.data(), x.size()));
-    const Eigen::VectorXd want = reference.solve(b);
-    EXPECT_LE((x - want).lpNorm<Eigen::Infinity>(), 1e-9 * (1.0 + want.lpNorm<Eigen::Infinity>()));
-    Eigen::VectorXd z = b;
-    lu.SolveTransposed(std::span<double>(z.data(), z.size()));
-    const Eigen::SparseMatrix<double> transposed = matrix.transpose();
-    Eigen::SparseLU<Eigen::SparseMatrix<double>> reference_t;
-    reference_t.compute(transposed);
-    const Eigen::VectorXd want_t = reference_t.solve(b);
-    EXPECT_LE((z - want_t).lpNorm<Eigen::Infinity>(),
-              1e-9 * (1.0 + want_t.lpNorm<Eigen::Infinity>()));
+// I - Q on a side x side grid whose chain steps to the 8 neighbours of a cell with random
+// weights (as a vehicle with slip on a map), leaking at the border and, rarely, inside.
+LeakySystem GridLeakySystem(uint64_t seed, int32_t side) {
+  std::mt19937_64 rng(seed);
+  std::uniform_real_distribution<double> unit(0.0, 1.0);
+  LeakySystem a;
+  a.size = side * side;
+  for (int32_t y = 0; y < side; ++y) {
+    for (int32_t x = 0; x < side; ++x) {
+      std::vector<std::pair<int32_t, double>> row;
+      double leak = rng() % 50 == 0 ? unit(rng) : 0.0;
+      for (int dy = -1; dy <= 1; ++dy) {
+        for (int dx = -1; dx <= 1; ++dx) {
+          if (dx == 0 && dy == 0) continue;
+          const double w = 0.05 + unit(rng);
+          if (x + dx < 0 || x + dx >= side || y + dy < 0 || y + dy >= side) {
+            leak += w;  // Off the map.
+          } else {
+            row.emplace_back((y + dy) * side + x + dx, w);
+          }
+        }
+      }
+      double total = leak + unit(rng);  // The rest stays put.
+      for (auto& e : row) total += e.second;
+      for (auto& e : row) {
+        a.col.push_back(e.first);
+        a.weight.push_back(e.second / total);
+      }
+      a.leak.push_back(leak / total);
+      a.row_begin.push_back(static_cast<int64_t>(a.col.size()));
+    }
   }
+  return a;
+}
+
+// Every unknown once.
+bool IsPermutation(const std::vector<int32_t>& order, int32_t n) {
+  std::vector<int> seen(n, 0);
+  for (const int32_t v : order) {
+    if (v < 0 || v >= n || seen[v]++ > 0) return false;
+  }
+  return static_cast<int32_t>(order.size()) == n;
+}
+
+// Both orders, on scattered systems and on grids (where nested dissection splits the
+// system many times over): the factors solve as Eigen's sparse LU does.
+TEST(MMatrixLuTest, SolvesAsEigensSparseLuDoes) {
+  for (const FactorOrdering ordering : {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
+    for (uint64_t seed = 1; seed <= 6; ++seed) {
+      SCOPED_TRACE(::testing::Message() << "ordering " << static_cast<int>(ordering) << " seed "
+                                      << seed);
+      const LeakySystem a = seed <= 4 ? RandomLeakySystem(seed, 400) : GridLeakySystem(seed, 45);
+      FactorPlan plan = PlanFactors(a, kNoCap, ordering);
+      ASSERT_TRUE(plan.complete);
+      ASSERT_EQ(plan.ordering, ordering);
+      ASSERT_TRUE(IsPermutation(plan.order, a.size));
+      MMatrixLu lu;
+      ASSERT_OK(lu.Factorize(a, std::move(plan), StopCheck{}));
+      const Eigen::SparseMatrix<double> matrix = Assemble(a);
+      Eigen::SparseLU<Eigen::SparseMatrix<double>> reference;
+      reference.compute(matrix);
+      ASSERT_EQ(reference.info(), Eigen::Success);
+      std::mt19937_64 rng(seed);
+      Eigen::VectorXd b(a.size);
+      for (int32_t i = 0; i < a.size; ++i) {
+        b[i] = static_cast<double>(rng() % 2001) / 1000.0 - 1.0;
+      }
+      Eigen::VectorXd x = b;
+      lu.Solve(std::span<double>(x.data(), x.size()));
+      const Eigen::VectorXd want = reference.solve(b);
+      EXPECT_LE((x - want).lpNorm<Eigen::Infinity>(),
+                1e-9 * (1.0 + want.lpNorm<Eigen::Infinity>()));
+      Eigen::VectorXd z = b;
+      lu.SolveTransposed(std::span<double>(z.data(), z.size()));
+      const Eigen::SparseMatrix<double> transposed = matrix.transpose();
+      Eigen::SparseLU<Eigen::SparseMatrix<double>> reference_t;
+      reference_t.compute(transposed);
+      const Eigen::VectorXd want_t = reference_t.solve(b);
+      EXPECT_LE((z - want_t).lpNorm<Eigen::Infinity>(),
+                1e-9 * (1.0 + want_t.lpNorm<Eigen::Infinity>()));
+    }
+  }
+}
+
+// On a 200 x 200 grid a band is about 200 wide (n^1.5 entries); nested dissection's
+// separators keep the factors near n log n. The automatic plan takes dissection, and still
+// fits under a cap that the band passes.
+TEST(MMatrixLuTest, PlanDissectsAGridThatABandFillsIn) {
+  const LeakySystem a = GridLeakySystem(7, 200);
+  const FactorPlan band = PlanFactors(a, kNoCap, FactorOrdering::kCuthillMcKee);
+  const FactorPlan dissected = PlanFactors(a, kNoCap, FactorOrdering::kDissection);
+  ASSERT_TRUE(band.complete);
+  ASSERT_TRUE(dissected.complete);
+  ASSERT_TRUE(IsPermutation(dissected.order, a.size));
+  EXPECT_LT(3 * dissected.lower_entries, band.lower_entries);
+  EXPECT_LT(5 * dissected.multiply_adds, band.multiply_adds);
+  const FactorPlan automatic = PlanFactors(a, kNoCap);
+  EXPECT_EQ(automatic.ordering, FactorOrdering::kDissection);
+  EXPECT_EQ(automatic.lower_entries, dissected.lower_entries);
+  const int64_t cap = (band.lower_entries + dissected.lower_entries) / 2;
+  EXPECT_FALSE(PlanFactors(a, cap, FactorOrdering::kCuthillMcKee).complete);
+  const FactorPlan capped = PlanFactors(a, cap);
+  EXPECT_TRUE(capped.complete);
+  EXPECT_EQ(capped.ordering, FactorOrdering::kDissection);
 }
 
 // Expected hitting times of 0 in a birth-death chain on 0..n moving up w.p. p and down w.p.
@@ -257,7 +334,7 @@ TEST(MMatrixLuTest, SolvesAsEigensSparseLuDoes) {
 // from where it leaks, the case where elimination loses digits by cancellation. The
 // factors keep them to a few units in the last place.
 TEST(MMatrixLuTest, HittingTimesOfAClimbingChainAreAccurateEntryByEntry) {
-  const int32_t n = 60;
+  const int32_t n = 200;
   const double p = 0.75, q = 0.25;
   LeakySystem a;  // Unknown i - 1 is state i = 1..n.
   a.size = n;
@@ -280,17 +357,21 @@ TEST(MMatrixLuTest, HittingTimesOfAClimbingChainAreAccurateEntryByEntry) {
   for (int32_t i = 1; i <= n; ++i) hitting[i] = hitting[i - 1] + tau[i];
   ASSERT_GT(hitting[n], 1e28);
 
-  FactorPlan plan = PlanFactors(a, kNoCap);
-  ASSERT_TRUE(plan.complete);
-  MMatrixLu lu;
-  ASSERT_OK(lu.Factorize(a, std::move(plan), StopCheck{}));
-  std::vector<double> x(n, 1.0);
-  lu.Solve(x);
-  double worst = 0.0;
-  for (int32_t i = 1; i <= n; ++i) {
-    worst = std::max(worst, std::fabs(x[i - 1] - hitting[i]) / hitting[i]);
+  // Any elimination order keeps the pivots free of cancellation.
+  for (const FactorOrdering ordering : {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
+    SCOPED_TRACE(static_cast<int>(ordering));
+    FactorPlan plan = PlanFactors(a, kNoCap, ordering);
+    ASSERT_TRUE(plan.complete);
+    MMatrixLu lu;
+    ASSERT_OK(lu.Factorize(a, std::move(plan), StopCheck{}));
+    std::vector<double> x(n, 1.0);
+    lu.Solve(x);
+    double worst = 0.0;
+    for (int32_t i = 1; i <= n; ++i) {
+      worst = std::max(worst, std::fabs(x[i - 1] - hitting[i]) / hitting[i]);
+    }
+    EXPECT_LE(worst, 1e-13);
   }
-  EXPECT_LE(worst, 1e-13);
 }
 
 TEST(MMatrixLuTest, ASetThatNeverLeaksIsNamed) {
