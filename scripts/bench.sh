@@ -21,8 +21,9 @@
 # timed sweeps per configuration; more are timed until 0.5 s has passed),
 # BENCH_INGEST_STATES (100000), BENCH_MEMORY_STATES (service_memory.py's model; default the
 # run's state count), BENCH_BUILD_TYPE (RelWithDebInfo, as the default build),
-# BENCH_CRITERIA_STRUCTURES ("random local": solved under the average, total and finite-horizon
-# criteria too), BENCH_CRITERIA_STATES (the run's state count), BENCH_CRITERIA_TIME_LIMIT (120 s
+# BENCH_CRITERIA_STRUCTURES ("random local grid@100000": solved under the average, total and
+# finite-horizon criteria too; "@N" sets a structure's state count), BENCH_CRITERIA_STATES (the
+# run's state count, for structures without "@"), BENCH_CRITERIA_TIME_LIMIT (120 s
 # per solve), BENCH_SKIP_CRITERIA=1,
 # BENCH_QUERY_RUNS ("64:1 16:1 64:2": one query run per CONNECTIONS:WRK_THREADS pair, wrk's
 # keep-alive connections and its threads; 64 connections saturate the 2 cores, 16 keep fewer
@@ -59,7 +60,7 @@ else
   SOLVE_LOAD_ROUNDS=3
 fi
 STRUCTURES=${BENCH_STRUCTURES:-random local local_shuffled grid inventory}
-CRITERIA_STRUCTURES=${BENCH_CRITERIA_STRUCTURES:-random local}
+CRITERIA_STRUCTURES=${BENCH_CRITERIA_STRUCTURES:-random local grid@100000}
 CRITERIA_STATES=${BENCH_CRITERIA_STATES:-$STATES}
 CRITERIA_TIME_LIMIT=${BENCH_CRITERIA_TIME_LIMIT:-120}
 SOLVE_STRUCTURE=${BENCH_SOLVE_STRUCTURE:-local}
@@ -154,7 +155,10 @@ done
 # (every 100th state made terminal, the generated rewards + 1.5 read as costs) and a 100-period
 # finite horizon.
 if [[ ${BENCH_SKIP_CRITERIA:-0} != 1 ]]; then
-  for structure in $CRITERIA_STRUCTURES; do
+  for entry in $CRITERIA_STRUCTURES; do
+    structure=${entry%%@*}
+    states=$CRITERIA_STATES
+    [[ $entry == *@* ]] && states=${entry#*@}
     for criterion in average total finite_horizon; do
       case $criterion in
         average) extra=(--methods=policy_iteration,relative_value_iteration) ;;
@@ -162,11 +166,11 @@ if [[ ${BENCH_SKIP_CRITERIA:-0} != 1 ]]; then
                       --reward-shift=1.5) ;;
         finite_horizon) extra=(--methods=backward_induction --horizon=100) ;;
       esac
-      say "$structure: $CRITERIA_STATES states, $criterion criterion"
-      run "$BIN/solver_bench" model --structure="$structure" --states="$CRITERIA_STATES" \
+      say "$structure: $states states, $criterion criterion"
+      run "$BIN/solver_bench" model --structure="$structure" --states="$states" \
         --sweeps=0 --measure-renumbering=0 --criterion="$criterion" "${extra[@]}" \
         --tolerance=1e-6 --time-limit="$CRITERIA_TIME_LIMIT" \
-        >"$WORK/criteria-$criterion-$structure.json"
+        >"$WORK/criteria-$criterion-$structure-$states.json"
     done
     sample_load "criteria-$structure"
   done
