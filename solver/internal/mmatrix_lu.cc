@@ -516,7 +516,7 @@ Status MMatrixLu::Factorize(const LeakySystem& a, FactorPlan plan, const StopChe
   // leak(k) plus the leak it inherits through L; every term is >= 0.
   std::vector<double> schur_leak(n, 0.0);
   std::vector<double> w(n, 0.0);  // Row k of the partly eliminated matrix, scattered.
-  std::vector<int64_t> u_end(n);   // Row k of U: its nonzeros are [u_begin_[k], u_end[k]).
+  std::vector<int64_t> u_end(n);  // Row k of U: its nonzeros are [u_begin_[k], u_end[k]).
   for (int32_t k = 0; k < n; ++k) {
     if (k % kPollRows == 0) MDP_RETURN_IF_ERROR(stop.Poll());
     const int32_t row = order_[k];

@@ -35,7 +35,7 @@ struct LeakySystem {
 
 // How PlanFactors orders the unknowns.
 enum class FactorOrdering {
-  kAutomatic,     // Cuthill-McKee; nested dissection when that does not fit.
+  kAutomatic,     // Cuthill-McKee; nested dissection too when that does not fit or is wide.
   kCuthillMcKee,  // Reverse Cuthill-McKee only: a band.
   kDissection,    // Nested dissection only.
 };

@@ -1,10 +1,10 @@
 // Checks of the average-reward evaluation on models beyond the small direct solver
 // (solver/internal/average_chains.h, solver/internal/mmatrix_lu.h): the factored solves
 // against Eigen's sparse LU on the assembled systems (an independent general-purpose
-// solver) and against closed forms derived here (hitting times and the stationary
-// distribution of birth-death chains), which solver each system takes, and stops inside an
-// evaluation. Policy iteration's answers on a slowly mixing ring are checked by the
-// optimality equations themselves, recomputed here in long double.
+// solver), in both elimination orders, and against closed forms derived here (hitting times
+// and the stationary distribution of birth-death chains), which solver each system takes,
+// and stops inside an evaluation. Policy iteration's answers on a slowly mixing ring are
+// checked by the optimality equations themselves, recomputed here in long double.
 #include <gtest/gtest.h>
 
 #include <Eigen/SparseCore>
@@ -267,10 +267,11 @@ bool IsPermutation(const std::vector<int32_t>& order, int32_t n) {
 // Both orders, on scattered systems and on grids (where nested dissection splits the
 // system many times over): the factors solve as Eigen's sparse LU does.
 TEST(MMatrixLuTest, SolvesAsEigensSparseLuDoes) {
-  for (const FactorOrdering ordering : {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
+  for (const FactorOrdering ordering :
+       {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
     for (uint64_t seed = 1; seed <= 6; ++seed) {
-      SCOPED_TRACE(::testing::Message() << "ordering " << static_cast<int>(ordering) << " seed "
-                                      << seed);
+      SCOPED_TRACE(::testing::Message()
+                   << "ordering " << static_cast<int>(ordering) << " seed " << seed);
       const LeakySystem a = seed <= 4 ? RandomLeakySystem(seed, 400) : GridLeakySystem(seed, 45);
       FactorPlan plan = PlanFactors(a, kNoCap, ordering);
       ASSERT_TRUE(plan.complete);
@@ -358,7 +359,8 @@ TEST(MMatrixLuTest, HittingTimesOfAClimbingChainAreAccurateEntryByEntry) {
   ASSERT_GT(hitting[n], 1e28);
 
   // Any elimination order keeps the pivots free of cancellation.
-  for (const FactorOrdering ordering : {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
+  for (const FactorOrdering ordering :
+       {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
     SCOPED_TRACE(static_cast<int>(ordering));
     FactorPlan plan = PlanFactors(a, kNoCap, ordering);
     ASSERT_TRUE(plan.complete);
