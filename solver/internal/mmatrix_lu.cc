@@ -350,30 +350,12 @@ double FactorPlan::bytes() const {
          static_cast<double>(order.size()) * (2 * sizeof(int64_t) + sizeof(double));
 }
 
-FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes) {
+FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes, FactorOrdering ordering) {
   constexpr double kBytesPerLowerEntry = 2.0 * (sizeof(int32_t) + sizeof(double));
-  return PlanFactors(a, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry));
+  return PlanFactors(a, static_cast<int64_t>(budget_bytes / kBytesPerLowerEntry), ordering);
 }
 
 namespace {
-
-// Keeps the nonzero values of rows r = [begin[r], end[r]) of (col, value), packed in place.
-void DropZeros(std::vector<int64_t>& begin, const std::vector<int64_t>& end,
-               std::vector<int32_t>& col, std::vector<double>& value) {
-  int64_t out = 0;
-  for (size_t r = 0; r < end.size(); ++r) {
-    const int64_t from = begin[r];
-    begin[r] = out;
-    for (int64_t e = from; e < end[r]; ++e) {
-      if (value[e] == 0.0) continue;
-      col[out] = col[e];
-      value[out++] = value[e];
-    }
-  }
-  begin.back() = out;
-  col.resize(out);
-  value.resize(out);
-}
 
 // Elimination tree and counts of the factors of `plan.order`, complete = false once they
 // pass max_lower_entries.
@@ -481,81 +463,75 @@ Status MMatrixLu::Factorize(const LeakySystem& a, FactorPlan plan, const StopChe
   const std::vector<int32_t>& adj = plan.pattern;
   order_ = std::move(plan.order);
   const std::vector<int32_t>& position = plan.position;
-  // The patterns first. Row k of L holds the columns RowSubtree(k) meets, in increasing
-  // order; U has the transposed pattern (that of A + A^T is symmetric), so row i of U holds
-  // the k whose L row holds i, met in increasing order as k runs up.
   l_begin_.assign(static_cast<size_t>(n) + 1, 0);
   u_begin_.assign(static_cast<size_t>(n) + 1, 0);
   l_col_.clear();
+  l_value_.clear();
+  u_col_.clear();
+  u_value_.clear();
   l_col_.reserve(plan.lower_entries);
-  {
-    std::vector<int32_t> mark(n, -1);
-    for (int32_t k = 0; k < n; ++k) {
-      if (k % kPollRows == 0) MDP_RETURN_IF_ERROR(stop.Poll());
-      const auto row_begin = static_cast<std::ptrdiff_t>(l_col_.size());
-      RowSubtree(k, order_, position, begin, adj, plan.parent, mark, [&](int32_t r) {
-        l_col_.push_back(r);
-        ++u_begin_[r + 1];
-      });
-      std::sort(l_col_.begin() + row_begin, l_col_.end());
-      l_begin_[k + 1] = static_cast<int64_t>(l_col_.size());
-    }
-  }
-  for (int32_t i = 0; i < n; ++i) u_begin_[i + 1] += u_begin_[i];
-  u_col_.resize(l_col_.size());
-  {
-    std::vector<int64_t> fill(u_begin_.begin(), u_begin_.end() - 1);
-    for (int32_t k = 0; k < n; ++k) {
-      for (int64_t e = l_begin_[k]; e < l_begin_[k + 1]; ++e) u_col_[fill[l_col_[e]]++] = k;
-    }
-  }
-  l_value_.assign(l_col_.size(), 0.0);
-  u_value_.assign(u_col_.size(), 0.0);
+  l_value_.reserve(plan.lower_entries);
+  u_col_.reserve(plan.lower_entries);
+  u_value_.reserve(plan.lower_entries);
   pivot_.assign(n, 0.0);
   // schur_leak[k]: the row sum of the Schur complement row that row k's U row is, which is
   // leak(k) plus the leak it inherits through L; every term is >= 0.
   std::vector<double> schur_leak(n, 0.0);
-  std::vector<double> w(n, 0.0);  // Row k of the partly eliminated matrix, scattered.
-  std::vector<int64_t> u_end(n);  // Row k of U: its nonzeros are [u_begin_[k], u_end[k]).
+  std::vector<double> w(n, 0.0);        // Row k of the partly eliminated matrix, scattered.
+  std::vector<int32_t> mark(n, -1);     // Row pattern walk.
+  std::vector<int32_t> touched(n, -1);  // == k iff column j of row k has been seen.
+  std::vector<int32_t> lower;
+  std::vector<int32_t> upper(static_cast<size_t>(n) + 1);  // Columns j > k seen in row k.
   for (int32_t k = 0; k < n; ++k) {
     if (k % kPollRows == 0) MDP_RETURN_IF_ERROR(stop.Poll());
     const int32_t row = order_[k];
+    lower.clear();
+    int64_t uppers = 0;
+    RowSubtree(k, order_, position, begin, adj, plan.parent, mark,
+               [&](int32_t r) { lower.push_back(r); });
+    std::sort(lower.begin(), lower.end());
+    // Columns j > k are collected without a branch on data (j > k and first sight vary
+    // unpredictably along a row): each j is written, and kept by advancing the count.
     for (int64_t e = a.row_begin[row]; e < a.row_begin[row + 1]; ++e) {
-      w[position[a.col[e]]] = -a.weight[e];
+      const int32_t j = position[a.col[e]];
+      w[j] = -a.weight[e];
+      upper[uppers] = j;
+      uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(touched[j] != k);
+      touched[j] = k;
     }
     // Row-oriented elimination (the i-k-j form of Gaussian elimination), in increasing order
     // of the pivots used. Off-diagonal entries only ever receive l * u >= 0 subtracted from
     // values <= 0: no cancellation. The diagonal, where cancellation would be, is not
     // updated; it is recovered from the row sum below.
     double leak = a.leak[row];
-    for (int64_t f = l_begin_[k]; f < l_begin_[k + 1]; ++f) {
-      const int32_t i = l_col_[f];
+    for (const int32_t i : lower) {
       const double wi = w[i];
       if (wi == 0.0) continue;
       w[i] = 0.0;
       const double l = wi / pivot_[i];
-      l_value_[f] = l;
+      l_col_.push_back(i);
+      l_value_.push_back(l);
       leak -= l * schur_leak[i];
-      for (int64_t e = u_begin_[i]; e < u_end[i]; ++e) {
-        w[u_col_[e]] -= l * u_value_[e];  // Into w[k] too, which is discarded.
+      for (int64_t e = u_begin_[i]; e < u_begin_[i + 1]; ++e) {
+        const int32_t j = u_col_[e];
+        w[j] -= l * u_value_[e];  // Into w[k] too, which is discarded.
+        upper[uppers] = j;
+        uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(touched[j] != k);
+        touched[j] = k;
       }
     }
     w[k] = 0.0;
-    // U(k, k) = schur_leak(k) - sum_{j > k} U(k, j): a sum of terms >= 0 (GTH). The row's
-    // nonzeros move to the front of its slots (the pattern of A + A^T overstates A's fill
-    // where the chain moves one way only), so later rows skip the zeros.
+    // U(k, k) = schur_leak(k) - sum_{j > k} U(k, j): a sum of terms >= 0 (GTH).
     double diagonal = leak;
-    int64_t kept = u_begin_[k];
-    for (int64_t e = u_begin_[k]; e < u_begin_[k + 1]; ++e) {
-      const int32_t j = u_col_[e];
+    for (int64_t q = 0; q < uppers; ++q) {
+      const int32_t j = upper[q];
       const double v = w[j];
       w[j] = 0.0;
       if (v == 0.0) continue;
-      u_col_[kept] = j;
-      u_value_[kept++] = v;
+      u_col_.push_back(j);
+      u_value_.push_back(v);
       diagonal -= v;
     }
-    u_end[k] = kept;
     if (!(diagonal > 0.0) || !std::isfinite(diagonal)) {
       // The unknowns eliminated into this row do not leak, in floating point at least (a
       // leak below the smallest double, or none at all).
@@ -564,11 +540,9 @@ Status MMatrixLu::Factorize(const LeakySystem& a, FactorPlan plan, const StopChe
     }
     schur_leak[k] = leak;
     pivot_[k] = diagonal;
+    l_begin_[k + 1] = static_cast<int64_t>(l_col_.size());
+    u_begin_[k + 1] = static_cast<int64_t>(u_col_.size());
   }
-  // The solves skip the entries that stayed 0 too.
-  std::vector<int64_t> l_end(l_begin_.begin() + 1, l_begin_.end());
-  DropZeros(l_begin_, l_end, l_col_, l_value_);
-  DropZeros(u_begin_, u_end, u_col_, u_value_);
   return Status::Ok();
 }
 

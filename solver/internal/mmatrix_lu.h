@@ -73,7 +73,8 @@ FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries,
                        FactorOrdering ordering = FactorOrdering::kAutomatic);
 // PlanFactors counting no further than `budget_bytes` of factors allow (each entry of L and
 // of U holds an index and a value, FactorPlan::bytes).
-FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes);
+FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes,
+                      FactorOrdering ordering = FactorOrdering::kAutomatic);
 
 class MMatrixLu {
  public:

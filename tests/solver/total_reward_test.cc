@@ -1009,7 +1009,7 @@ TEST(TotalRewardLargeTest, PolicySolvesAgreeWithSparseLu) {
     bool factored;  // Expected.
   };
   for (const Case& c : {Case{&chain, 1e8, false, true}, Case{&chain, 0, false, false},
-                        Case{&chain, 0, true, false}, Case{&exits, 1e7, false, false},
+                        Case{&chain, 0, true, false}, Case{&exits, 1e8, false, false},
                         Case{&exits, 1e10, false, true}, Case{&exits, 0, true, false}}) {
     SCOPED_TRACE(c.model->name() + " factor work " + std::to_string(c.factor_work) +
                  (c.sweeps_only ? " sweeps" : ""));
