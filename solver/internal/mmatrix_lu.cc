@@ -432,11 +432,9 @@ FactorPlan PlanFactors(const LeakySystem& a, int64_t max_lower_entries, FactorOr
     // A band of up to kBandWork work per unknown (128 entries per column, a ring's band
     // is a few dozen) is kept without trying the other order.
     constexpr double kBandWork = 128.0 * 128.0;
-    if (ordering == FactorOrdering::kCuthillMcKee ||
-        (plan.complete && plan.multiply_adds <= kBandWork * n)) {
-      return plan;
-    }
+    if (plan.complete && plan.multiply_adds <= kBandWork * n) return plan;
   }
+  if (ordering == FactorOrdering::kCuthillMcKee) return plan;
   const auto max_separator =
       static_cast<int64_t>(std::sqrt(2.0 * static_cast<double>(max_lower_entries)));
   if (ordering == FactorOrdering::kAutomatic && wide(std::max<int64_t>(16, max_separator))) {

@@ -425,6 +425,11 @@ TEST(MMatrixLuTest, PlanGivesUpOnAnExpanderAndCountsABand) {
     random.row_begin.push_back(static_cast<int64_t>(random.col.size()));
   }
   EXPECT_FALSE(PlanFactors(random, 10 * random.entries()).complete);
+  // Asked for a band only, it never goes on to dissect (a wide layer ends the plan).
+  const FactorPlan band_only =
+      PlanFactors(random, 10 * random.entries(), FactorOrdering::kCuthillMcKee);
+  EXPECT_FALSE(band_only.complete);
+  EXPECT_NE(band_only.ordering, FactorOrdering::kDissection);
   // A path with reach 1 (tridiagonal): L has exactly one entry below the diagonal per row
   // after the first, whatever the order keeps it a band.
   LeakySystem path;
