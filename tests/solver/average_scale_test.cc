@@ -173,6 +173,20 @@ double EquationResidual(const Model& m, const std::vector<RowId>& rows,
 // ---------------------------------------------------------------------------------------
 // MMatrixLu.
 
+// Appends a row of weights (unknown, weight), leak and self-loop weight, all divided by
+// their sum (so the row is a probability distribution).
+void AppendRow(const std::vector<std::pair<int32_t, double>>& row, double leak, double self,
+               LeakySystem& a) {
+  double total = leak + self;
+  for (const auto& e : row) total += e.second;
+  for (const auto& e : row) {
+    a.col.push_back(e.first);
+    a.weight.push_back(e.second / total);
+  }
+  a.leak.push_back(leak / total);
+  a.row_begin.push_back(static_cast<int64_t>(a.col.size()));
+}
+
 // I - Q restricted to the unknowns of a random sparse substochastic matrix: each row has
 // an entry to the unknown before it (so every row reaches row 0, which leaks) and a few
 // random ones; some rows leak too.
@@ -190,16 +204,9 @@ LeakySystem RandomLeakySystem(uint64_t seed, int32_t n) {
         row.emplace_back(j, unit(rng));
       }
     }
-    double leak = i == 0 || rng() % 5 == 0 ? 0.01 + unit(rng) : 0.0;
+    const double leak = i == 0 || rng() % 5 == 0 ? 0.01 + unit(rng) : 0.0;
     const double self = unit(rng);  // A self-loop: neither an entry nor leak.
-    double total = leak + self;
-    for (auto& e : row) total += e.second;
-    for (auto& e : row) {
-      a.col.push_back(e.first);
-      a.weight.push_back(e.second / total);
-    }
-    a.leak.push_back(leak / total);
-    a.row_begin.push_back(static_cast<int64_t>(a.col.size()));
+    AppendRow(row, leak, self, a);
   }
   return a;
 }
@@ -242,14 +249,7 @@ LeakySystem GridLeakySystem(uint64_t seed, int32_t side) {
           }
         }
       }
-      double total = leak + unit(rng);  // The rest stays put.
-      for (auto& e : row) total += e.second;
-      for (auto& e : row) {
-        a.col.push_back(e.first);
-        a.weight.push_back(e.second / total);
-      }
-      a.leak.push_back(leak / total);
-      a.row_begin.push_back(static_cast<int64_t>(a.col.size()));
+      AppendRow(row, leak, unit(rng), a);  // The rest stays put.
     }
   }
   return a;
