@@ -2,6 +2,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <span>
 #include <utility>
 
 namespace mdp::internal {
@@ -49,6 +50,30 @@ void SymmetricPattern(const LeakySystem& a, std::vector<int64_t>& begin,
   begin[n] = out;
   adj.resize(out);
   adj.shrink_to_fit();
+}
+
+// An unknown of near-greatest eccentricity around `root` (George and Liu 1981, from
+// memory): search from it, move to a least-degree unknown of the search's last layer, and
+// repeat while the search gets deeper, at most `rounds` times. `search(x)` searches from x
+// and returns its depth and its last layer (a span that stays valid until the next search).
+template <typename Search>
+int32_t PseudoPeripheral(const std::vector<int64_t>& begin, int32_t root, int rounds,
+                         Search search) {
+  auto degree = [&begin](int32_t v) { return begin[v + 1] - begin[v]; };
+  int32_t x = root;
+  int32_t depth = -1;
+  for (int round = 0; round < rounds; ++round) {
+    const auto [d, last] = search(x);
+    if (d <= depth) break;
+    depth = d;
+    int32_t best = last.front();
+    for (const int32_t v : last) {
+      if (degree(v) < degree(best)) best = v;
+    }
+    if (best == x) break;
+    x = best;
+  }
+  return x;
 }
 
 // Reverse Cuthill-McKee order (George and Liu 1981, Computer Solution of Large Sparse
@@ -122,23 +147,12 @@ class CuthillMcKee {
     }
   }
 
-  // An unknown of near-greatest eccentricity in the part of `root`: search, move to a
-  // least-degree unknown of the last layer, repeat while the depth grows (a few rounds).
+  // PseudoPeripheral above, in the part of `root`.
   int32_t PseudoPeripheral(int32_t root) {
-    int32_t x = root;
-    int32_t depth = -1;
-    for (int round = 0; round < 8; ++round) {
-      const int32_t d = Search(x);
-      if (d <= depth) break;
-      depth = d;
-      int32_t best = last_.front();
-      for (int32_t v : last_) {
-        if (Degree(v) < Degree(best)) best = v;
-      }
-      if (best == x) break;
-      x = best;
-    }
-    return x;
+    return mdp::internal::PseudoPeripheral(begin_, root, 8, [this](int32_t x) {
+      const int32_t depth = Search(x);
+      return std::pair{depth, std::span<const int32_t>(last_)};
+    });
   }
 
   const std::vector<int64_t>& begin_;
@@ -267,26 +281,16 @@ class Dissection {
     }
   }
 
-  // As CuthillMcKee::PseudoPeripheral, within part `label`.
+  // PseudoPeripheral above, within part `label`.
   int32_t PseudoPeripheral(int32_t root, int32_t label) {
-    int32_t x = root;
-    int32_t depth = -1;
-    for (int round = 0; round < 4; ++round) {
+    return mdp::internal::PseudoPeripheral(begin_, root, 4, [this, label](int32_t x) {
       Search(x, label);
-      const auto d = static_cast<int32_t>(layer_begin_.size()) - 1;
-      if (d <= depth) break;
-      depth = d;
-      int32_t best = queue_[layer_begin_[d - 1]];
-      for (int32_t q = layer_begin_[d - 1]; q < layer_begin_[d]; ++q) {
-        if (Degree(queue_[q]) < Degree(best)) best = queue_[q];
-      }
-      if (best == x) break;
-      x = best;
-    }
-    return x;
+      const auto depth = static_cast<int32_t>(layer_begin_.size()) - 1;
+      return std::pair{
+          depth, std::span<const int32_t>(queue_).subspan(layer_begin_[depth - 1],
+                                                          queue_.size() - layer_begin_[depth - 1])};
+    });
   }
-
-  int64_t Degree(int32_t v) const { return begin_[v + 1] - begin_[v]; }
 
   const std::vector<int64_t>& begin_;
   const std::vector<int32_t>& adj_;
