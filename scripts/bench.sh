@@ -161,7 +161,7 @@ if [[ ${BENCH_SKIP_CRITERIA:-0} != 1 ]]; then
     [[ $entry == *@* ]] && states=${entry#*@}
     for criterion in average total finite_horizon; do
       case $criterion in
-        average) extra=(--methods=policy_iteration,relative_value_iteration) ;;
+        average) extra=(--methods=auto,policy_iteration,relative_value_iteration) ;;
         total) extra=(--methods=policy_iteration --terminal-every=100 --objective=minimize
                       --reward-shift=1.5) ;;
         finite_horizon) extra=(--methods=backward_induction --horizon=100) ;;

@@ -976,6 +976,25 @@ Result<AverageRewardSolution> PolicyIterationT(const Model& m, const AverageRewa
   return out;
 }
 
+// `progress` (may be null or empty) for a run that continues another: the earlier run's
+// iterations, sweeps and seconds are added to every report. Empty when there is no one to
+// report to.
+ProgressFn Continued(const ProgressFn* progress, int64_t iterations, int64_t sweeps,
+                     double seconds) {
+  if (progress == nullptr || !*progress) return {};
+  return [progress, iterations, sweeps, seconds](const Progress& p) {
+    Progress total = p;
+    total.iteration += iterations;
+    total.sweeps += sweeps;
+    total.elapsed_seconds += seconds;
+    (*progress)(total);
+  };
+}
+
+double SecondsSince(std::chrono::steady_clock::time_point start) {
+  return std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+}
+
 // Policy iteration from the policy greedy on rewards and, when that run stalls (or cannot
 // evaluate its first policy), once more from the discounted warm start (DiscountedWarmStart),
 // within what is left of the time and iteration limits. The warm start comes second
@@ -996,8 +1015,7 @@ Result<AverageRewardSolution> PolicyIterationWithRestart(const Model& m,
                                   : first.status().code() == StatusCode::kInternal;
   if (!stalled) return first;
   AverageRewardOptions rest = options;
-  const double elapsed =
-      std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  const double elapsed = SecondsSince(start);
   if (options.time_limit_seconds > 0.0) {
     rest.time_limit_seconds = options.time_limit_seconds - elapsed;
     if (rest.time_limit_seconds <= 0.0) return first;
@@ -1007,20 +1025,11 @@ Result<AverageRewardSolution> PolicyIterationWithRestart(const Model& m,
     if (rest.max_iterations < 1) return first;
   }
   // The second run's progress continues the first's counts and clock.
-  const int64_t done_iterations = first.ok() ? first->iterations : 0;
-  const int64_t done_sweeps = first.ok() ? first->sweeps : 0;
-  const ProgressFn continued = [&](const Progress& p) {
-    Progress total = p;
-    total.iteration += done_iterations;
-    total.sweeps += done_sweeps;
-    total.elapsed_seconds += elapsed;
-    (*progress)(total);
-  };
-  const bool reports = progress != nullptr && *progress;
+  const ProgressFn continued = Continued(progress, first.ok() ? first->iterations : 0,
+                                         first.ok() ? first->sweeps : 0, elapsed);
   Result<AverageRewardSolution> second =
-      PolicyIterationT<kMaximize>(m, rest, reports ? &continued : nullptr, cancel, true);
-  const double seconds =
-      std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+      PolicyIterationT<kMaximize>(m, rest, continued ? &continued : nullptr, cancel, true);
+  const double seconds = SecondsSince(start);
   if (!second.ok()) {
     // The first run stands, with the time both took (the second's counts died with it).
     if (!first.ok()) return second;
@@ -1044,11 +1053,29 @@ Result<AverageRewardSolution> PolicyIterationWithRestart(const Model& m,
   return second;
 }
 
+// Whether relative value iteration, run as the prelude of AutomaticT, should hand over to
+// policy iteration after `k` sweeps with bracket width `width`: at k = 16, 32, 64, ... it goes
+// on only if the width's decay over the last k / 2 sweeps, kept up at the same rate, reaches
+// `aim` within `budget` sweeps in all; it hands over at `budget` sweeps in any case.
+// `width_at_half` carries the width at the last power of two from call to call.
+bool PreludeHandsOver(int64_t k, double width, double aim, int64_t budget, double& width_at_half) {
+  if (k >= budget) return true;
+  if (k < 8 || (k & (k - 1)) != 0) return false;
+  const double before = width_at_half;
+  width_at_half = width;
+  if (k < 16) return false;
+  if (!(width < before)) return true;
+  const double rate = std::log(before / width) / static_cast<double>(k / 2);
+  return static_cast<double>(k) + std::log(width / aim) / rate > static_cast<double>(budget);
+}
+
+// Relative value iteration (RelativeValueIteration). With prelude_budget > 0 it is
+// AutomaticT's prelude: when PreludeHandsOver says so it stops and sets *handed_over, and the
+// solution returned holds only its counts (iterations, sweeps, solve_seconds).
 template <bool kMaximize>
-Result<AverageRewardSolution> RelativeValueIterationT(const Model& m,
-                                                      const AverageRewardOptions& options,
-                                                      const ProgressFn* progress,
-                                                      const CancelToken* cancel) {
+Result<AverageRewardSolution> RelativeValueIterationT(
+    const Model& m, const AverageRewardOptions& options, const ProgressFn* progress,
+    const CancelToken* cancel, int64_t prelude_budget = 0, bool* handed_over = nullptr) {
   const SolveOptions limits = RunLimits(options);
   internal::RunControl control(limits, progress, cancel);
   const int threads = internal::ThreadCount(options.threads);
@@ -1061,6 +1088,7 @@ Result<AverageRewardSolution> RelativeValueIterationT(const Model& m,
   out.method = AverageRewardMethod::kRelativeValueIteration;
   out.options = options;
   GainEvidence evidence(m);
+  double prelude_width = kInf;  // PreludeHandsOver's width at the last power of two.
   std::vector<double> v(n, 0.0);
   std::vector<double> d(n, 0.0);
   std::vector<RowId> rows(n, -1);
@@ -1090,6 +1118,13 @@ Result<AverageRewardSolution> RelativeValueIterationT(const Model& m,
         return FailedPreconditionError(*message);
       }
     }
+    if (prelude_budget > 0 &&
+        PreludeHandsOver(out.iterations, bracket.width(), 0.5 * options.tolerance, prelude_budget,
+                         prelude_width)) {
+      *handed_over = true;
+      out.solve_seconds = control.elapsed_seconds();
+      return out;
+    }
     stop =
         control.After(out.iterations, out.sweeps, bracket.width(), 0.5 * bracket.width(), "sweep");
     if (stop) break;
@@ -1113,6 +1148,60 @@ Result<AverageRewardSolution> RelativeValueIterationT(const Model& m,
   Finish(m, std::move(v), options, out);
   out.solve_seconds = control.elapsed_seconds();
   return out;
+}
+
+// The method `auto` (header, AverageRewardAutomatic).
+template <bool kMaximize>
+Result<AverageRewardSolution> AutomaticT(const Model& m, const AverageRewardOptions& options,
+                                         const ProgressFn* progress, const CancelToken* cancel) {
+  if (m.num_states() <= kAutomaticPreludeMinStates) {
+    return PolicyIterationWithRestart<kMaximize>(m, options, progress, cancel);
+  }
+  const auto start = std::chrono::steady_clock::now();
+  // The prelude's sweeps, also when it ends in an error (evidence of differing gains).
+  int64_t prelude_sweeps = 0;
+  const ProgressFn counting = [&](const Progress& p) {
+    prelude_sweeps = p.sweeps;
+    if (progress != nullptr && *progress) (*progress)(p);
+  };
+  bool handed_over = false;
+  Result<AverageRewardSolution> first = RelativeValueIterationT<kMaximize>(
+      m, options, &counting, cancel, kAutomaticPreludeSweeps, &handed_over);
+  if (first.ok()) {
+    prelude_sweeps = first->sweeps;
+    // Converged, or stopped by the caller's limits: relative value iteration's answer stands.
+    if (!handed_over && first->outcome != SolveOutcome::kStalled &&
+        first->outcome != SolveOutcome::kIterationLimit) {
+      return first;
+    }
+  } else if (first.status().code() != StatusCode::kFailedPrecondition) {
+    return first;  // Not evidence of differing gains, which policy iteration handles.
+  }
+  AverageRewardOptions rest = options;
+  const double elapsed = SecondsSince(start);
+  if (options.time_limit_seconds > 0.0) {
+    rest.time_limit_seconds = std::max(options.time_limit_seconds - elapsed, 1e-9);
+  }
+  const ProgressFn continued = Continued(progress, 0, prelude_sweeps, elapsed);
+  Result<AverageRewardSolution> second =
+      PolicyIterationWithRestart<kMaximize>(m, rest, continued ? &continued : nullptr, cancel);
+  const double seconds = SecondsSince(start);
+  // A full answer of the prelude (it stalled or met the iteration cap) stands if policy
+  // iteration failed or certified a wider bracket without converging.
+  const bool prelude_answer = first.ok() && !handed_over;
+  if (prelude_answer &&
+      (!second.ok() ||
+       (second->outcome != SolveOutcome::kConverged && !second->multichain_gain &&
+        second->gain_upper - second->gain_lower > first->gain_upper - first->gain_lower))) {
+    first->sweeps += second.ok() ? second->sweeps : 0;
+    first->solve_seconds = seconds;
+    return first;
+  }
+  if (!second.ok()) return second;
+  second->options = options;
+  second->sweeps += prelude_sweeps;
+  second->solve_seconds = seconds;
+  return second;
 }
 
 }  // namespace
@@ -1166,6 +1255,19 @@ Result<AverageRewardSolution> RelativeValueIteration(const Model& m,
                : RelativeValueIterationT<false>(m, options, progress, cancel);
   } catch (const std::bad_alloc&) {
     return ResourceExhaustedError("out of memory during relative value iteration");
+  }
+}
+
+Result<AverageRewardSolution> AverageRewardAutomatic(const Model& m,
+                                                     const AverageRewardOptions& options,
+                                                     const ProgressFn* progress,
+                                                     const CancelToken* cancel) {
+  MDP_RETURN_IF_ERROR(CheckAverageRewardOptions(m, options));
+  try {
+    return m.objective() == Objective::kMaximize ? AutomaticT<true>(m, options, progress, cancel)
+                                                 : AutomaticT<false>(m, options, progress, cancel);
+  } catch (const std::bad_alloc&) {
+    return ResourceExhaustedError("out of memory while solving for the average criterion");
   }
 }
 

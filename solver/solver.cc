@@ -94,7 +94,9 @@ Result<Solution> SolveDiscountedRenumbered(const Model& m, SolveOptions options,
   return s;
 }
 
-Result<Solution> SolveAverage(const Model& m, const SolveOptions& options,
+// `automatic`: the caller asked for Method::kAuto (AverageRewardAutomatic); the solution's
+// method, and its options' method, then say which method answered.
+Result<Solution> SolveAverage(const Model& m, const SolveOptions& options, bool automatic,
                               const ProgressFn* progress, const CancelToken* cancel) {
   AverageRewardOptions o;
   o.tolerance = options.tolerance;
@@ -103,15 +105,19 @@ Result<Solution> SolveAverage(const Model& m, const SolveOptions& options,
   o.tie_tolerance = options.tie_tolerance;
   o.threads = options.threads;
   Result<AverageRewardSolution> r =
-      options.method == Method::kRelativeValueIteration
+      automatic ? AverageRewardAutomatic(m, o, progress, cancel)
+      : options.method == Method::kRelativeValueIteration
           ? RelativeValueIteration(m, o, progress, cancel)
           : AverageRewardPolicyIteration(m, o, progress, cancel);
   if (!r.ok()) return r.status();
   AverageRewardSolution& a = *r;
   Solution s;
   s.criterion = CriterionKind::kAverage;
-  s.method = options.method;
+  s.method = a.method == AverageRewardMethod::kRelativeValueIteration
+                 ? Method::kRelativeValueIteration
+                 : Method::kPolicyIteration;
   s.options = options;
+  s.options.method = s.method;
   s.outcome = a.outcome;
   s.iterations = a.iterations;
   s.sweeps = a.sweeps;
@@ -291,7 +297,8 @@ Result<Solution> Solve(const Model& m, const SolveOptions& requested, const Prog
     switch (kind) {
       case CriterionKind::kDiscounted:
         return SolveDiscountedRenumbered(m, options, progress, cancel);
-      case CriterionKind::kAverage: return SolveAverage(m, options, progress, cancel);
+      case CriterionKind::kAverage:
+        return SolveAverage(m, options, requested.method == Method::kAuto, progress, cancel);
       case CriterionKind::kFiniteHorizon:
         return SolveFiniteHorizon(m, options, progress, cancel);
       case CriterionKind::kTotal: return SolveTotal(m, options, progress, cancel);

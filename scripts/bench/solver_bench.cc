@@ -184,6 +184,7 @@ std::optional<std::vector<JsonObject>> RunSolves(const Model& m,
     }
     solves.push_back(JsonObject()
                          .Add("method", name)
+                         .Add("answered_by", MethodName(solution->method))
                          .Add("threads", internal::ThreadCount(threads))
                          .Add("outcome", SolveOutcomeName(solution->outcome))
                          .Add("iterations", solution->iterations)

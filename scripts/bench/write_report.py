@@ -467,7 +467,10 @@ def criteria_section(run):
                                      if m.get("terminal_every") else "")
             if m["criterion"] == "finite_horizon":
                 name += f", H = {m['horizon']}"
-            out.append(f"| {m['criterion']} | {name} | {m['states']:,} | {s['method']} "
+            method = s["method"]
+            if method == "auto" and s.get("answered_by"):
+                method = f"auto (answered by {s['answered_by']})"
+            out.append(f"| {m['criterion']} | {name} | {m['states']:,} | {method} "
                        f"| {s['threads']} | {s['outcome']} | {s['iterations']:,} "
                        f"| {s['sweeps']:,} | {secs(s['solve_seconds'])} | {bound} "
                        f"| {s['peak_rss_bytes'] / 2**20:,.0f} MiB |")
@@ -804,7 +807,10 @@ def report(run, mode, started, finished, solve_structure):
         "a goal, the generated rewards + 1.5 minimised as costs) and finite-horizon (100 periods) criteria, tolerance 1e-6, with a time limit "
         "per solve (BENCH_CRITERIA_TIME_LIMIT). An outcome other than converged means the "
         "limit was reached: the bound or bracket shown is what was certified by then. Peak "
-        "RSS is the bench process's high-water mark so far.",
+        "RSS is the bench process's high-water mark so far. Average-reward `auto` (the "
+        "default) runs relative value iteration first and hands over to policy iteration "
+        "when its bracket shrinks too slowly; the row says which method answered, and its "
+        "sweeps and time include the first run's.",
         "",
         criteria_section(run),
         "",

@@ -727,5 +727,160 @@ TEST(AverageScaleTest, PolicyIterationStopsInsideTheFirstEvaluation) {
   EXPECT_GE(s->gain_upper, full->gain_lower);
 }
 
+// ---------------------------------------------------------------------------------------
+// The method `auto` beyond the small solver (AverageRewardAutomatic).
+
+// Every row of every state, whatever the action, jumps to one of 8 hub states with the same
+// probabilities mu (the first 8 states, mu(k) = (k + 1) / 36). The next state never depends
+// on the action, so the chain's stationary law is mu under every policy, and the best
+// policy takes the larger reward in every state: g* = sum_k mu(k) max_a r(k, a). Rewards
+// r(s, a) = ((7 s + 3 a) mod 11) / 10 with actions a = 0, 1, 2.
+ModelSpec HubSpec(StateId states) {
+  ModelSpec spec;
+  spec.criterion.kind = CriterionKind::kAverage;
+  spec.criterion.discount = 1.0;
+  spec.action_names = {"a0", "a1", "a2"};
+  for (StateId s = 0; s < states; ++s) {
+    spec.AddState("s" + std::to_string(s));
+    for (int a = 0; a < 3; ++a) {
+      spec.AddStateAction(a, static_cast<double>((7 * s + 3 * a) % 11) / 10.0);
+      for (StateId k = 0; k < 8; ++k) spec.AddOutcome(k, static_cast<double>(k + 1) / 36.0);
+    }
+  }
+  return spec;
+}
+
+TEST(AverageAutomaticTest, ChainsThatMixFastAreAnsweredByRelativeValueIteration) {
+  // The closed form of HubSpec.
+  const Model hub = testing::MustBuild(HubSpec(4000));
+  double g_star = 0.0;
+  for (StateId k = 0; k < 8; ++k) {
+    double best = 0.0;
+    for (int a = 0; a < 3; ++a) best = std::max(best, static_cast<double>((7 * k + 3 * a) % 11));
+    g_star += static_cast<double>(k + 1) / 36.0 * best / 10.0;
+  }
+  SolveOptions o;
+  o.tolerance = 1e-9;
+  Result<Solution> s = Solve(hub, o);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->method, Method::kRelativeValueIteration);
+  EXPECT_EQ(s->options.method, Method::kRelativeValueIteration);
+  EXPECT_EQ(s->outcome, SolveOutcome::kConverged);
+  EXPECT_LE(s->average.gain_lower, g_star + 1e-12);
+  EXPECT_GE(s->average.gain_upper, g_star - 1e-12);
+  EXPECT_LE(s->average.gain_upper - s->average.gain_lower, o.tolerance);
+
+  // An expander: the bracket recomputed in long double from the returned bias is as narrow
+  // as asked, and policy iteration's gain, asked for by name, lies in it.
+  const Model m = testing::MustBuild(RandomNextSpec(5, 6000));
+  s = Solve(m, o);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->method, Method::kRelativeValueIteration);
+  EXPECT_EQ(s->outcome, SolveOutcome::kConverged);
+  EXPECT_LE(s->sweeps, 100);
+  const Bracket b = BracketAt(m, s->values);
+  EXPECT_LE(b.upper - b.lower, o.tolerance);
+  o.method = Method::kPolicyIteration;
+  Result<Solution> pi = Solve(m, o);
+  ASSERT_OK(pi);
+  EXPECT_EQ(pi->method, Method::kPolicyIteration);
+  EXPECT_GE(pi->average.gain, b.lower - 1e-12);
+  EXPECT_LE(pi->average.gain, b.upper + 1e-12);
+
+  // Up to 3,000 states policy iteration answers (its evaluations are small exact solves).
+  o.method = Method::kAuto;
+  s = Solve(testing::MustBuild(RandomNextSpec(5, kAutomaticPreludeMinStates)), o);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->method, Method::kPolicyIteration);
+}
+
+TEST(AverageAutomaticTest, ASlowlyMixingRingIsHandedToPolicyIteration) {
+  const Model m = testing::MustBuild(LocalRingSpec(8, 6000, 4, 8, 16));
+  Result<AverageRewardSolution> pi =
+      AverageRewardPolicyIteration(m, AverageRewardOptions(), nullptr, nullptr);
+  ASSERT_OK(pi);
+  std::vector<Progress> reports;
+  const ProgressFn progress = [&](const Progress& p) { reports.push_back(p); };
+  Result<AverageRewardSolution> s =
+      AverageRewardAutomatic(m, AverageRewardOptions(), &progress, nullptr);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->method, AverageRewardMethod::kPolicyIteration);
+  EXPECT_EQ(s->outcome, SolveOutcome::kConverged);
+  EXPECT_EQ(s->iterations, pi->iterations);
+  EXPECT_NEAR(s->gain, pi->gain, 1e-9);
+  const Bracket b = BracketAt(m, s->bias);
+  EXPECT_LE(b.upper - b.lower, AverageRewardOptions().tolerance);
+  // The prelude's sweeps count too, and it gave up long before its budget: the ring's
+  // bracket shrinks slowly from the start.
+  EXPECT_GT(s->sweeps, pi->sweeps);
+  EXPECT_LE(s->sweeps, pi->sweeps + 64);
+  // One progress stream: relative value iteration's sweeps, then policy iteration's
+  // improvements continuing the count.
+  ASSERT_FALSE(reports.empty());
+  EXPECT_EQ(reports.front().phase, "sweep");
+  EXPECT_EQ(reports.back().phase, "improve");
+  for (size_t i = 1; i < reports.size(); ++i) {
+    EXPECT_GE(reports[i].sweeps, reports[i - 1].sweeps) << "report " << i;
+    EXPECT_GE(reports[i].elapsed_seconds, reports[i - 1].elapsed_seconds) << "report " << i;
+  }
+  EXPECT_LE(reports.back().sweeps, s->sweeps);
+
+  // A time limit that ends the prelude: its bracket, which holds the optimum.
+  AverageRewardOptions limited;
+  limited.time_limit_seconds = 1e-9;
+  s = AverageRewardAutomatic(m, limited, nullptr, nullptr);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->outcome, SolveOutcome::kTimeLimit);
+  EXPECT_LE(s->gain_lower, pi->gain_upper);
+  EXPECT_GE(s->gain_upper, pi->gain_lower);
+}
+
+// Two expanders side by side, no transition between them, the second's rewards 1 higher:
+// the optimal gain differs between the halves. The prelude cannot narrow its bracket below
+// that difference; policy iteration answers with a gain per state. Each half is a model of
+// its own, so its gains lie in the bracket of its own states (recomputed in long double).
+TEST(AverageAutomaticTest, GainsThatDifferBetweenStatesAreLeftToPolicyIteration) {
+  const StateId half = 3500;
+  ModelSpec spec = RandomNextSpec(9, 2 * half);
+  for (StateId s = 0; s < 2 * half; ++s) {
+    for (SlotId slot = spec.state_first_slot[s]; slot < spec.state_first_slot[s + 1]; ++slot) {
+      if (s >= half) spec.slot_reward[slot] += 1.0;
+      for (OutcomeId e = spec.slot_first_outcome[slot]; e < spec.slot_first_outcome[slot + 1];
+           ++e) {
+        spec.outcome_next[e] = spec.outcome_next[e] % half + (s >= half ? half : 0);
+      }
+    }
+  }
+  const Model m = testing::MustBuild(spec);
+  SolveOptions o;
+  Result<Solution> s = Solve(m, o);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->method, Method::kPolicyIteration);
+  EXPECT_EQ(s->outcome, SolveOutcome::kConverged);
+  ASSERT_EQ(s->average.state_gain.size(), 2u * half);
+  for (int part = 0; part < 2; ++part) {
+    long double lower = INFINITY, upper = -INFINITY;
+    for (StateId st = part * half; st < (part + 1) * half; ++st) {
+      long double best = -INFINITY;
+      for (RowId r = m.row_begin(st); r < m.row_end(st); ++r) {
+        long double q = m.row_reward(r);
+        for (int64_t e = m.entry_begin(r); e < m.entry_end(r); ++e) {
+          q += static_cast<long double>(m.entry_probability(e)) * s->values[m.entry_next(e)];
+        }
+        best = std::max(best, q);
+      }
+      lower = std::min(lower, best - s->values[st]);
+      upper = std::max(upper, best - s->values[st]);
+    }
+    SCOPED_TRACE("half " + std::to_string(part));
+    EXPECT_LE(upper - lower, 1e-7);
+    for (StateId st = part * half; st < (part + 1) * half; ++st) {
+      EXPECT_GE(s->average.state_gain[st], static_cast<double>(lower) - 1e-9);
+      EXPECT_LE(s->average.state_gain[st], static_cast<double>(upper) + 1e-9);
+    }
+  }
+  EXPECT_GT(s->average.state_gain[half] - s->average.state_gain[0], 0.5);
+}
+
 }  // namespace
 }  // namespace mdp
