@@ -98,6 +98,12 @@ class MMatrixLu {
   int64_t upper_entries() const { return static_cast<int64_t>(u_col_.size()); }
 
  private:
+  // Factorize's two kernels (see there): the rows' patterns found during the elimination, or
+  // all of them first. Both start from order_ set and the other members cleared.
+  Status FactorizeByRows(const LeakySystem& a, const FactorPlan& plan, const StopCheck& stop);
+  Status FactorizeByPattern(const LeakySystem& a, const FactorPlan& plan, const StopCheck& stop);
+  Status SetPivot(int32_t k, double leak, double diagonal, std::vector<double>& schur_leak);
+
   std::vector<int32_t> order_;    // As FactorPlan::order.
   std::vector<int64_t> l_begin_;  // L by rows (unit diagonal not stored), by position.
   std::vector<int32_t> l_col_;
