@@ -115,14 +115,24 @@ struct SolveContext {
   // planning costs a few passes over the system).
   int32_t declined_before = std::numeric_limits<int32_t>::max();
   int32_t declined = std::numeric_limits<int32_t>::max();  // Smallest declined here.
+  // Systems of at least this many unknowns are factored whenever the factors fit the memory
+  // budget, whatever their work, without trying BiCGSTAB first: BiCGSTAB missed its target
+  // on one so large in an earlier evaluation, and factors had to take over (on a 250,000-cell
+  // grid each BiCGSTAB attempt took 20-45 s before it gave up; its factors take 3.3 s).
+  int32_t missed_before = std::numeric_limits<int32_t>::max();
+  int32_t missed = std::numeric_limits<int32_t>::max();  // Smallest missed here.
   AverageSolveCounts counts;
 
-  bool SkipPlan(int64_t size) const { return size >= declined_before; }
+  bool FactorFirst(int64_t size) const { return size >= missed_before; }
+  bool SkipPlan(int64_t size) const { return size >= declined_before && !FactorFirst(size); }
+  // BiCGSTAB missed on a system of `size` unknowns and its factors took over.
+  void Missed(int64_t size) { missed = std::min(missed, static_cast<int32_t>(size)); }
 };
 
 // Whether to factor `system` by `plan` rather than iterate; records a refusal.
 bool PreferFactors(const LeakySystem& system, const FactorPlan& plan, SolveContext& context) {
-  if (FactorsFit(plan, system.entries(), context.budget_bytes, true)) return true;
+  const bool mind_work = !context.FactorFirst(system.size);
+  if (FactorsFit(plan, system.entries(), context.budget_bytes, mind_work)) return true;
   context.declined = std::min(context.declined, system.size);
   return false;
 }
@@ -151,6 +161,7 @@ class SparseSolver {
     }
     if (leaky_ != nullptr && !context_.SkipPlan(leaky_->size)) {
       plan_ = PlanWithin(*leaky_, context_.budget_bytes);
+      planned_ = true;
       if (PreferFactors(*leaky_, plan_, context_)) return UseFactors();
     }
     ++context_.counts.iterative;
@@ -160,12 +171,14 @@ class SparseSolver {
   }
 
   // Switches this and later solves to factors if they fit the memory budget (else stays
-  // iterative). No-op if already direct.
+  // iterative), planning them first if Prepare did not. No-op if already direct.
   Status UseDirect() {
-    if (kind_ != AverageSolver::kIterative) return Status::Ok();
-    if (leaky_ != nullptr && FactorsFit(plan_, leaky_->entries(), context_.budget_bytes, false)) {
-      return UseFactors();
+    if (kind_ != AverageSolver::kIterative || leaky_ == nullptr) return Status::Ok();
+    if (!planned_) {
+      plan_ = PlanWithin(*leaky_, context_.budget_bytes);
+      planned_ = true;
     }
+    if (FactorsFit(plan_, leaky_->entries(), context_.budget_bytes, false)) return UseFactors();
     return Status::Ok();
   }
 
@@ -181,6 +194,7 @@ class SparseSolver {
       // of states that each step one state on.
       MDP_RETURN_IF_ERROR(UseDirect());
       if (kind_ == AverageSolver::kIterative) return Status::Ok();  // x: its best, reported.
+      context_.Missed(leaky_->size);
     }
     if (kind_ == AverageSolver::kSmallLu) {
       x = lu_.solve(b);
@@ -282,6 +296,7 @@ class SparseSolver {
   AverageSolver kind_ = AverageSolver::kSmallLu;
   bool reached_ = true;
   FactorPlan plan_;
+  bool planned_ = false;  // plan_ was made for leaky_.
   MMatrixLu factors_;
   Eigen::SparseLU<Eigen::SparseMatrix<double>> lu_;
   Eigen::BiCGSTAB<RowMajorMatrix, Eigen::DiagonalPreconditioner<double>> krylov_;
@@ -545,10 +560,12 @@ Status EvaluateClass(const Model& m, std::span<const RowId> rows, std::span<cons
   bool solved = false;
   LeakySystem system;
   FactorPlan plan;
+  bool planned = false;
   if (!small && !context.SkipPlan(size - 1)) {
     std::vector<StateId> states;
     system = ClassSystem(m, rows, cls, anchor, local, states);
     plan = PlanWithin(system, context.budget_bytes);  // The fill hardly depends on the anchor.
+    planned = true;
     if (PreferFactors(system, plan, context)) {
       const StateId start =
           previous_anchor >= 0 ? previous_anchor : CollectingState(m, rows, cls, local);
@@ -585,8 +602,14 @@ Status EvaluateClass(const Model& m, std::span<const RowId> rows, std::span<cons
       }
     }
     MDP_RETURN_IF_ERROR(solver.Solve(b, target, y));
+    if (!solver.reached() && !small && !planned) {
+      std::vector<StateId> states;
+      system = ClassSystem(m, rows, cls, anchor, local, states);
+      plan = PlanWithin(system, context.budget_bytes);
+    }
     if (!solver.reached() && !small &&
         FactorsFit(plan, system.entries(), context.budget_bytes, false)) {
+      context.Missed(size - 1);
       MDP_RETURN_IF_ERROR(EvaluateClassFactored(m, rows, cls, anchor, anchor, std::move(system),
                                                 std::move(plan), target, context, local, out,
                                                 class_gain));
@@ -762,7 +785,10 @@ Status EvaluateAverage(const Model& m, std::span<const RowId> rows, double targe
   SolveContext context;
   context.stop = stop;
   context.budget_bytes = FactorBudgetBytes(m);
-  if (!previous.gain.empty()) context.declined_before = previous.declined_factor_size;
+  if (!previous.gain.empty()) {
+    context.declined_before = previous.declined_factor_size;
+    context.missed_before = previous.missed_iterative_size;
+  }
   out.chain = AnalyseChain(m, rows);
   out.class_gain.assign(out.chain.classes.size(), 0.0);
   out.gain.assign(n, 0.0);
@@ -779,6 +805,7 @@ Status EvaluateAverage(const Model& m, std::span<const RowId> rows, double targe
   if (status.ok()) status = EvaluateTransient(m, rows, target, previous, context, local, out);
   if (counts != nullptr) *counts = context.counts;
   out.declined_factor_size = std::min(context.declined, context.declined_before);
+  out.missed_iterative_size = std::min(context.missed, context.missed_before);
   MDP_RETURN_IF_ERROR(status);
   // Every bound built on this evaluation takes minima and maxima over its values, which a
   // NaN would silently drop out of.

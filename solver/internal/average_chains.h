@@ -55,6 +55,12 @@ struct AverageEvaluation {
   // declined, else the largest int32_t. An evaluation given this one as `previous` solves
   // systems at least as large by BiCGSTAB without planning factors.
   int32_t declined_factor_size = std::numeric_limits<int32_t>::max();
+  // The fewest unknowns of a system on which BiCGSTAB missed its target in this evaluation
+  // (or one it followed) and factors took over, else the largest int32_t. An evaluation
+  // given this one as `previous` factors systems at least as large first whenever the
+  // factors fit the memory budget (whatever their work; planning them even where
+  // declined_factor_size says not to).
+  int32_t missed_iterative_size = std::numeric_limits<int32_t>::max();
 };
 
 // How a system of EvaluateAverage is solved.
@@ -76,7 +82,8 @@ struct AverageSolveCounts {
 // factors take at most FactorBudgetBytes(m) and at most kFactorWorkPerEntry multiply-adds
 // per entry of the system plus kFactorWorkFloor (about 500 BiCGSTAB iterations' work, which
 // a badly conditioned system easily needs). When BiCGSTAB then misses its target, the
-// factors are used if they fit the memory budget, whatever the work.
+// factors are used if they fit the memory budget, whatever the work, and from the next
+// evaluation on systems as large are factored first (AverageEvaluation::missed_iterative_size).
 inline constexpr double kFactorWorkPerEntry = 2000.0;
 inline constexpr double kFactorWorkFloor = 1e9;
 // Four times the bytes of the model's transitions (next state and probability per entry),

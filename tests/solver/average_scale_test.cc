@@ -482,20 +482,29 @@ TEST(AverageScaleTest, FactoredEvaluationMatchesEigenOnALocalRing) {
   }
 }
 
-// The birth-death chain of BirthDeathSpec with up = 0.99 on 4000 states: detailed balance
+// The birth-death chain of BirthDeathSpec with up = 0.99 on n states: detailed balance
 // pi(k + 1) / pi(k) = 0.99 / 0.01 = 99 puts almost all its mass at the top, and the chain
-// needs some 99^4000 steps to come down to state 0, so a solve pinned there could not even
-// represent its hitting times. The gain is sum_k pi(k) k / n, summed here from the top.
-TEST(AverageScaleTest, ClimbingChainGainFromDetailedBalance) {
-  const StateId n = 4000;
-  const Model m = testing::MustBuild(BirthDeathSpec(n, 0.99));
+// needs some 99^n steps to come down to state 0, so a solve pinned there could not even
+// represent its hitting times. The gain is sum_k pi(k) k / n, summed here from the top;
+// also pi(n - 1).
+struct ClimbingChain {
+  double gain = 0.0;
+  double top = 0.0;  // pi(n - 1).
+};
+ClimbingChain ClimbingChainLaw(StateId n) {
   long double weight = 1.0L, total = 0.0L, reward = 0.0L;
   for (StateId k = n - 1; k >= 0 && weight > 1e-40L; --k) {
     total += weight;
     reward += weight * static_cast<long double>(k) / n;
     weight /= 99.0L;
   }
-  const double gain = static_cast<double>(reward / total);
+  return {static_cast<double>(reward / total), static_cast<double>(1.0L / total)};
+}
+
+TEST(AverageScaleTest, ClimbingChainGainFromDetailedBalance) {
+  const StateId n = 4000;
+  const Model m = testing::MustBuild(BirthDeathSpec(n, 0.99));
+  const double gain = ClimbingChainLaw(n).gain;
   const std::vector<RowId> rows = FirstRows(m);
   AverageEvaluation eval;
   AverageSolveCounts counts;
@@ -503,7 +512,7 @@ TEST(AverageScaleTest, ClimbingChainGainFromDetailedBalance) {
   EXPECT_GE(counts.factored, 1);
   EXPECT_NEAR(eval.gain[0], gain, 1e-13);
   EXPECT_LE(eval.gain_error, 1e-10);
-  EXPECT_NEAR(eval.stationary[n - 1], static_cast<double>(1.0L / total), 1e-13);
+  EXPECT_NEAR(eval.stationary[n - 1], ClimbingChainLaw(n).top, 1e-13);
 
   // Policy iteration (one action: it only evaluates) certifies the same.
   Result<AverageRewardSolution> s =
@@ -513,6 +522,37 @@ TEST(AverageScaleTest, ClimbingChainGainFromDetailedBalance) {
   EXPECT_LE(s->gain_lower, gain);
   EXPECT_GE(s->gain_upper, gain);
   EXPECT_LE(s->gain_upper - s->gain_lower, AverageRewardOptions().tolerance);
+}
+
+// An evaluation told by the previous one to skip planning factors (declined_factor_size 0,
+// as after an expander) tries BiCGSTAB on the climbing chain, which misses: the factors are
+// planned then and give the closed-form gain, and the evaluation after it factors first,
+// without trying BiCGSTAB again.
+TEST(AverageScaleTest, AMissedIterativeSolveIsFactoredThenFactoredFirst) {
+  const StateId n = 4000;
+  const Model m = testing::MustBuild(BirthDeathSpec(n, 0.99));
+  const std::vector<RowId> rows = FirstRows(m);
+  AverageEvaluation declined;
+  declined.gain.assign(n, 0.0);
+  declined.bias.assign(n, 0.0);
+  declined.stationary.assign(n, 0.0);
+  declined.declined_factor_size = 0;
+  AverageEvaluation eval;
+  AverageSolveCounts counts;
+  ASSERT_OK(EvaluateAverage(m, rows, 1e-12, StopCheck{}, declined, eval, &counts));
+  EXPECT_GE(counts.iterative, 1);
+  EXPECT_GE(counts.factored, 1);
+  EXPECT_NEAR(eval.gain[0], ClimbingChainLaw(n).gain, 1e-13);
+  EXPECT_LE(eval.gain_error, 1e-10);
+  EXPECT_EQ(eval.missed_iterative_size, n - 1);  // The class without its anchor.
+  EXPECT_EQ(eval.declined_factor_size, 0);
+
+  AverageEvaluation next;
+  ASSERT_OK(EvaluateAverage(m, rows, 1e-12, StopCheck{}, eval, next, &counts));
+  EXPECT_EQ(counts.iterative, 0);
+  EXPECT_GE(counts.factored, 1);
+  EXPECT_NEAR(next.gain[0], ClimbingChainLaw(n).gain, 1e-13);
+  EXPECT_EQ(next.missed_iterative_size, n - 1);
 }
 
 // Two classes (the ring is cut into two closed arcs) and transient states between them,
