@@ -9,6 +9,8 @@
 #include <new>
 #include <optional>
 #include <sstream>
+#include <string_view>
+#include <type_traits>
 #include <unordered_set>
 #include <utility>
 
@@ -1244,45 +1246,48 @@ std::vector<std::vector<StateId>> RecurrentClasses(const Model& m, std::span<con
   return AnalyseChain(m, rows).classes;
 }
 
+namespace {
+
+// Checks the options, then calls run(std::true_type) when the model maximises and
+// run(std::false_type) when it minimises; running out of memory becomes kResourceExhausted.
+template <typename Run>
+Result<AverageRewardSolution> Dispatch(const Model& m, const AverageRewardOptions& options,
+                                       std::string_view what, const Run& run) {
+  MDP_RETURN_IF_ERROR(CheckAverageRewardOptions(m, options));
+  try {
+    return m.objective() == Objective::kMaximize ? run(std::true_type{}) : run(std::false_type{});
+  } catch (const std::bad_alloc&) {
+    return ResourceExhaustedError("out of memory during " + std::string(what));
+  }
+}
+
+}  // namespace
+
 Result<AverageRewardSolution> RelativeValueIteration(const Model& m,
                                                      const AverageRewardOptions& options,
                                                      const ProgressFn* progress,
                                                      const CancelToken* cancel) {
-  MDP_RETURN_IF_ERROR(CheckAverageRewardOptions(m, options));
-  try {
-    return m.objective() == Objective::kMaximize
-               ? RelativeValueIterationT<true>(m, options, progress, cancel)
-               : RelativeValueIterationT<false>(m, options, progress, cancel);
-  } catch (const std::bad_alloc&) {
-    return ResourceExhaustedError("out of memory during relative value iteration");
-  }
+  return Dispatch(m, options, "relative value iteration", [&](auto maximize) {
+    return RelativeValueIterationT<decltype(maximize)::value>(m, options, progress, cancel);
+  });
 }
 
 Result<AverageRewardSolution> AverageRewardAutomatic(const Model& m,
                                                      const AverageRewardOptions& options,
                                                      const ProgressFn* progress,
                                                      const CancelToken* cancel) {
-  MDP_RETURN_IF_ERROR(CheckAverageRewardOptions(m, options));
-  try {
-    return m.objective() == Objective::kMaximize ? AutomaticT<true>(m, options, progress, cancel)
-                                                 : AutomaticT<false>(m, options, progress, cancel);
-  } catch (const std::bad_alloc&) {
-    return ResourceExhaustedError("out of memory while solving for the average criterion");
-  }
+  return Dispatch(m, options, "the average-reward solve", [&](auto maximize) {
+    return AutomaticT<decltype(maximize)::value>(m, options, progress, cancel);
+  });
 }
 
 Result<AverageRewardSolution> AverageRewardPolicyIteration(const Model& m,
                                                            const AverageRewardOptions& options,
                                                            const ProgressFn* progress,
                                                            const CancelToken* cancel) {
-  MDP_RETURN_IF_ERROR(CheckAverageRewardOptions(m, options));
-  try {
-    return m.objective() == Objective::kMaximize
-               ? PolicyIterationWithRestart<true>(m, options, progress, cancel)
-               : PolicyIterationWithRestart<false>(m, options, progress, cancel);
-  } catch (const std::bad_alloc&) {
-    return ResourceExhaustedError("out of memory during average-reward policy iteration");
-  }
+  return Dispatch(m, options, "average-reward policy iteration", [&](auto maximize) {
+    return PolicyIterationWithRestart<decltype(maximize)::value>(m, options, progress, cancel);
+  });
 }
 
 }  // namespace mdp
