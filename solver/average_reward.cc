@@ -1073,7 +1073,8 @@ bool PreludeHandsOver(int64_t k, double width, double aim, int64_t budget, doubl
 
 // Relative value iteration (RelativeValueIteration). With prelude_budget > 0 it is
 // AutomaticT's prelude: when PreludeHandsOver says so it stops and sets *handed_over, and the
-// solution returned holds only its counts (iterations, sweeps, solve_seconds).
+// solution returned holds only its counts (iterations, sweeps, solve_seconds) and, in `bias`,
+// the values it reached (h = (1 - tau) v, 0 at the reference state), for Finish.
 template <bool kMaximize>
 Result<AverageRewardSolution> RelativeValueIterationT(
     const Model& m, const AverageRewardOptions& options, const ProgressFn* progress,
@@ -1124,6 +1125,8 @@ Result<AverageRewardSolution> RelativeValueIterationT(
         PreludeHandsOver(out.iterations, bracket.width(), 0.5 * options.tolerance, prelude_budget,
                          prelude_width)) {
       *handed_over = true;
+      for (double& x : v) x *= 1.0 - tau;
+      out.bias = std::move(v);
       out.solve_seconds = control.elapsed_seconds();
       return out;
     }
@@ -1187,18 +1190,27 @@ Result<AverageRewardSolution> AutomaticT(const Model& m, const AverageRewardOpti
   const ProgressFn continued = Continued(progress, 0, prelude_sweeps, elapsed);
   Result<AverageRewardSolution> second =
       PolicyIterationWithRestart<kMaximize>(m, rest, continued ? &continued : nullptr, cancel);
-  const double seconds = SecondsSince(start);
-  // A full answer of the prelude (it stalled or met the iteration cap) stands if policy
-  // iteration failed or certified a wider bracket without converging.
-  const bool prelude_answer = first.ok() && !handed_over;
-  if (prelude_answer &&
-      (!second.ok() ||
-       (second->outcome != SolveOutcome::kConverged && !second->multichain_gain &&
-        second->gain_upper - second->gain_lower > first->gain_upper - first->gain_lower))) {
-    first->sweeps += second.ok() ? second->sweeps : 0;
-    first->solve_seconds = seconds;
-    return first;
+  // The prelude's answer stands if policy iteration failed, or stopped short of converging
+  // (a limit, a cancel) with a wider bracket: a bracket holds every state's optimal gain
+  // whichever values gave it, also one of policy iteration's with gains per state. A
+  // prelude that handed over is made a solution only then (a pass over the model).
+  if (first.ok() && (!second.ok() || second->outcome != SolveOutcome::kConverged)) {
+    if (handed_over) {
+      first->outcome = SolveOutcome::kStalled;
+      Finish(m, std::move(first->bias), options, *first);
+      ++first->sweeps;
+    }
+    if (!second.ok() ||
+        second->gain_upper - second->gain_lower > first->gain_upper - first->gain_lower) {
+      if (second.ok() && first->outcome != SolveOutcome::kConverged) {
+        first->outcome = second->outcome;  // What ended the run.
+      }
+      first->sweeps += second.ok() ? second->sweeps : 0;
+      first->solve_seconds = SecondsSince(start);
+      return first;
+    }
   }
+  const double seconds = SecondsSince(start);
   if (!second.ok()) return second;
   second->options = options;
   second->sweeps += prelude_sweeps;

@@ -266,8 +266,9 @@ Result<AverageRewardSolution> AverageRewardPolicyIteration(const Model& m,
 // Otherwise (handed over, stalled, at options.max_iterations, or evidence that the gain
 // differs between states) AverageRewardPolicyIteration runs in what is left of the time
 // limit, with options.max_iterations improvements, and its solution is returned, its sweeps
-// and solve_seconds counting the prelude's too (a prelude that ended with a full solution
-// stands instead if policy iteration fails or stops early with a wider bracket).
+// and solve_seconds counting the prelude's too; but if policy iteration fails, or stops at a
+// limit or on cancel with a wider bracket than the prelude's values give, the prelude's
+// solution is returned (outcome: what stopped policy iteration).
 // `method` says which one answered. Relative value iteration converges in a few dozen sweeps
 // where chains mix fast (next states anywhere), and there policy iteration's evaluations are
 // long Krylov solves: on the benchmark's 1,000,000-state random model it converged in 3.5 s

@@ -875,6 +875,37 @@ TEST(AverageAutomaticTest, ASlowlyMixingRingIsHandedToPolicyIteration) {
   EXPECT_GE(s->gain_upper, pi->gain_lower);
 }
 
+// An iteration cap of 16 (relative value iteration's sweeps, then policy iteration's
+// improvements) on a ring of moves of at most 2 states: the prelude hands over at sweep 16,
+// before the cap, and policy iteration (270 improvements uncapped) stops at the cap. The
+// answer carries the narrower of the two runs' brackets, each exactly what a run of its own
+// with that cap reports (both are deterministic on one thread), and names the method that
+// gave it.
+TEST(AverageAutomaticTest, AnIterationCapKeepsTheNarrowerOfTheTwoBrackets) {
+  const Model m = testing::MustBuild(LocalRingSpec(8, 10000, 4, 8, 2));
+  AverageRewardOptions capped;
+  capped.max_iterations = 16;
+  Result<AverageRewardSolution> rvi = RelativeValueIteration(m, capped, nullptr, nullptr);
+  Result<AverageRewardSolution> pi = AverageRewardPolicyIteration(m, capped, nullptr, nullptr);
+  ASSERT_OK(rvi);
+  ASSERT_OK(pi);
+  ASSERT_EQ(rvi->outcome, SolveOutcome::kIterationLimit);
+  ASSERT_EQ(pi->outcome, SolveOutcome::kIterationLimit);
+  Result<AverageRewardSolution> s = AverageRewardAutomatic(m, capped, nullptr, nullptr);
+  ASSERT_OK(s);
+  EXPECT_EQ(s->outcome, SolveOutcome::kIterationLimit);
+  const double rvi_width = rvi->gain_upper - rvi->gain_lower;
+  const double pi_width = pi->gain_upper - pi->gain_lower;
+  EXPECT_EQ(s->gain_upper - s->gain_lower, std::min(rvi_width, pi_width))
+      << "relative value iteration " << rvi_width << ", policy iteration " << pi_width;
+  EXPECT_EQ(s->method, rvi_width <= pi_width ? AverageRewardMethod::kRelativeValueIteration
+                                             : AverageRewardMethod::kPolicyIteration);
+  // The recomputed bracket of the returned bias agrees.
+  const Bracket b = BracketAt(m, s->bias);
+  EXPECT_LE(s->gain_lower, b.lower + 1e-12);
+  EXPECT_GE(s->gain_upper, b.upper - 1e-12);
+}
+
 // Two expanders side by side, no transition between them, the second's rewards 1 higher:
 // the optimal gain differs between the halves. The prelude cannot narrow its bracket below
 // that difference; policy iteration answers with a gain per state. Each half is a model of
