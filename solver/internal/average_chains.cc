@@ -602,13 +602,13 @@ Status EvaluateClass(const Model& m, std::span<const RowId> rows, std::span<cons
       }
     }
     MDP_RETURN_IF_ERROR(solver.Solve(b, target, y));
-    if (!solver.reached() && !small && !planned) {
+    const bool missed = !solver.reached() && !small;
+    if (missed && !planned) {  // Planning was skipped (SolveContext::SkipPlan): plan now.
       std::vector<StateId> states;
       system = ClassSystem(m, rows, cls, anchor, local, states);
       plan = PlanWithin(system, context.budget_bytes);
     }
-    if (!solver.reached() && !small &&
-        FactorsFit(plan, system.entries(), context.budget_bytes, false)) {
+    if (missed && FactorsFit(plan, system.entries(), context.budget_bytes, false)) {
       context.Missed(size - 1);
       MDP_RETURN_IF_ERROR(EvaluateClassFactored(m, rows, cls, anchor, anchor, std::move(system),
                                                 std::move(plan), target, context, local, out,

@@ -490,10 +490,10 @@ Status MMatrixLu::Factorize(const LeakySystem& a, FactorPlan plan, const StopChe
   // entries of U are stored and summed into its pivot, so they agree to rounding. Bands find
   // each row's pattern as they go (FactorizeByRows); dissected plans (grids) take
   // FactorizeByPattern, whose inner loop is a plain sparse update: on a 316 x 316 grid it
-  // took 0.81-0.90 s against 1.50-1.75 s. On a band (a ring's chain,
-  // where A + A^T holds twice the fill of A when the chain moves one way) it was 10-15 %
-  // slower: a 1,000,000-state ring's total-cost solve took 14.3 and 14.9 s against 12.2
-  // and 13.4 s in alternating runs.
+  // took 0.81-0.90 s against 1.50-1.75 s. On a band (a ring's chain, where A + A^T holds
+  // twice the fill of A when the chain moves one way) it was 10-15 % slower: a
+  // 1,000,000-state ring's total-cost solve took 14.3 and 14.9 s against 12.2 and 13.4 s in
+  // alternating runs.
   return plan.ordering == FactorOrdering::kDissection ? FactorizeByPattern(a, plan, stop)
                                                        : FactorizeByRows(a, plan, stop);
 }
