@@ -46,7 +46,7 @@ namespace {
 // expected reward. Probabilities are scaled by 1 / sum so each row sums to 1 exactly up to
 // rounding (the spec passed validation, so the sum is within 1e-6 of 1).
 double AppendRow(const ModelSpec& spec, SlotId slot, std::vector<std::pair<StateId, double>>& tmp,
-                 std::vector<StateId>& next, std::vector<double>& prob) {
+                 internal::LargeVector<StateId>& next, internal::LargeVector<double>& prob) {
   const size_t row_start = next.size();
   const OutcomeId begin = spec.slot_first_outcome[slot];
   const OutcomeId end = spec.slot_first_outcome[slot + 1];
@@ -112,7 +112,7 @@ Result<Model> BuildModel(const ModelSpec& spec, const ValidSpecProof& proof) {
     m.state_names_ = spec.state_names;
     m.action_names_ = spec.action_names;
     m.terminal_ = spec.terminal;
-    m.state_row_begin_ = spec.state_first_slot;
+    m.state_row_begin_.assign(spec.state_first_slot.begin(), spec.state_first_slot.end());
     m.row_action_ = spec.slot_action;
     m.row_reward_.resize(spec.num_slots());
     m.row_entry_begin_.reserve(spec.num_slots() + 1);

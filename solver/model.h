@@ -15,6 +15,7 @@
 #include <unordered_map>
 #include <vector>
 
+#include "solver/internal/large_array.h"
 #include "solver/model_spec.h"
 #include "solver/status.h"
 
@@ -98,12 +99,13 @@ class Model {
   std::vector<StateId> state_index_;
 
   std::vector<uint8_t> terminal_;
-  std::vector<RowId> state_row_begin_;  // Size states + 1.
+  // The arrays the sweeps stream, on huge pages when large (internal/large_array.h).
+  internal::LargeVector<RowId> state_row_begin_;  // Size states + 1.
   std::vector<ActionId> row_action_;
-  std::vector<double> row_reward_;      // Expected immediate reward r(s, a).
-  std::vector<int64_t> row_entry_begin_;  // Size rows + 1.
-  std::vector<StateId> entry_next_;
-  std::vector<double> entry_probability_;
+  internal::LargeVector<double> row_reward_;        // Expected immediate reward r(s, a).
+  internal::LargeVector<int64_t> row_entry_begin_;  // Size rows + 1.
+  internal::LargeVector<StateId> entry_next_;
+  internal::LargeVector<double> entry_probability_;
 };
 
 // Compiles `spec` into a Model. Returns kInvalidArgument (naming the first problem) unless

@@ -46,7 +46,9 @@ int64_t StatusField(const char* key) {
 }  // namespace
 
 BandwidthProbe::BandwidthProbe(int64_t bytes)
-    : size_(bytes / 64 * 8), data_(new double[static_cast<size_t>(size_)]) {
+    : size_(bytes / 64 * 8),
+      data_(internal::LargeArrayAllocator<double>().allocate(static_cast<size_t>(size_)),
+            Free{size_}) {
   const int64_t n = size_;
   double* x = data_.get();
   // First touch in parallel, with the static schedule the sums use.

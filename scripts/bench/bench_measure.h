@@ -11,6 +11,7 @@
 #include <optional>
 #include <vector>
 
+#include "solver/internal/large_array.h"
 #include "solver/internal/tiled_sweep.h"
 #include "solver/model.h"
 
@@ -36,7 +37,9 @@ struct Timing {
 };
 
 // A STREAM-like read probe: sums an array of `bytes` bytes (first touched by the threads that
-// later read it) and reports how fast that goes.
+// later read it) and reports how fast that goes. The array is allocated as the solver's large
+// arrays are (internal/large_array.h: on huge pages where the kernel offers them), so that
+// the probe shows what the host allows and not a handicap the model's arrays do not have.
 class BandwidthProbe {
  public:
   explicit BandwidthProbe(int64_t bytes);
@@ -46,8 +49,14 @@ class BandwidthProbe {
   double checksum() const { return checksum_; }  // Keeps the sums observable.
 
  private:
+  struct Free {
+    int64_t size;
+    void operator()(double* p) const {
+      internal::LargeArrayAllocator<double>().deallocate(p, static_cast<size_t>(size));
+    }
+  };
   int64_t size_;
-  std::unique_ptr<double[]> data_;
+  std::unique_ptr<double[], Free> data_;
   double checksum_ = 0.0;
 };
 

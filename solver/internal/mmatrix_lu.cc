@@ -363,7 +363,7 @@ namespace {
 
 // Keeps the nonzero values of rows r = [begin[r], end[r]) of (col, value), packed in place.
 void DropZeros(std::vector<int64_t>& begin, const std::vector<int64_t>& end,
-               std::vector<int32_t>& col, std::vector<double>& value) {
+               LargeVector<int32_t>& col, LargeVector<double>& value) {
   int64_t out = 0;
   for (size_t r = 0; r < end.size(); ++r) {
     const int64_t from = begin[r];

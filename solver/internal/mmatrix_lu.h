@@ -15,6 +15,7 @@
 #include <span>
 #include <vector>
 
+#include "solver/internal/large_array.h"
 #include "solver/internal/stop_check.h"
 #include "solver/status.h"
 
@@ -106,11 +107,11 @@ class MMatrixLu {
 
   std::vector<int32_t> order_;    // As FactorPlan::order.
   std::vector<int64_t> l_begin_;  // L by rows (unit diagonal not stored), by position.
-  std::vector<int32_t> l_col_;
-  std::vector<double> l_value_;
+  LargeVector<int32_t> l_col_;
+  LargeVector<double> l_value_;
   std::vector<int64_t> u_begin_;  // U by rows, strictly upper part, by position.
-  std::vector<int32_t> u_col_;
-  std::vector<double> u_value_;
+  LargeVector<int32_t> u_col_;
+  LargeVector<double> u_value_;
   std::vector<double> pivot_;  // U's diagonal.
   int32_t singular_at_ = -1;
 };

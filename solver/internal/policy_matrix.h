@@ -15,6 +15,7 @@
 
 #include "solver/internal/bellman.h"
 #include "solver/internal/bicgstab.h"  // Preconditioner, kLowerSolveCost.
+#include "solver/internal/large_array.h"
 #include "solver/model.h"
 
 namespace mdp::internal {
@@ -51,9 +52,9 @@ class PolicyMatrix {
  private:
   double discount_ = 0.0;
   KernelSet kernels_ = KernelSet::kPortable;  // ChooseKernels of the model (bellman.h).
-  std::vector<int64_t> begin_;  // Size states + 1.
-  std::vector<StateId> next_;
-  std::vector<double> scaled_probability_;  // g p(s' | s, pi(s)).
+  LargeVector<int64_t> begin_;  // Size states + 1.
+  LargeVector<StateId> next_;
+  LargeVector<double> scaled_probability_;  // g p(s' | s, pi(s)).
   std::vector<double> reward_;
   std::vector<double> diagonal_;
 };

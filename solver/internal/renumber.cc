@@ -174,12 +174,12 @@ LayerProbe SearchLayers(const Model& m, StateId start, std::vector<uint8_t>& see
 // The CSR arrays of a permuted model, filled apart from the Model (whose members only the
 // friend PermuteStates may set).
 struct CsrArrays {
-  std::vector<RowId> state_row_begin;
+  LargeVector<RowId> state_row_begin;
   std::vector<ActionId> row_action;
-  std::vector<double> row_reward;
-  std::vector<int64_t> row_entry_begin;
-  std::vector<StateId> entry_next;
-  std::vector<double> entry_probability;
+  LargeVector<double> row_reward;
+  LargeVector<int64_t> row_entry_begin;
+  LargeVector<StateId> entry_next;
+  LargeVector<double> entry_probability;
 };
 
 int64_t LongestRow(const Model& m) {

@@ -11,15 +11,17 @@
 // does (one sum for longer rows and rows without a window, as its plain loop does).
 //
 // Measured on 1,000,000 states x 4 actions x 8 random next states, 30 alternating sweeps each
-// (medians, a stand-alone copy of both loops over the same arrays): 2 threads 28.6-31.0 ms against 35.2-73.7 ms row by row, 1 thread 52.8-60.1 ms
-// against 72.9-121 ms; the row sweep's time moved with the load of the host's shared cache,
-// the tiled one's much less (on a quiet host a plain loop came within 3 %: 28.8 against
-// 29.5 ms, BENCHMARKS.md of 2026-12-04). The gain grows once V outgrows the shared cache:
-// 2,000,000 states 66 ms against 143 ms for a plain loop, 4,000,000 states 276 against
-// 440 ms (2 threads, best of 8). Next states within 16 of the state: equal (14.7 against
-// 15.1 ms), so the rule below leaves local models row by row and spares them the copy.
-// The copy takes 12 bytes per entry (the row sweep's own 12: an index and a probability)
-// while value iteration runs, and is freed with it.
+// (medians, a stand-alone copy of both loops over the same arrays): 2 threads 28.6-31.0 ms
+// against 35.2-73.7 ms row by row, 1 thread 52.8-60.1 ms against 72.9-121 ms; the row sweep's time
+// moved with the load of the host's shared cache, the tiled one's much less (on a quiet host a
+// plain loop came within 3 %: 28.8 against 29.5 ms, BENCHMARKS.md of 2026-12-04). The gain grows
+// once V outgrows the shared cache: 2,000,000 states 66 ms against 143 ms for a plain loop,
+// 4,000,000 states 276 against 440 ms (2 threads, best of 8). Next states within 16 of the state:
+// equal (14.7 against 15.1 ms), so the rule below leaves local models row by row and spares them
+// the copy. The copy takes 12 bytes per entry (the row sweep's own 12: an index and a probability)
+// while value iteration runs, and is freed with it. These timings were taken with the model and
+// the copy on 4 KiB pages; both are on huge pages now where the kernel allows (large_array.h has
+// the effect: 25.0-26.3 ms against 27.8-28.0 ms for this sweep on 2 threads).
 #ifndef MDP_SOLVER_INTERNAL_TILED_SWEEP_H_
 #define MDP_SOLVER_INTERNAL_TILED_SWEEP_H_
 
@@ -28,6 +30,7 @@
 #include <optional>
 #include <vector>
 
+#include "solver/internal/large_array.h"
 #include "solver/model.h"
 #include "solver/options.h"
 
@@ -77,8 +80,8 @@ class TiledEntries {
   std::vector<int64_t> tile_begin_;
   // Per entry: (2 * row within the block + parity) << kTileColumnBits | next within the
   // column block; and its probability.
-  std::vector<uint32_t> code_;
-  std::vector<double> probability_;
+  LargeVector<uint32_t> code_;
+  LargeVector<double> probability_;
   mutable std::vector<std::vector<double>> sums_;  // Per thread, 2 per row of a block.
 };
 

@@ -15,6 +15,7 @@
 #include <vector>
 
 #include "solver/internal/bicgstab.h"
+#include "solver/internal/large_array.h"
 #include "solver/internal/mmatrix_lu.h"
 #include "solver/internal/stop_check.h"
 #include "solver/model.h"
@@ -56,9 +57,9 @@ class TotalPolicyMatrix {
   void SolveFactored(std::span<double> x) const { factors_.Solve(x); }
 
  private:
-  std::vector<int64_t> begin_;  // Size size() + 1.
-  std::vector<int32_t> column_;
-  std::vector<double> probability_;
+  LargeVector<int64_t> begin_;  // Size size() + 1.
+  LargeVector<int32_t> column_;
+  LargeVector<double> probability_;
   std::vector<double> reward_;
   std::vector<double> diagonal_;
   std::vector<double> leak_;  // Probability of stepping into a goal, summed, not subtracted.
