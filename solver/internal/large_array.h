@@ -5,11 +5,12 @@
 // On hosts whose kernel offers huge pages only on request (transparent_hugepage=madvise, as on
 // the benchmark host) the streamed arrays otherwise sit on 4 KiB pages, where the hardware
 // prefetcher stops at every page boundary. Measured on the 2-core benchmark host, 1,000,000
-// states x 4 actions x 8 next states, medians of 30 sweeps, 2 threads: the near-state sweep
-// 10.6-10.8 ms against 12.5-12.7 ms, the random model's tiled sweep 25.2-25.5 ms against
-// 26.8-28.0 ms, and the 1 GiB bandwidth probe 17-18 ms against 24-32 ms (scripts/bench uses
-// this allocator for its probe too, so that the probe stays the host's ceiling; numpy, the
-// benchmark's baseline, advises huge pages for its own large arrays by default).
+// states x 4 actions x 8 next states, medians of 30 sweeps in 3 alternating rounds, 2 threads:
+// the near-state sweep 11.7-12.3 ms against 12.5-13.5 ms, the random model's tiled sweep
+// 25.0-26.3 ms against 27.8-28.0 ms; the 1 GiB bandwidth probe on one thread 33-34 ms against
+// 42-46 ms (scripts/bench uses this allocator for its probe too, so that the probe stays the
+// host's ceiling; numpy, the benchmark's baseline, advises huge pages for its own large arrays
+// by default).
 // Where the kernel gives no huge pages the advice is ignored and only the alignment remains
 // (at most 2 MiB more per array, at least 4 MiB large).
 #ifndef MDP_SOLVER_INTERNAL_LARGE_ARRAY_H_
