@@ -1,6 +1,8 @@
 #!/usr/bin/env bash
 # Installs mdpserve's build and test dependencies from Debian's packages.
 # Idempotent and non-interactive: safe to run again; does nothing when all are present.
+#   bash scripts/install-deps.sh [EXTRA_PACKAGE...]
+# Extra packages are installed with the others (scripts/fuzz.sh adds clang and libomp-dev).
 set -euo pipefail
 
 packages=(
@@ -11,6 +13,7 @@ packages=(
   libsimdjson-dev
   wrk nginx-light curl
   python3 python3-scipy python3-numpy python3-jsonschema
+  "$@"
 )
 
 missing=()

@@ -1,6 +1,7 @@
 #include "server/solution_blob.h"
 
 #include <cstring>
+#include <limits>
 #include <type_traits>
 
 #include "server/byte_io.h"
@@ -91,8 +92,14 @@ bool GetCriterionSection(Reader& r, int64_t states, Solution& s) {
   std::vector<char> note;
   if (!r.GetCounted(&note, int64_t{1} << 20)) return false;
   a.note.assign(note.begin(), note.end());
-  return r.GetCounted(&a.state_gain, states) && r.Get(&s.horizon) && s.horizon >= 0 &&
-         r.GetCounted(&s.stage_values, (s.horizon + 1) * states) &&
+  if (!(r.GetCounted(&a.state_gain, states) && r.Get(&s.horizon) && s.horizon >= 0)) return false;
+  // At most (horizon + 1) * states stage values. The horizon is read from the blob: a product
+  // past int64 (found by tests/fuzz) saturates instead of overflowing; no blob holds that many.
+  int64_t stage_cap = std::numeric_limits<int64_t>::max();
+  if (s.horizon < stage_cap && __builtin_mul_overflow(s.horizon + 1, states, &stage_cap)) {
+    stage_cap = std::numeric_limits<int64_t>::max();
+  }
+  return r.GetCounted(&s.stage_values, stage_cap) &&
          r.GetCounted(&s.total.reaches_goal, states) &&
          r.GetCounted(&s.total.expected_steps, states) &&
          r.Get(&s.total.states_not_reaching_goal) && r.Get(&s.total.max_expected_steps);

@@ -60,15 +60,25 @@ MDP_BELLMAN_ENTRY_POINTS
 }  // namespace portable
 
 #ifdef MDP_BELLMAN_HAVE_GATHER_COPY
+// The copy's functions are compiled for AVX2 and FMA: GCC's pragma, or clang's (the fuzz
+// build, tests/fuzz/README.md, compiles with clang).
+#if defined(__clang__)
+#pragma clang attribute push(__attribute__((target("avx2,fma"))), apply_to = function)
+#else
 #pragma GCC push_options
 #pragma GCC target("avx2,fma")
+#endif
 namespace gather {
 #define MDP_BELLMAN_GATHER 1
 #include "solver/internal/bellman_kernels.inc"
 #undef MDP_BELLMAN_GATHER
 MDP_BELLMAN_ENTRY_POINTS
 }  // namespace gather
+#if defined(__clang__)
+#pragma clang attribute pop
+#else
 #pragma GCC pop_options
+#endif
 #endif
 
 #undef MDP_BELLMAN_ENTRY_POINTS

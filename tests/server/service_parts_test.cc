@@ -6,6 +6,7 @@
 #include <algorithm>
 #include <atomic>
 #include <chrono>
+#include <limits>
 #include <mutex>
 #include <thread>
 #include <vector>
@@ -130,6 +131,25 @@ TEST(SolutionBlobTest, RefusesTruncatedForeignOrMismatchedBlobs) {
   foreign[0] = 'X';
   EXPECT_FALSE(DecodeSolutionBlob(foreign, m.num_states(), m.num_rows()).ok());
   EXPECT_FALSE(DecodeSolutionBlob("", m.num_states(), m.num_rows()).ok());
+}
+
+// The decoder caps the stage values at (horizon + 1) * states; with a horizon this large the
+// product passed int64 (signed overflow, found by tests/fuzz/stored_records_fuzz under UBSan)
+// and, where it wrapped negative, a blob our own encoder wrote was refused.
+TEST(SolutionBlobTest, ReadsBackAnyHorizonItsEncoderWrites) {
+  const Model m = testing::MustBuild(testing::RandomSpec(4, {}));
+  Result<Solution> s = Solve(m, SolveOptions{});
+  ASSERT_TRUE(s.ok());
+  for (int64_t horizon : {int64_t{3} << 60, std::numeric_limits<int64_t>::max() - 1,
+                          std::numeric_limits<int64_t>::max()}) {
+    Solution with = *s;
+    with.horizon = horizon;
+    Result<Solution> back = DecodeSolutionBlob(EncodeSolutionBlob(with), m.num_states(),
+                                               m.num_rows());
+    ASSERT_TRUE(back.ok()) << horizon << ": " << back.status().ToString();
+    EXPECT_EQ(back->horizon, horizon);
+    EXPECT_EQ(back->values, s->values);
+  }
 }
 
 std::shared_ptr<const Solution> SolutionOfSize(size_t states) {
