@@ -46,7 +46,7 @@ std::optional<Model> LoadModel(const std::string& path, std::ostream& err, bool 
 }
 
 Status Emit(const Json& doc, const std::string& out_path, std::ostream& out) {
-  const std::string text = doc.dump(2) + "\n";
+  const std::string text = DumpJson(doc, 2) + "\n";
   if (out_path.empty() || out_path == "-") {
     out << text;
     return Status::Ok();

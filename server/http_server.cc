@@ -36,7 +36,7 @@ Problem ProblemWithStatus(int status, const std::string& reason) {
   Problem p = MakeProblem(client_error ? InvalidArgumentError(detail) : InternalError(detail));
   Json body = Json::parse(p.body);
   body["status"] = status;
-  p.body = body.dump();
+  p.body = DumpJson(body);
   p.status = status;
   return p;
 }

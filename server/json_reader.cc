@@ -47,12 +47,13 @@ class DomBuilder : public nlohmann::json_sax<Json> {
     return true;
   }
 
-  bool parse_error(std::size_t, const std::string&, const nlohmann::detail::exception& ex) override {
+  bool parse_error(std::size_t, const std::string&,
+                   const nlohmann::detail::exception& ex) override {
     std::string what = ex.what();
     const size_t close = what.find("] ");
     if (close != std::string::npos) what = what.substr(close + 2);
     malformed_ = true;
-    return Fail(Pointer(), "malformed JSON: " + what);
+    return Fail(Pointer(), "malformed JSON: " + EscapeInvalidUtf8(what));
   }
 
   Json TakeRoot() { return std::move(root_); }
@@ -62,7 +63,7 @@ class DomBuilder : public nlohmann::json_sax<Json> {
  private:
   struct Frame {
     Json* node;
-    std::string key;       // Current key (objects).
+    std::string key;        // Current key (objects).
     bool streamed = false;  // This array's elements go to on_element.
   };
 
@@ -124,8 +125,8 @@ class DomBuilder : public nlohmann::json_sax<Json> {
   bool Open(Json&& container) {
     if (static_cast<int>(frames_.size()) >= options_.max_depth) {
       malformed_ = true;
-      return Fail(Pointer(), "nesting is deeper than " + std::to_string(options_.max_depth) +
-                                 " levels");
+      return Fail(Pointer(),
+                  "nesting is deeper than " + std::to_string(options_.max_depth) + " levels");
     }
     const bool stream = container.is_array() && frames_.size() == 1 &&
                         frames_[0].node->is_object() && !options_.stream_member.empty() &&
@@ -178,6 +179,62 @@ JsonReadResult ReadJson(std::string_view text, const JsonReadOptions& options) {
   }
   if (result.errors.empty()) result.root = builder.TakeRoot();
   return result;
+}
+
+namespace {
+
+// Length of the well-formed UTF-8 sequence at the start of `s` (RFC 3629: no overlong forms,
+// no surrogates, nothing above U+10FFFF), or 0 if it does not start with one.
+size_t Utf8SequenceLength(std::string_view s) {
+  const auto byte = [&](size_t i) { return static_cast<unsigned char>(s[i]); };
+  const unsigned char b0 = byte(0);
+  if (b0 < 0x80) return 1;
+  size_t n = 0;
+  unsigned char lo = 0x80, hi = 0xBF;  // Range of the second byte.
+  if (b0 >= 0xC2 && b0 <= 0xDF) {
+    n = 2;
+  } else if (b0 >= 0xE0 && b0 <= 0xEF) {
+    n = 3;
+    if (b0 == 0xE0) lo = 0xA0;
+    if (b0 == 0xED) hi = 0x9F;
+  } else if (b0 >= 0xF0 && b0 <= 0xF4) {
+    n = 4;
+    if (b0 == 0xF0) lo = 0x90;
+    if (b0 == 0xF4) hi = 0x8F;
+  } else {
+    return 0;
+  }
+  if (s.size() < n || byte(1) < lo || byte(1) > hi) return 0;
+  for (size_t i = 2; i < n; ++i) {
+    if (byte(i) < 0x80 || byte(i) > 0xBF) return 0;
+  }
+  return n;
+}
+
+}  // namespace
+
+std::string EscapeInvalidUtf8(std::string_view text) {
+  static constexpr char kHex[] = "0123456789ABCDEF";
+  std::string out;
+  out.reserve(text.size());
+  while (!text.empty()) {
+    const size_t n = Utf8SequenceLength(text);
+    if (n > 0) {
+      out.append(text.substr(0, n));
+      text.remove_prefix(n);
+      continue;
+    }
+    const auto b = static_cast<unsigned char>(text.front());
+    out += "\\x";
+    out += kHex[b >> 4];
+    out += kHex[b & 15];
+    text.remove_prefix(1);
+  }
+  return out;
+}
+
+std::string DumpJson(const Json& json, int indent) {
+  return json.dump(indent, ' ', false, Json::error_handler_t::replace);
 }
 
 }  // namespace mdp::server

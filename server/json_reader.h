@@ -24,8 +24,8 @@ struct DocumentIssue {
 };
 
 struct JsonReadOptions {
-  int max_depth = 64;                     // Containers nested deeper are refused.
-  int64_t max_array_items = 1'000'000;    // Per array (except the streamed one).
+  int max_depth = 64;                   // Containers nested deeper are refused.
+  int64_t max_array_items = 1'000'000;  // Per array (except the streamed one).
   // If set, elements of the top-level member with this name (which must be an array) are
   // handed to `on_element` as they complete and replaced by null in the DOM.
   std::string stream_member;
@@ -37,13 +37,25 @@ struct JsonReadOptions {
 struct JsonReadResult {
   Json root;
   std::vector<DocumentIssue> errors;  // Empty iff the text was read completely.
-  bool malformed = false;  // True iff the text is not JSON (syntax) or nests too deep.
+  bool malformed = false;             // True iff the text is not JSON (syntax) or nests too deep.
 };
 
 JsonReadResult ReadJson(std::string_view text, const JsonReadOptions& options);
 
 // Escapes one reference token for a JSON Pointer ("~" -> "~0", "/" -> "~1").
 std::string EscapePointerToken(std::string_view token);
+
+// `text` with each byte that is not part of well-formed UTF-8 written as the four characters
+// "\xHH": for messages that quote raw input (the parser's "last read" text), which must stay
+// valid UTF-8 to be sent as JSON.
+std::string EscapeInvalidUtf8(std::string_view text);
+
+// Serializes `json` (indent < 0: compact) as every answer and stored report is written. A
+// string holding bytes that are not well-formed UTF-8 gets U+FFFD in their place instead of
+// nlohmann's exception: decoded documents cannot hold such strings, but a message quoting
+// raw input could (found by tests/fuzz/service_api_fuzz: answered 500, and the command line
+// aborted).
+std::string DumpJson(const Json& json, int indent = -1);
 
 }  // namespace mdp::server
 

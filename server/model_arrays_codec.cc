@@ -275,8 +275,15 @@ std::string_view Trimmed(std::string_view token) {
   return token;
 }
 
+// The first 40 bytes of a token, quoted; a cut never splits a UTF-8 sequence (the `format`
+// string is quoted too, and a split sequence made the answer invalid JSON).
 std::string Quoted(std::string_view token) {
-  return "'" + std::string(token.substr(0, 40)) + (token.size() > 40 ? "...'" : "'");
+  size_t keep = std::min<size_t>(token.size(), 40);
+  const auto continuation = [&](size_t i) {
+    return (static_cast<unsigned char>(token[i]) & 0xC0) == 0x80;
+  };
+  while (keep > 0 && keep < token.size() && continuation(keep)) --keep;
+  return "'" + std::string(token.substr(0, keep)) + (keep < token.size() ? "...'" : "'");
 }
 
 // ---------------------------------------------------------------------------------------------

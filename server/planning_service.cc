@@ -46,7 +46,7 @@ std::string CanonicalSolveOptions(const SolveOptions& options) {
   Json json = EncodeSolveOptions(options);
   json["method"] = std::string(MethodName(options.method));
   json.erase("threads");  // How many threads solve does not change the answer's meaning.
-  return json.dump();
+  return DumpJson(json);
 }
 
 namespace {
@@ -235,7 +235,7 @@ Result<UploadResult> PlanningService::Upload(std::string_view document,
   record.actions = m.num_actions();
   record.state_actions = m.num_rows();
   record.outcomes = m.num_outcomes_in_document();
-  record.warnings_json = EncodeIssues({}, result.warnings, 0)["warnings"].dump();
+  record.warnings_json = DumpJson(EncodeIssues({}, result.warnings, 0)["warnings"]);
   record.created_at = NowRfc3339();
   MDP_RETURN_IF_ERROR(store_.PutModel(record, &result.created));
   if (result.created) {
@@ -482,7 +482,7 @@ Status PlanningService::RunSolve(ActiveJob& job) {
   record.id = SolutionIdFor(job.record.model_id, job.record.request_json);
   record.model_id = job.record.model_id;
   record.options_json = job.record.request_json;
-  record.report_json = EncodeSolutionReport(**model, *solution, record.id).dump();
+  record.report_json = DumpJson(EncodeSolutionReport(**model, *solution, record.id));
   record.created_at = NowRfc3339();
   record.data = EncodeSolutionBlob(*solution);
   MDP_RETURN_IF_ERROR(store_.PutSolution(record));
@@ -547,9 +547,8 @@ Status PlanningService::RunSimulation(ActiveJob& job) {
   if (report->outcome == SimulationOutcome::kCancelled) {
     return Status(StatusCode::kCancelled, "cancelled");
   }
-  std::string result =
-      EncodeSimulation(**model, request.value.options, *report, request.value.listed_states)
-          .dump();
+  std::string result = DumpJson(
+      EncodeSimulation(**model, request.value.options, *report, request.value.listed_states));
   std::lock_guard<std::mutex> lock(job.mu);
   job.record.result_json = std::move(result);
   return Status::Ok();
@@ -772,7 +771,7 @@ Result<VerifyStart> PlanningService::VerifyNow(const std::string& model_id,
     }
     if (!report.ok()) return report.status();
     out.passed = report->pass;
-    out.report_json = EncodeValuesReport(m, *report).dump();
+    out.report_json = DumpJson(EncodeValuesReport(m, *report));
     return out;
   }
   Decoded<Policy> policy = DecodePolicy(m, body);
@@ -785,7 +784,7 @@ Result<VerifyStart> PlanningService::VerifyNow(const std::string& model_id,
   Result<PolicyReport> report = VerifyPolicy(m, policy.value, *plan->solution, verify);
   if (!report.ok()) return report.status();
   out.passed = report->pass;
-  out.report_json = EncodePolicyReport(m, *report).dump();
+  out.report_json = DumpJson(EncodePolicyReport(m, *report));
   return out;
 }
 

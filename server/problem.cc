@@ -60,7 +60,7 @@ Problem MakeProblem(const Status& status, ProblemKind kind,
   }
   Problem p;
   p.status = k.status;
-  p.body = body.dump();
+  p.body = DumpJson(body);
   if (k.status == 429) p.retry_after = 5;
   if (k.status == 503) p.retry_after = 10;
   return p;

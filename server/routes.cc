@@ -86,7 +86,7 @@ void UploadModelBody(HttpContext& ctx, const Request& req, std::string body, Res
                          upload->errors, upload->errors_not_listed));
   }
   res.set_header("Location", "/v1/models/" + upload->record.id);
-  WriteJson(res, upload->created ? 201 : 200, EncodeUpload(*upload).dump());
+  WriteJson(res, upload->created ? 201 : 200, DumpJson(EncodeUpload(*upload)));
 }
 
 // A request with no body at all.
@@ -99,13 +99,13 @@ void ListModels(HttpContext& ctx, const Request&, Response& res) {
   if (!models.ok()) return WriteProblem(res, models.status());
   Json list = Json::array();
   for (const ModelRecord& m : *models) list.push_back(EncodeModelRecord(m));
-  WriteJson(res, 200, Json{{"models", std::move(list)}}.dump());
+  WriteJson(res, 200, DumpJson(Json{{"models", std::move(list)}}));
 }
 
 void GetModel(HttpContext& ctx, const Request&, Response& res) {
   Result<ModelRecord> model = ctx.service.GetModel(ctx.path_params[0], false);
   if (!model.ok()) return WriteProblem(res, model.status());
-  WriteJson(res, 200, EncodeModelRecord(*model).dump());
+  WriteJson(res, 200, DumpJson(EncodeModelRecord(*model)));
 }
 
 // Sent in chunks of 1 MiB as it is written: the text of a 1M-state model is 2.4 GB.
@@ -152,13 +152,14 @@ void StartSolve(HttpContext& ctx, const Request& req, Response& res) {
     const std::string where =
         "/v1/models/" + request->model_id + "/solutions/" + start->cached_solution_id;
     res.set_header("Location", where);
-    return WriteJson(res, 200, Json{{"cached", true},
-                                    {"model_id", request->model_id},
-                                    {"solution_id", start->cached_solution_id},
-                                    {"solution", where}}.dump());
+    return WriteJson(res, 200,
+                     DumpJson(Json{{"cached", true},
+                                   {"model_id", request->model_id},
+                                   {"solution_id", start->cached_solution_id},
+                                   {"solution", where}}));
   }
   res.set_header("Location", "/v1/jobs/" + start->job->record.id);
-  WriteJson(res, 202, EncodeJobView(*start->job).dump());
+  WriteJson(res, 202, DumpJson(EncodeJobView(*start->job)));
 }
 
 void ListJobs(HttpContext& ctx, const Request& req, Response& res) {
@@ -182,19 +183,19 @@ void ListJobs(HttpContext& ctx, const Request& req, Response& res) {
   if (!jobs.ok()) return WriteProblem(res, jobs.status());
   Json list = Json::array();
   for (const JobView& j : *jobs) list.push_back(EncodeJobView(j));
-  WriteJson(res, 200, Json{{"jobs", std::move(list)}}.dump());
+  WriteJson(res, 200, DumpJson(Json{{"jobs", std::move(list)}}));
 }
 
 void GetJob(HttpContext& ctx, const Request&, Response& res) {
   Result<JobView> job = ctx.service.GetJob(ctx.path_params[0]);
   if (!job.ok()) return WriteProblem(res, job.status());
-  WriteJson(res, 200, EncodeJobView(*job).dump());
+  WriteJson(res, 200, DumpJson(EncodeJobView(*job)));
 }
 
 void CancelJob(HttpContext& ctx, const Request&, Response& res) {
   Result<JobView> job = ctx.service.CancelJob(ctx.path_params[0]);
   if (!job.ok()) return WriteProblem(res, job.status());
-  WriteJson(res, 200, EncodeJobView(*job).dump());
+  WriteJson(res, 200, DumpJson(EncodeJobView(*job)));
 }
 
 void BestAction(HttpContext& ctx, const Request& req, Response& res) {
@@ -266,7 +267,7 @@ void Explain(HttpContext& ctx, const Request& req, Response& res) {
   if (s < 0) return;
   Result<int64_t> stage = QueryStage(req, *plan);
   if (!stage.ok()) return WriteProblem(res, stage.status());
-  WriteJson(res, 200, EncodeExplain(*plan, s, *stage).dump());
+  WriteJson(res, 200, DumpJson(EncodeExplain(*plan, s, *stage)));
 }
 
 void ListSolutions(HttpContext& ctx, const Request&, Response& res) {
@@ -274,14 +275,14 @@ void ListSolutions(HttpContext& ctx, const Request&, Response& res) {
   if (!list.ok()) return WriteProblem(res, list.status());
   Json out = Json::array();
   for (const SolutionRecord& s : *list) out.push_back(EncodeSolutionRecord(s));
-  WriteJson(res, 200, Json{{"solutions", std::move(out)}}.dump());
+  WriteJson(res, 200, DumpJson(Json{{"solutions", std::move(out)}}));
 }
 
 void GetSolution(HttpContext& ctx, const Request&, Response& res) {
   Result<SolutionRecord> record =
       ctx.service.GetSolutionRecord(ctx.path_params[0], ctx.path_params[1]);
   if (!record.ok()) return WriteProblem(res, record.status());
-  WriteJson(res, 200, EncodeSolutionRecord(*record).dump());
+  WriteJson(res, 200, DumpJson(EncodeSolutionRecord(*record)));
 }
 
 void GetSolutionTables(HttpContext& ctx, const Request& req, Response& res) {
@@ -294,7 +295,7 @@ void GetSolutionTables(HttpContext& ctx, const Request& req, Response& res) {
                                           SolutionAtStage(*plan->model, *plan->solution, *stage),
                                           SolutionDetail::kFull);
   doc["id"] = plan->solution_id;
-  WriteJson(res, 200, doc.dump());
+  WriteJson(res, 200, DumpJson(doc));
 }
 
 void Verify(HttpContext& ctx, const Request& req, Response& res) {
@@ -307,7 +308,7 @@ void Verify(HttpContext& ctx, const Request& req, Response& res) {
   }
   if (done->job) {
     res.set_header("Location", "/v1/jobs/" + done->job->record.id);
-    return WriteJson(res, 202, EncodeJobView(*done->job).dump());
+    return WriteJson(res, 202, DumpJson(EncodeJobView(*done->job)));
   }
   WriteJson(res, 200, done->report_json);
 }
@@ -318,7 +319,7 @@ void Compare(HttpContext& ctx, const Request& req, Response& res) {
       ctx.path_params[0], Param(req, "solution_id"), Param(req, "with"),
       Param(req, "with_solution_id"));
   if (!report.ok()) return WriteProblem(res, report.status());
-  WriteJson(res, 200, EncodeComparison(*report).dump());
+  WriteJson(res, 200, DumpJson(EncodeComparison(*report)));
 }
 
 void StartSimulation(HttpContext& ctx, const Request& req, Response& res) {
@@ -331,7 +332,7 @@ void StartSimulation(HttpContext& ctx, const Request& req, Response& res) {
                          ProblemKind::kInvalidCandidate, start->errors));
   }
   res.set_header("Location", "/v1/jobs/" + start->job->record.id);
-  WriteJson(res, 202, EncodeJobView(*start->job).dump());
+  WriteJson(res, 202, DumpJson(EncodeJobView(*start->job)));
 }
 
 void Healthz(HttpContext&, const Request&, Response& res) {

@@ -22,15 +22,27 @@ int Connect(int port) {
   addr.sin_family = AF_INET;
   addr.sin_port = htons(static_cast<uint16_t>(port));
   addr.sin_addr.s_addr = htonl(INADDR_LOOPBACK);
+  // libFuzzer's timer (SIGALRM) interrupts system calls: an interrupted connect goes on in
+  // the background, so wait for it to finish and read its outcome.
+  int error = 0;
   if (::connect(fd, reinterpret_cast<sockaddr*>(&addr), sizeof addr) != 0) {
-    Fail(std::string("cannot connect to the server: ") + std::strerror(errno));
+    error = errno;
+    if (error == EINTR || error == EINPROGRESS) {
+      pollfd p{fd, POLLOUT, 0};
+      while (::poll(&p, 1, -1) < 0 && errno == EINTR) {
+      }
+      socklen_t size = sizeof error;
+      if (::getsockopt(fd, SOL_SOCKET, SO_ERROR, &error, &size) != 0) error = errno;
+    }
   }
+  if (error != 0) Fail(std::string("cannot connect to the server: ") + std::strerror(error));
   return fd;
 }
 
 void SendAll(int fd, const char* p, size_t n) {
   while (n > 0) {
     const ssize_t k = ::send(fd, p, n, MSG_NOSIGNAL);
+    if (k < 0 && errno == EINTR) continue;
     if (k <= 0) return;
     p += k;
     n -= static_cast<size_t>(k);
@@ -47,6 +59,7 @@ bool ReadUntilClosed(int fd, std::string* out, int seconds) {
         std::chrono::duration_cast<std::chrono::milliseconds>(deadline - Clock::now());
     if (::poll(&p, 1, static_cast<int>(left.count()) + 1) <= 0) continue;
     const ssize_t k = ::recv(fd, buf, sizeof buf, 0);
+    if (k < 0 && errno == EINTR) continue;
     if (k <= 0) return true;  // Closed (or reset).
     if (out != nullptr) out->append(buf, static_cast<size_t>(k));
   }

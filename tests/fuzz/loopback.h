@@ -13,6 +13,7 @@ namespace mdp::fuzz {
 int Connect(int port);
 
 // Sends what the socket takes of the bytes (the peer may close early: that ends the send).
+// Every call here retries system calls that a signal interrupted (libFuzzer's timer).
 void SendAll(int fd, const char* p, size_t n);
 
 // Reads until the peer closes, appending to *out when given; false if it has not closed

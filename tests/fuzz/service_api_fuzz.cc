@@ -5,7 +5,7 @@
 // (corpus/service_api_fuzz/) and their mutations reach the routes under /v1/models/{id}.
 // Per input:
 //  - the bytes are sent on a new connection, which is then half-closed; the server must
-//    answer what it can and close it within 5 s;
+//    answer what it can, never with 500, and close it within 5 s;
 //  - then GET /healthz must answer 200, and the best action of the model's state "dry" must
 //    still be "water" (answered 200): the service keeps running and loses nothing. An input
 //    that deletes the model (it holds "DELETE") is followed by uploading and solving it again.
@@ -108,7 +108,14 @@ extern "C" int LLVMFuzzerTestOneInput(const uint8_t* data, size_t size) {
     bytes.replace(at, 4, service.model_id);
     at += service.model_id.size();
   }
-  (void)mdp::fuzz::Exchange(Port(), bytes, kCloseSeconds);
+  const std::string answers = mdp::fuzz::Exchange(Port(), bytes, kCloseSeconds);
+  // A bad request is the client's error: 4xx with a problem document, never 500.
+  for (size_t at = answers.find("HTTP/1.1 500 "); at != std::string::npos;
+       at = answers.find("HTTP/1.1 500 ", at + 1)) {
+    if (at == 0 || answers[at - 1] == '\n') {
+      Fail("a request was answered 500: " + answers.substr(at, 400));
+    }
+  }
 
   if (Ask("/healthz").rfind("HTTP/1.1 200", 0) != 0) Fail("/healthz is not answered 200");
   const std::string query = "/v1/models/" + service.model_id + "/policy?state=dry";

@@ -150,6 +150,22 @@ TEST_F(CliTest, ValidateNamesTheWholeDocumentForUnreadableText) {
   EXPECT_EQ(run.err.rfind(path + ": (document): the document is empty", 0), 0u) << run.err;
 }
 
+// A byte that is not UTF-8 in a string: the parser's message quotes it, and writing that
+// message as JSON threw, so the command aborted (found by tests/fuzz/service_api_fuzz, where
+// the same text made the service answer 500).
+TEST_F(CliTest, ValidateReportsAByteThatIsNotUtf8InsteadOfAborting) {
+  std::string text(kGreenhouse);
+  ASSERT_TRUE(ReplaceOnce(text, R"("name": "Greenhouse")", "\"name\": \"Green\xF8house\""));
+  const std::string path = Write("not-utf8.json", text);
+  const CliRun run = Run({"validate", path});
+  EXPECT_EQ(run.code, kExitBadInput);
+  EXPECT_NE(run.err.find(path + ": /name: malformed JSON: "), std::string::npos) << run.err;
+  EXPECT_NE(run.err.find("Green\\xF8"), std::string::npos) << run.err;
+  const Json doc = Parse(run.out);
+  ASSERT_TRUE(doc["errors"].is_array()) << run.out;
+  EXPECT_EQ(doc["errors"][0]["pointer"], "/name");
+}
+
 TEST_F(CliTest, SolvePrintsTheSolutionDocument) {
   const CliRun run = Run({"solve", model_});
   EXPECT_EQ(run.code, kExitOk);

@@ -17,6 +17,7 @@
 #include <vector>
 
 #include "server/canonical.h"
+#include "server/json_reader.h"
 #include "server/model_codec.h"
 #include "tests/testing/documents.h"
 
@@ -663,6 +664,25 @@ TEST(ModelArraysCodecTest, EveryPrefixOfADemoModelIsRefusedCleanly) {
   ASSERT_FALSE(examples.empty());
   const std::string text = ToArrays<OrderedJson>(ReadFile(examples.front()));
   ExpectRefusedCleanly(text, text.find_last_not_of(" \n") + 1);
+}
+
+// Messages quote at most 40 bytes of a token; the cut used to split a UTF-8 sequence, and
+// the answer holding the message could not be written as JSON (found by tests/fuzz).
+TEST(ModelArraysCodecTest, AQuotedTokenIsNeverCutInsideACharacter) {
+  std::string text(kKiln);
+  // The quoted token is the raw one, with its opening '"': 39 bytes, then U+00E9 (2 bytes)
+  // across the 40-byte cut.
+  const std::string format = "mdpserve/model-arrays@2" + std::string(15, 'x') + "\xC3\xA9!";
+  ASSERT_TRUE(ReplaceOnce(text, "mdpserve/model-arrays@1", format));
+  const ModelDecodeResult result = DecodeModel(text);
+  ASSERT_FALSE(result.ok());
+  ASSERT_FALSE(result.errors.empty());
+  EXPECT_EQ(result.errors[0].pointer, "/format");
+  const std::string& message = result.errors[0].message;
+  EXPECT_NE(message.find("'\"mdpserve/model-arrays@2" + std::string(15, 'x') + "...'"),
+            std::string::npos)
+      << message;
+  EXPECT_EQ(EscapeInvalidUtf8(message), message);
 }
 
 TEST(ModelArraysCodecTest, MangledBytesNeverCrashTheDecoder) {
