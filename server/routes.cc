@@ -327,6 +327,11 @@ void StartSimulation(HttpContext& ctx, const Request& req, Response& res) {
   Result<SimulateStart> start = ctx.service.StartSimulation(ctx.path_params[0], req.body);
   if (!start.ok()) return WriteProblem(res, start.status());
   if (!start->errors.empty()) {
+    // A body that is not JSON is 400 malformed-json, as on the other routes (it was 422).
+    if (ReadJson(req.body, JsonReadOptions{}).malformed) {
+      return WriteProblem(res, MakeProblem(InvalidArgumentError(start->errors.front().message),
+                                           ProblemKind::kMalformedJson, start->errors));
+    }
     return WriteProblem(
         res, MakeProblem(InvalidArgumentError("the simulation request does not fit the model"),
                          ProblemKind::kInvalidCandidate, start->errors));
