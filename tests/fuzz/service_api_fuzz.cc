@@ -47,6 +47,16 @@ std::string UploadAndSolve(mdp::server::PlanningService& service) {
   if (!upload.ok() || !upload->errors.empty()) Fail("the fixed model does not upload");
   mdp::Result<mdp::server::SolveStart> start =
       service.StartSolve(upload->record.id, mdp::SolveOptions{});
+  if (!start.ok() && start.status().code() == mdp::StatusCode::kResourceExhausted) {
+    // The queue is full of the inputs' jobs (a simulation may ask for 10^8 episodes): cancel
+    // them, as a client may, and ask again.
+    for (auto status : {mdp::server::JobStatus::kQueued, mdp::server::JobStatus::kRunning}) {
+      mdp::Result<std::vector<mdp::server::JobView>> jobs = service.ListJobs("", status, 1000);
+      if (!jobs.ok()) continue;
+      for (const mdp::server::JobView& job : *jobs) (void)service.CancelJob(job.record.id);
+    }
+    start = service.StartSolve(upload->record.id, mdp::SolveOptions{});
+  }
   if (!start.ok()) Fail("the fixed model's solve does not start: " + start.status().ToString());
   if (start->job) {
     const auto deadline = Clock::now() + std::chrono::seconds(30);
