@@ -13,6 +13,13 @@
 // where d = options.tie_tolerance + 1e-12 * max(1, max |values|) is how far the deterministic
 // pick may trail the best Q (a policy whose actions trail T V1 by d per step loses at most
 // d / (1 - g) more: the same contraction argument).
+// These hold in exact arithmetic. For the computed numbers, e is widened by twice a bound a
+// on the rounding of one computed backup (internal::BackupRoundingAllowance: (k + 4) units
+// of roundoff of the largest value or reward, k the longest row), and a is added once more
+// for V1 and once for Q: value_error_bound = q_error_bound = g * (g (e + 2a) / (1 - g) + a)
+// + a, policy_loss_bound = 2 (g (e + 2a) / (1 - g) + a) + d / (1 - g). Without it a bound
+// that is tight could fall short by rounding alone (8e-5 with values near 2e8 at g = 0.9999;
+// tests/fuzz/discounted_oracle_fuzz, SolutionTest.BoundsCoverTheirOwnRoundingWhereTheyAreTight).
 //
 // Optimal action sets. Row r of state s is in the set iff
 //   |Q(s, r) - values(s)| <= tie_tolerance + 1e-12 * max(1, |values(s)|),

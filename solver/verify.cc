@@ -50,7 +50,10 @@ ValuesReport DiscountedValues(const Model& m, std::span<const double> candidate,
   report.max_residual = internal::SyncSweep(m, candidate.data(), backup.data(), 1);
   std::vector<double> residual(m.num_states());
   for (StateId s = 0; s < m.num_states(); ++s) residual[s] = std::fabs(backup[s] - candidate[s]);
-  const double e = report.max_residual;
+  // The residual as computed, widened by the rounding of the backup (bellman.h), so that
+  // the bounds hold for the computed numbers.
+  const double e = report.max_residual +
+                   2.0 * internal::BackupRoundingAllowance(m, candidate.data(), backup.data());
   report.value_error_bound = e / (1.0 - g);
   report.greedy_policy_loss_bound =
       std::min(2.0 * e / (1.0 - g), 2.0 * g * e / ((1.0 - g) * (1.0 - g)));

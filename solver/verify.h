@@ -8,6 +8,8 @@
 //    g-contraction of T): sup |V - V*| <= e / (1 - g); the greedy policy pi of V loses at
 //    most min(2 e / (1 - g), 2 g e / (1 - g)^2): |V^pi - V| <= e / (1 - g) because
 //    T_pi V = T V, and |V* - V^pi| <= 2 g |V - V*| / (1 - g). Pass iff e / (1 - g) <= tolerance.
+//    In the bounds, e is the computed residual plus twice the rounding allowance of the
+//    backup (internal::BackupRoundingAllowance), so that they hold for computed numbers.
 //  - kFiniteHorizon: V is read as stage-0 values (the whole horizon ahead) and compared with
 //    the exact V*_0 (the reference's stage 0, or computed here by backward induction):
 //    residuals(s) = |V(s) - V*_0(s)|, max_residual = reference_distance = their maximum,

@@ -4,6 +4,7 @@
 
 #include <algorithm>
 #include <cstdint>
+#include <limits>
 
 #if defined(__GNUC__) && (defined(__x86_64__) || defined(__i386__))
 #include <immintrin.h>
@@ -160,5 +161,18 @@ double GreedySweep(const Model& m, const double* in, double* out, RowId* rows, i
 }
 
 #undef MDP_BELLMAN_DISPATCH
+
+double BackupRoundingAllowance(const Model& m, const double* in, const double* out) {
+  double scale = 0.0;
+  for (StateId s = 0; s < m.num_states(); ++s) {
+    scale = std::max({scale, std::fabs(in[s]), std::fabs(out[s])});
+  }
+  int64_t longest_row = 0;
+  for (RowId r = 0; r < m.num_rows(); ++r) {
+    longest_row = std::max(longest_row, m.entry_end(r) - m.entry_begin(r));
+    scale = std::max(scale, std::fabs(m.row_reward(r)));
+  }
+  return static_cast<double>(longest_row + 4) * std::numeric_limits<double>::epsilon() * scale;
+}
 
 }  // namespace mdp::internal

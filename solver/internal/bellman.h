@@ -55,6 +55,13 @@ KernelSet ChooseKernels(const Model& m);
 
 // out[s] = (T in)(s) for all s; returns sup |out - in|. `threads` as in SolveOptions.
 double SyncSweep(const Model& m, const double* in, double* out, int threads);
+
+// A bound on the rounding of one computed backup out = T in (SyncSweep) of m, in absolute
+// terms: a row's sum of k products plus its reward, in double precision, is within (k + 4)
+// units of roundoff of the largest |in|, |out| or reward. Bounds derived from a residual
+// |T v - v| add it (solution.cc, verify.cc): the residual is a difference of nearly equal
+// values where they are large, and 1 / (1 - g) amplifies its rounding. O(states + rows).
+double BackupRoundingAllowance(const Model& m, const double* in, const double* out);
 // out[s] = best over the rows of s of r + discount * sum p next(s'), 0 at terminal states: one
 // stage of backward induction, with the finite horizon's discount instead of the model's.
 void StageSweep(const Model& m, const double* next, double discount, double* out, int threads);
