@@ -12,8 +12,8 @@
 #   --build-dir DIR  default /tmp/mdpserve-fuzz; its corpus/TARGET holds what the fuzzer
 #                    learned and is reused by the next run
 #   TARGET           model_objects_fuzz, model_arrays_fuzz, api_requests_fuzz,
-#                    stored_records_fuzz, http_transport_fuzz, service_api_fuzz
-#                    (default: all)
+#                    stored_records_fuzz, http_transport_fuzz, service_api_fuzz,
+#                    discounted_oracle_fuzz (default: all)
 #
 # To keep a new input as a regression test: copy it into tests/fuzz/corpus/TARGET/.
 set -euo pipefail
@@ -33,7 +33,7 @@ while [ $# -gt 0 ]; do
 done
 if [ ${#targets[@]} -eq 0 ]; then
   targets=(model_objects_fuzz model_arrays_fuzz api_requests_fuzz stored_records_fuzz
-           http_transport_fuzz service_api_fuzz)
+           http_transport_fuzz service_api_fuzz discounted_oracle_fuzz)
 fi
 
 bash "$root/scripts/install-deps.sh" clang libomp-dev

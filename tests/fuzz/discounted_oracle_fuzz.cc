@@ -4,8 +4,8 @@
 // outcome weights down to 1e-9, and actions that copy another action of their state, so that
 // exact ties occur). The oracle enumerates every deterministic policy (at most 3^6 = 729),
 // solves (I - g P_pi) V = r_pi for each with Eigen's dense LU, and takes V* as the best value
-// per state (an optimal deterministic policy attains it in every state at once; Puterman
-// 1994, Markov Decision Processes, Thm 6.2.10). For every method and linear solver:
+// per state (a finite discounted model has a deterministic stationary policy that attains
+// V* in every state at once: common practice). For every method and linear solver:
 //  - any finite value_error_bound holds: |values - V*| <= bound (whatever the outcome);
 //  - a converged run's deterministic picks lose at most policy_loss_bound against V*, with
 //    the picked policy's values taken from the enumeration;
