@@ -3,9 +3,10 @@
 // action, some terminal states, discounts up to 0.9999, rewards from 1e-3 to 1e6 in size,
 // outcome weights down to 1e-9, and actions that copy another action of their state, so that
 // exact ties occur). The oracle enumerates every deterministic policy (at most 3^6 = 729),
-// solves (I - g P_pi) V = r_pi for each with Eigen's dense LU, and takes V* as the best value
-// per state (a finite discounted model has a deterministic stationary policy that attains
-// V* in every state at once: common practice). For every method and linear solver:
+// solves (I - g P_pi) V = r_pi for each with Eigen's dense LU in long double, and takes V*
+// as the values of the policy with the best sum (a finite discounted model has a
+// deterministic stationary policy that attains V* in every state at once: common practice).
+// For every method and linear solver:
 //  - any finite value_error_bound holds: |values - V*| <= bound (whatever the outcome);
 //  - a converged run's deterministic picks lose at most policy_loss_bound against V*, with
 //    the picked policy's values taken from the enumeration;
@@ -66,30 +67,48 @@ struct Oracle {
   std::vector<std::vector<double>> values_of;  // Their values.
 };
 
+// V^pi by Eigen's dense LU in long double (x87 extended precision where available): the
+// solve's error grows with the largest value of the policy, and a poor policy's values
+// (5e9 with a reward of 1e6 at g = 0.9999) polluted the other states' values in double
+// (by 2e-3 on a state whose value is -10000 under every policy).
 std::vector<double> PolicyValues(const std::vector<std::vector<Slot>>& slots,
                                  const std::vector<int>& policy, double g) {
+  using Matrix = Eigen::Matrix<long double, Eigen::Dynamic, Eigen::Dynamic>;
+  using Vector = Eigen::Matrix<long double, Eigen::Dynamic, 1>;
   const int n = static_cast<int>(slots.size());
-  Eigen::MatrixXd a = Eigen::MatrixXd::Identity(n, n);
-  Eigen::VectorXd r = Eigen::VectorXd::Zero(n);
+  Matrix a = Matrix::Identity(n, n);
+  Vector r = Vector::Zero(n);
   for (int s = 0; s < n; ++s) {
     if (slots[s].empty()) continue;  // Terminal: V = 0.
     const Slot& slot = slots[s][policy[s]];
     r(s) = slot.reward;
-    for (const auto& [next, p] : slot.outcomes) a(s, next) -= g * p;
+    for (const auto& [next, p] : slot.outcomes) {
+      a(s, next) -= static_cast<long double>(g) * static_cast<long double>(p);
+    }
   }
-  const Eigen::VectorXd v = a.partialPivLu().solve(r);
-  return std::vector<double>(v.data(), v.data() + n);
+  const Vector v = a.partialPivLu().solve(r);
+  std::vector<double> out(n);
+  for (int s = 0; s < n; ++s) out[s] = static_cast<double>(v(s));
+  return out;
 }
 
 Oracle Enumerate(const std::vector<std::vector<Slot>>& slots, double g, bool maximize) {
   const int n = static_cast<int>(slots.size());
   Oracle o;
-  o.best.assign(n, maximize ? -INFINITY : INFINITY);
+  // V* is the value of the policy with the best sum of values: an optimal policy is best in
+  // every state at once, so it has the best sum, and any policy with that sum equals V*.
+  // Taking it from one policy, not the best entry per state over all policies, keeps the
+  // rounding of poor policies' solves out of V*.
+  size_t best_policy = 0;
+  long double best_sum = 0.0L;
   std::vector<int> policy(n, 0);
   for (;;) {
     std::vector<double> v = PolicyValues(slots, policy, g);
-    for (int s = 0; s < n; ++s) {
-      o.best[s] = maximize ? std::max(o.best[s], v[s]) : std::min(o.best[s], v[s]);
+    long double sum = 0.0L;
+    for (double x : v) sum += x;
+    if (o.values_of.empty() || (maximize ? sum > best_sum : sum < best_sum)) {
+      best_sum = sum;
+      best_policy = o.values_of.size();
     }
     o.policy_of.push_back(policy);
     o.values_of.push_back(std::move(v));
@@ -100,6 +119,7 @@ Oracle Enumerate(const std::vector<std::vector<Slot>>& slots, double g, bool max
     }
     if (s == n) break;
   }
+  o.best = o.values_of[best_policy];
   o.q.resize(n);
   for (int s = 0; s < n; ++s) {
     for (const Slot& slot : slots[s]) {
