@@ -54,11 +54,13 @@ Result<int64_t> BatchStage(const Json& body, const Plan& plan) {
   return ResolveStage(plan, texts[0], texts[1]);
 }
 
+// True iff the request body is not JSON at all: read again, only on error paths.
+bool BodyIsNotJson(const Request& req) { return ReadJson(req.body, JsonReadOptions{}).malformed; }
+
 // The problem for a request body that could not be decoded: malformed-json when the body is
-// not JSON at all (read again only on this error path), else what the status says.
+// not JSON at all, else what the status says.
 Problem BodyProblem(const Request& req, const Status& status) {
-  if (status.code() == StatusCode::kInvalidArgument &&
-      ReadJson(req.body, JsonReadOptions{}).malformed) {
+  if (status.code() == StatusCode::kInvalidArgument && BodyIsNotJson(req)) {
     return MakeProblem(status, ProblemKind::kMalformedJson);
   }
   return MakeProblem(status);
@@ -328,7 +330,7 @@ void StartSimulation(HttpContext& ctx, const Request& req, Response& res) {
   if (!start.ok()) return WriteProblem(res, start.status());
   if (!start->errors.empty()) {
     // A body that is not JSON is 400 malformed-json, as on the other routes (it was 422).
-    if (ReadJson(req.body, JsonReadOptions{}).malformed) {
+    if (BodyIsNotJson(req)) {
       return WriteProblem(res, MakeProblem(InvalidArgumentError(start->errors.front().message),
                                            ProblemKind::kMalformedJson, start->errors));
     }

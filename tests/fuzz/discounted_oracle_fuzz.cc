@@ -152,49 +152,47 @@ extern "C" int LLVMFuzzerTestOneInput(const uint8_t* data, size_t size) {
     if (terminal) continue;
     const int actions = 1 + in.Next() % 3;
     for (int a = 0; a < actions; ++a) {
-      if (a > 0 && in.Next() % 4 == 0) {  // A copy of the previous action: an exact tie.
+      if (a > 0 && in.Next() % 4 == 0) {
+        // A copy of the previous action (an exact tie): the same slot for the oracle, and
+        // the previous spec slot's reward and outcomes under this action.
         slots[s].push_back(slots[s].back());
-      } else {
-        const double slot_reward = in.Pick(kRewards);
-        const int outcomes = 1 + in.Next() % 3;
-        std::vector<double> weight(outcomes), outcome_reward(outcomes);
-        std::vector<int> next(outcomes);
-        double total = 0.0;
-        for (int k = 0; k < outcomes; ++k) {
-          next[k] = in.Next() % n;
-          weight[k] = in.Pick(kWeights);
-          outcome_reward[k] = in.Next() % 3 == 0 ? in.Pick(kRewards) : 0.0;
-          total += weight[k];
+        const mdp::SlotId prev = spec.num_slots() - 1;
+        spec.AddStateAction(a, spec.slot_reward[prev]);
+        for (mdp::OutcomeId o = spec.slot_first_outcome[prev];
+             o < spec.slot_first_outcome[prev + 1]; ++o) {
+          spec.AddOutcome(spec.outcome_next[o], spec.outcome_probability[o],
+                          spec.outcome_reward[o]);
         }
-        // The spec keeps the slot's reward and its outcomes' rewards apart, as documents do;
-        // the oracle adds their expectation.
-        Slot slot;
-        slot.reward = slot_reward;
-        slot.magnitude = std::fabs(slot_reward);
-        spec.AddStateAction(a, slot_reward);
-        for (int k = 0; k < outcomes; ++k) {
-          slot.outcomes.emplace_back(next[k], weight[k] / total);
-          slot.reward += weight[k] / total * outcome_reward[k];
-          slot.magnitude += weight[k] / total * std::fabs(outcome_reward[k]);
-          spec.AddOutcome(next[k], weight[k] / total, outcome_reward[k]);
-        }
-        slots[s].push_back(std::move(slot));
         continue;
       }
-      // The copy: the previous slot of this spec state, repeated under the next action.
-      const mdp::SlotId prev = spec.num_slots() - 1;
-      const double reward = spec.slot_reward[prev];
-      const mdp::OutcomeId o0 = spec.slot_first_outcome[prev];
-      const mdp::OutcomeId o1 = spec.slot_first_outcome[prev + 1];
-      spec.AddStateAction(a, reward);
-      for (mdp::OutcomeId o = o0; o < o1; ++o) {
-        spec.AddOutcome(spec.outcome_next[o], spec.outcome_probability[o],
-                        spec.outcome_reward[o]);
+      const double slot_reward = in.Pick(kRewards);
+      const int outcomes = 1 + in.Next() % 3;
+      std::vector<double> weight(outcomes), outcome_reward(outcomes);
+      std::vector<int> next(outcomes);
+      double total = 0.0;
+      for (int k = 0; k < outcomes; ++k) {
+        next[k] = in.Next() % n;
+        weight[k] = in.Pick(kWeights);
+        outcome_reward[k] = in.Next() % 3 == 0 ? in.Pick(kRewards) : 0.0;
+        total += weight[k];
       }
+      // The spec keeps the slot's reward and its outcomes' rewards apart, as documents do;
+      // the oracle adds their expectation.
+      Slot slot;
+      slot.reward = slot_reward;
+      slot.magnitude = std::fabs(slot_reward);
+      spec.AddStateAction(a, slot_reward);
+      for (int k = 0; k < outcomes; ++k) {
+        slot.outcomes.emplace_back(next[k], weight[k] / total);
+        slot.reward += weight[k] / total * outcome_reward[k];
+        slot.magnitude += weight[k] / total * std::fabs(outcome_reward[k]);
+        spec.AddOutcome(next[k], weight[k] / total, outcome_reward[k]);
+      }
+      slots[s].push_back(std::move(slot));
     }
   }
   mdp::Result<mdp::Model> model = mdp::BuildModel(spec);
-  if (!model.ok()) return 0;  // E.g. a state with no way out of a cycle of terminal rules.
+  if (!model.ok()) return 0;  // Refused by validation: nothing to compare.
   const mdp::Model& m = *model;
   if (m.num_states() != n) Fail("the model does not have the spec's states");
 
