@@ -149,6 +149,7 @@ struct HttpServer::Impl {
     t.body_limit = o.body_limit;
     t.idle_timeout_seconds = o.idle_timeout_seconds;
     t.large_request_niceness = o.large_request_niceness;
+    t.thread_slice_us = o.thread_slice_us;
     return t;
   }
 

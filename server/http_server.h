@@ -20,13 +20,16 @@ namespace mdp::server {
 
 struct HttpOptions {
   std::string host = "127.0.0.1";
-  int port = 8080;                         // 0: any free port (see HttpServer::port()).
+  int port = 8080;  // 0: any free port (see HttpServer::port()).
   // Threads that read requests and run handlers; 0: 1 per usable core, at least 2.
   int threads = 0;
   int64_t body_limit = int64_t{256} << 20;  // Bytes; larger bodies get 413.
-  int idle_timeout_seconds = 30;           // A connection silent this long is closed.
-  std::string token;                       // Non-empty: required as "Bearer <token>".
+  int idle_timeout_seconds = 30;            // A connection silent this long is closed.
+  std::string token;                        // Non-empty: required as "Bearer <token>".
   int large_request_niceness = 0;  // Added to the large-request thread's nice value, 0 to 19.
+  // Time slice of the threads that answer requests, in microseconds (thread_setup.h); 0: the
+  // kernel's default.
+  int thread_slice_us = 0;
 };
 
 class HttpServer {

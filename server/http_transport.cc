@@ -368,6 +368,8 @@ struct HttpTransport::Impl {
 
   void Work() {
     NameThisThread("mdp-http");
+    // A refusal leaves the kernel's default slice; serve.cc checks once at start and logs it.
+    if (options.thread_slice_us > 0) (void)SetThisThreadSlice(options.thread_slice_us);
     // Where this thread's recv() puts a request head: appending what arrived to the
     // connection's buffer copies only those bytes, where growing the buffer by kReadBytes
     // zero-filled 256 KiB per read (a quarter of the server's time under query load).

@@ -51,6 +51,9 @@ struct TransportOptions {
   // Added to the large-request threads' nice value (thread_setup.h), 0 to 19: parsing a
   // large upload yields the CPU to the threads answering queries.
   int large_request_niceness = 0;
+  // The time slice the request threads ask the kernel for, in microseconds (thread_setup.h,
+  // SetThisThreadSlice); 0: the kernel's default.
+  int thread_slice_us = 0;
 };
 
 // A complete request: method, target, path (percent-decoded), params (the query string,

@@ -176,6 +176,13 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
     spdlog::warn("{}: solves and large uploads run at the priority of the HTTP threads",
                  nice.message());
   }
+  if (config.http_slice_us > 0) {
+    if (Status slice = CheckThreadSlice(config.http_slice_us); slice.ok()) {
+      http.thread_slice_us = config.http_slice_us;
+    } else {
+      spdlog::info("{}: the HTTP threads keep the kernel's default time slice", slice.message());
+    }
+  }
 
   std::unique_ptr<Store> store;
   if (config.memory_store) {
@@ -248,8 +255,10 @@ int RunServe(const ServerConfig& config, std::ostream& out) {
     if (!written.ok()) spdlog::error("{}", written.message());
   }
   const std::string base = "http://" + http.host + ":" + std::to_string(server.port());
-  spdlog::info("listening on {} (store: {})", base,
-               config.memory_store ? "memory" : config.data_dir);
+  spdlog::info("listening on {} (store: {}; HTTP threads' time slice: {})", base,
+               config.memory_store ? "memory" : config.data_dir,
+               http.thread_slice_us > 0 ? std::to_string(http.thread_slice_us) + " us"
+                                        : std::string("the kernel's default"));
   PrintExamples(base, loaded, out);
 
   std::thread warmer;

@@ -35,6 +35,33 @@ void BecomeBackgroundThread(const char* name, int increment);
 // its own, so the caller's priority is unchanged.
 Status CheckThreadNiceness(int increment);
 
+// Time slices. Linux 6.12 and later let a thread ask its scheduler (EEVDF) for a shorter time
+// slice than the default (which grows with the CPU count: 1.4 ms on the 2-core host, as
+// `se.slice` in /proc/PID/task/TID/sched shows) without privilege: a waking thread with a shorter
+// slice than the thread that runs on its CPU then preempts it at once, where with equal slices it
+// often waits for the running one's slice to end. The threads that answer queries ask for the
+// shortest, so that a query that arrives while another program (or a solve at the same
+// priority) holds the CPU waits microseconds, not a slice. On the 2-core host with wrk's 2
+// threads and the server's 2 HTTP threads sharing both cores, 5 alternating rounds of 8 s:
+// p99 1.36-1.81 ms with 0.1 ms slices against 1.89-2.28 ms with the default, at the same
+// requests per second (bench_queries.sh, BENCHMARKS.md has the full run).
+inline constexpr int kMinSliceMicroseconds = 100;  // The kernel's bounds on a custom slice.
+inline constexpr int kMaxSliceMicroseconds = 100000;
+
+// Asks for time slices of `microseconds` (kMinSliceMicroseconds to kMaxSliceMicroseconds)
+// for the calling thread; its policy and nice value are kept. kInvalidArgument out of range;
+// kUnavailable if the kernel refuses (a seccomp filter) or has no per-thread slices (before
+// 6.12: it accepts the request and ignores it, which the slice it then reports shows).
+Status SetThisThreadSlice(int microseconds);
+
+// The calling thread's time slice as the kernel reports it, in microseconds (rounded down);
+// 0 when the kernel reports none (before 6.12) or refuses to say.
+int64_t ThisThreadSliceMicroseconds();
+
+// Whether SetThisThreadSlice(microseconds) works here: tries it on a short-lived thread of its
+// own, so the caller's slice is unchanged.
+Status CheckThreadSlice(int microseconds);
+
 // The OpenMP threads of a solve wait for each other at the end of every parallel loop, by
 // spinning first and then sleeping. The runtime's default spin (300,000 rounds when neither
 // variable below is set) burns the CPU a busy host's other threads need: beside 2 busy loops

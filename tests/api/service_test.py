@@ -2294,6 +2294,55 @@ def scenario_k(api, server):
             {k: sorted(by_name.get(k, [])) for k in expected} == expected,
             "job %s %s, threads %s" % (job_id, status, by_name))
 
+    # Time slices: the threads answering requests ask for 100 us (--http-slice-us, default
+    # 100) where the kernel has per-thread slices (Linux 6.12 and later); the others keep the
+    # kernel's default. On older kernels every thread keeps the default and the log says so.
+    slices = thread_slices(server.proc.pid)
+    by_name = {}
+    for name, slice_ns in slices.values():
+        by_name.setdefault(name, set()).add(slice_ns)
+    default = by_name.get("mdp-solve", {None})
+    with open(server.log.name, "rb") as f:
+        log = f.read().decode("utf-8", "replace")
+    if kernel_has_thread_slices():
+        R.check("k: the mdp-http thread runs in 100 us slices, the solve and upload threads in "
+                "the kernel's default, and the start log says so",
+                by_name.get("mdp-http") == {100000} and len(default) == 1 and
+                default != {100000} and by_name.get("mdp-upload") == default and
+                "HTTP threads' time slice: 100 us" in log, "%s\n%s" % (by_name, log[:400]))
+    else:
+        R.check("k: this kernel has no per-thread slices: every thread keeps the default and "
+                "the log says so", by_name.get("mdp-http") == default and
+                "keep the kernel's default time slice" in log, "%s\n%s" % (by_name, log[:400]))
+
+
+def kernel_has_thread_slices():
+    """Whether the running Linux kernel (6.12 and later) lets a thread set its time slice."""
+    release = os.uname().release.split("-")[0].split(".")
+    try:
+        return (int(release[0]), int(release[1])) >= (6, 12)
+    except (IndexError, ValueError):
+        return False
+
+
+def thread_slices(pid):
+    """{thread id: (name, time slice in ns or None)} of process `pid`, from /proc."""
+    out = {}
+    for task in glob.glob("/proc/%d/task/*" % pid):
+        try:
+            with open(os.path.join(task, "comm")) as f:
+                name = f.read().strip()
+            with open(os.path.join(task, "sched")) as f:
+                lines = f.read().splitlines()
+        except OSError:
+            continue  # The thread ended meanwhile, or no scheduler statistics.
+        slice_ns = None
+        for line in lines:
+            if line.startswith("se.slice"):
+                slice_ns = int(line.split(":")[1])
+        out[int(os.path.basename(task))] = (name, slice_ns)
+    return out
+
 
 def openmp_environment(pid):
     """The OpenMP variables in the environment process `pid` was executed with."""
@@ -2307,6 +2356,13 @@ def scenario_openmp(server):
     env = openmp_environment(server.proc.pid)
     R.check("openmp: OMP_WAIT_POLICY=passive given: kept, no GOMP_SPINCOUNT added",
             env == ["OMP_WAIT_POLICY=passive"], str(env))
+    # This server has --http-slice-us 0: its HTTP threads keep the kernel's default slice.
+    slices = {}
+    for name, slice_ns in thread_slices(server.proc.pid).values():
+        slices.setdefault(name, set()).add(slice_ns)
+    R.check("openmp: with --http-slice-us 0 the mdp-http threads keep the slice of the "
+            "solve thread (the kernel's default)", len(slices.get("mdp-http", ())) == 1 and
+            slices.get("mdp-http") == slices.get("mdp-solve"), str(slices))
     code, _ = server.terminate()
     R.check("openmp: the server stops with exit code 0", code == 0, str(code))
 
@@ -2385,7 +2441,7 @@ def main():
                                                       "--solver-threads", "2",
                                                       "--log-level", "info"],
                                    {"GOMP_SPINCOUNT": None, "OMP_WAIT_POLICY": None}))
-            scenario_openmp(server("openmp-kept", ["--memory-store"],
+            scenario_openmp(server("openmp-kept", ["--memory-store", "--http-slice-us", "0"],
                                    {"GOMP_SPINCOUNT": None, "OMP_WAIT_POLICY": "passive"}))
         except Exception as e:  # noqa: BLE001 - reported as a failure, servers still stopped
             import traceback

@@ -340,6 +340,48 @@ TEST(ThreadSetupTest, NicenessIsCappedAt19AndIncrementsAreChecked) {
   EXPECT_EQ(CheckThreadNiceness(-1).code(), StatusCode::kInvalidArgument);
 }
 
+// Per-thread time slices (Linux 6.12 and later). Where the kernel reports a slice for this
+// thread (earlier kernels report 0 for the fair policies), setting one must take effect on
+// the calling thread alone and keep its nice value; where it reports none, the request must
+// be refused as unavailable rather than pass for done. Out-of-range requests are refused
+// either way and change nothing.
+TEST(ThreadSetupTest, TimeSlicesArePerThreadAndChecked) {
+  const int64_t before = ThisThreadSliceMicroseconds();
+  Status set = Status::Ok();
+  Status too_short = Status::Ok();
+  Status too_long = Status::Ok();
+  int64_t after_set = -1;
+  int64_t after_bad = -1;
+  int nice_before = -100;
+  int nice_after = -100;
+  std::thread t([&] {
+    (void)RaiseThisThreadNiceness(3);
+    nice_before = ThisThreadNiceness();
+    set = SetThisThreadSlice(250);
+    after_set = ThisThreadSliceMicroseconds();
+    nice_after = ThisThreadNiceness();
+    too_short = SetThisThreadSlice(kMinSliceMicroseconds - 1);
+    too_long = SetThisThreadSlice(kMaxSliceMicroseconds + 1);
+    after_bad = ThisThreadSliceMicroseconds();
+  });
+  t.join();
+  EXPECT_EQ(too_short.code(), StatusCode::kInvalidArgument);
+  EXPECT_EQ(too_long.code(), StatusCode::kInvalidArgument);
+  EXPECT_EQ(CheckThreadSlice(50).code(), StatusCode::kInvalidArgument);
+  EXPECT_EQ(ThisThreadSliceMicroseconds(), before);  // Only the thread that asked changed.
+  if (before > 0) {
+    EXPECT_TRUE(set.ok()) << set.message();
+    EXPECT_EQ(after_set, 250);
+    EXPECT_EQ(after_bad, 250);
+    EXPECT_EQ(nice_after, nice_before);
+    EXPECT_NE(before, 250);  // Else the check above could not tell a change from none.
+    EXPECT_TRUE(CheckThreadSlice(kMinSliceMicroseconds).ok());
+  } else {
+    EXPECT_EQ(set.code(), StatusCode::kUnavailable) << set.message();
+    EXPECT_EQ(CheckThreadSlice(kMinSliceMicroseconds).code(), StatusCode::kUnavailable);
+  }
+}
+
 TEST(ProblemTest, MapsStatusesToHttpAndRfc9457Bodies) {
   struct Case {
     Status status;
