@@ -28,7 +28,9 @@
 # BENCH_QUERY_RUNS ("64:1 16:1 64:2": one query run per CONNECTIONS:WRK_THREADS pair, wrk's
 # keep-alive connections and its threads; 64 connections saturate the 2 cores, 16 keep fewer
 # requests in flight; with 2 wrk threads the load generator competes with the servers for
-# both cores, with 1 it takes at most one core's worth),
+# both cores, with 1 it takes at most one core's worth), BENCH_QUERY_SLICES ("100 0": the
+# --http-slice-us values measured in each query round, the server's default first, which the
+# targets judge; 0 is the kernel's default slice),
 # BENCH_SOLVE_LOAD_STATES (250000: the model solve_load_bench.py solves while it queries),
 # BENCH_KEEP=1 keeps the run directory, BENCH_SKIP_QUERIES=1 (also skips the queries while a
 # solve runs), BENCH_SKIP_MEMORY=1.
@@ -74,6 +76,7 @@ EXTRA_METHODS=${BENCH_EXTRA_METHODS:-value_iteration,policy_iteration,gauss_seid
 INGEST_STATES=${BENCH_INGEST_STATES:-100000}
 MEMORY_STATES=${BENCH_MEMORY_STATES:-$STATES}
 QUERY_RUNS=${BENCH_QUERY_RUNS:-64:1 16:1 64:2}
+QUERY_SLICES=${BENCH_QUERY_SLICES:-100 0}
 SOLVE_LOAD_STATES=${BENCH_SOLVE_LOAD_STATES:-250000}
 for spec in $QUERY_RUNS; do  # Checked now, not after the long steps.
   if ! [[ $spec =~ ^[1-9][0-9]*:[1-9][0-9]*$ ]]; then
@@ -213,7 +216,8 @@ if [[ ${BENCH_SKIP_QUERIES:-0} != 1 ]]; then
       "(scripts/bench_queries.sh)"
     run env MDPSERVE="$BIN/mdpserve" BENCH_KEEP=0 BENCH_SECONDS="$QUERY_SECONDS" \
       BENCH_ROUNDS="$QUERY_ROUNDS" BENCH_CONNECTIONS="$connections" \
-      BENCH_WRK_THREADS="$wrk_threads" bash "$ROOT/scripts/bench_queries.sh" \
+      BENCH_WRK_THREADS="$wrk_threads" BENCH_HTTP_SLICES="$QUERY_SLICES" \
+      bash "$ROOT/scripts/bench_queries.sh" \
       >"$WORK/$label.txt" 2>"$WORK/$label.err"
     sample_load "$label"
   done

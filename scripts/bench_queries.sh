@@ -16,7 +16,14 @@
 #                             server's threads compete for both cores: see BENCHMARKS.md)
 #   BENCH_HTTP_THREADS="0"    mdpserve --http-threads values to try, space separated (0: the
 #                             server's automatic count)
-#   BENCH_ROUNDS=1            nginx/mdpserve pairs per --http-threads value (alternating)
+#   BENCH_HTTP_SLICES="100"   mdpserve --http-slice-us values to compare, space separated (0:
+#                             the kernel's default slice; 100 is the server's default). One
+#                             server per value runs at a time for each --http-threads value,
+#                             and each round measures nginx and then each of them in turn
+#   BENCH_ROUNDS=1            rounds per --http-threads value (nginx, then each slice's server)
+#   BENCH_WARMUP_SECONDS=2    an unrecorded wrk run against each server before the rounds
+#                             (0: none), so that round 1 does not also measure the servers'
+#                             first moments under load
 #   BENCH_NGINX_WORKERS=2     nginx worker processes
 #   MDPSERVE=build/bin/mdpserve
 #   BENCH_MODEL=api-schema/examples/pump-maintenance.json
@@ -39,7 +46,9 @@ SECONDS_PER_RUN=${BENCH_SECONDS:-10}
 CONNECTIONS=${BENCH_CONNECTIONS:-64}
 WRK_THREADS=${BENCH_WRK_THREADS:-1}
 HTTP_THREADS_LIST=${BENCH_HTTP_THREADS:-0}
+HTTP_SLICES_LIST=${BENCH_HTTP_SLICES:-100}
 ROUNDS=${BENCH_ROUNDS:-1}
+WARMUP_SECONDS=${BENCH_WARMUP_SECONDS:-2}
 NGINX_WORKERS=${BENCH_NGINX_WORKERS:-2}
 MDPSERVE=${MDPSERVE:-$ROOT/build/bin/mdpserve}
 MODEL=${BENCH_MODEL:-$ROOT/api-schema/examples/pump-maintenance.json}
@@ -54,9 +63,15 @@ die() { echo "bench_queries: $*" >&2; exit 2; }
 for n in SECONDS_PER_RUN CONNECTIONS WRK_THREADS ROUNDS NGINX_WORKERS; do
   [[ ${!n} =~ ^[1-9][0-9]*$ ]] || die "$n must be a positive integer, not '${!n}'"
 done
+[[ $WARMUP_SECONDS =~ ^[0-9]+$ ]] ||
+  die "BENCH_WARMUP_SECONDS must be an integer >= 0, not '$WARMUP_SECONDS'"
 for t in $HTTP_THREADS_LIST; do
   [[ $t =~ ^[0-9]+$ ]] || die "BENCH_HTTP_THREADS must list integers >= 0, not '$t'"
 done
+for t in $HTTP_SLICES_LIST; do
+  [[ $t =~ ^[0-9]+$ ]] || die "BENCH_HTTP_SLICES must list integers >= 0, not '$t'"
+done
+[[ -n ${HTTP_SLICES_LIST// /} ]] || die "BENCH_HTTP_SLICES must list at least one value"
 (( CONNECTIONS >= WRK_THREADS )) || die "BENCH_CONNECTIONS must be at least BENCH_WRK_THREADS"
 for n in SERVER_CPUS WRK_CPUS; do
   [[ -z ${!n} || ${!n} =~ ^[0-9]+([-,][0-9]+)*$ ]] ||
@@ -139,12 +154,12 @@ wait_http_ok() {
 
 # --- mdpserve ----------------------------------------------------------------------------
 MDP_PID="" MDP_PORT="" MODEL_ID=""
-start_mdpserve() {  # $1 = --http-threads
-  local threads=$1 dir="$WORK/mdpserve-$1"
+start_mdpserve() {  # $1 = --http-threads, $2 = --http-slice-us
+  local threads=$1 slice=$2 dir="$WORK/mdpserve-$1-$2"
   mkdir -p "$dir"
   (on_cpus "$SERVER_CPUS" "$MDPSERVE" serve --listen 127.0.0.1:0 --port-file "$dir/port" \
-    --memory-store --preload "$MODEL" --log-level warn --http-threads "$threads") \
-    >"$dir/stdout" 2>"$dir/stderr" &
+    --memory-store --preload "$MODEL" --log-level warn --http-threads "$threads" \
+    --http-slice-us "$slice") >"$dir/stdout" 2>"$dir/stderr" &
   MDP_PID=$!
   PIDS+=("$MDP_PID")
   for _ in $(seq 300); do  # 30 s for the preload solve to finish.
@@ -157,14 +172,15 @@ start_mdpserve() {  # $1 = --http-threads
   if [[ -z $MDP_PORT || -z $MODEL_ID ]] ||
      ! wait_http_ok "$MDP_PID" "http://127.0.0.1:$MDP_PORT/readyz"; then
     cat "$dir/stdout" "$dir/stderr" >&2 || true
-    die "mdpserve (--http-threads $threads) did not start"
+    die "mdpserve (--http-threads $threads --http-slice-us $slice) did not start"
   fi
 }
 
-stop_mdpserve() {
-  stop_pid "$MDP_PID"
-  forget_pid "$MDP_PID"
-  MDP_PID=""
+stop_mdpserve() {  # $1 = PID (default: MDP_PID)
+  local pid=${1:-$MDP_PID}
+  stop_pid "$pid"
+  forget_pid "$pid"
+  [[ $pid != "$MDP_PID" ]] || MDP_PID=""
 }
 
 # State names of the model, in document order: the query rotation.
@@ -191,11 +207,13 @@ build_type=$(grep -s '^CMAKE_BUILD_TYPE' "$(dirname "$MDPSERVE")/../CMakeCache.t
 echo "mdpserve:   $MDPSERVE${build_type:+ ($build_type build)}"
 echo "model:      $MODEL (${#STATES[@]} states)"
 echo "load:       wrk -t$WRK_THREADS -c$CONNECTIONS -d${SECONDS_PER_RUN}s --latency, keep-alive"
+echo "slices:     --http-slice-us $HTTP_SLICES_LIST (0: the kernel's default)"
 echo "cpus:       servers ${SERVER_CPUS:-not pinned}, wrk ${WRK_CPUS:-not pinned}"
 
 # --- The answer nginx serves: one real best-action answer from mdpserve -------------------
 first_threads=${HTTP_THREADS_LIST%% *}
-start_mdpserve "$first_threads"
+first_slice=${HTTP_SLICES_LIST%% *}
+start_mdpserve "$first_threads" "$first_slice"
 mkdir -p "$WORK/nginx/www" "$WORK/nginx/tmp"
 # Fetch every state's answer once (checks they all answer 200), then let nginx serve the
 # answer of median size, so both servers send bodies of the same typical length.
@@ -377,24 +395,56 @@ EOF
   ) || die "cannot parse the wrk output $out"
 }
 
-# --- Runs: nginx then mdpserve, alternating, for each --http-threads value ---------------
-ROWS=()  # "server threads round rps p50 p99 non2xx sock stalled requests ovf cpu ratio"
+# An unrecorded wrk run of WARMUP_SECONDS against port $1, path $2.
+warm_up() {
+  local wrk_pid rc=0
+  (on_cpus "$WRK_CPUS" timeout $((WARMUP_SECONDS + 30)) wrk -t"$WRK_THREADS" -c"$CONNECTIONS" \
+    -d"${WARMUP_SECONDS}s" "http://127.0.0.1:$1$2") >"$WORK/warm-up.txt" 2>&1 &
+  wrk_pid=$!
+  PIDS+=("$wrk_pid")
+  wait "$wrk_pid" || rc=$?
+  forget_pid "$wrk_pid"
+  (( rc == 0 )) || { cat "$WORK/warm-up.txt" >&2; die "the warm-up run against port $1 failed"; }
+}
+
+# --- Runs: nginx, then each slice's mdpserve, round by round, per --http-threads value ----
+# The servers of one --http-threads value run side by side (only the one measured is busy),
+# so that each round compares runs made seconds apart.
+ROWS=()  # "server threads slice round rps p50 p99 non2xx sock stalled requests ovf cpu ratio"
 for threads in $HTTP_THREADS_LIST; do
-  if [[ -z $MDP_PID ]]; then start_mdpserve "$threads"; fi
+  declare -A SLICE_PID=() SLICE_PORT=() SLICE_MODEL=()
+  for slice in $HTTP_SLICES_LIST; do
+    if [[ -z $MDP_PID ]]; then start_mdpserve "$threads" "$slice"; fi
+    SLICE_PID[$slice]=$MDP_PID SLICE_PORT[$slice]=$MDP_PORT SLICE_MODEL[$slice]=$MODEL_ID
+    MDP_PID=""
+  done
+  if (( WARMUP_SECONDS > 0 )); then
+    echo "-- warm-up, ${WARMUP_SECONDS} s per server (not recorded) ..." >&2
+    warm_up "$NGINX_PORT" "/answer.json"
+    for slice in $HTTP_SLICES_LIST; do
+      warm_up "${SLICE_PORT[$slice]}" "/v1/models/${SLICE_MODEL[$slice]}/policy?state=${STATES[0]}"
+    done
+  fi
   for round in $(seq "$ROUNDS"); do
     echo "-- round $round, mdpserve --http-threads $threads: nginx ..." >&2
     run_wrk "nginx-t$threads-r$round" "$NGINX_PID" "$NGINX_PORT" "/answer.json"
     read -r n_rps n_p50 n_p99 n_non2xx n_sock n_req n_ovf n_cpu n_stall <<<"$RESULT"
     kill -0 "$NGINX_PID" 2>/dev/null || die "nginx died during the run"
-    echo "-- round $round, mdpserve --http-threads $threads: mdpserve ..." >&2
-    run_wrk "mdpserve-t$threads-r$round" "$MDP_PID" "$MDP_PORT" "${MDP_PATHS[@]}"
-    read -r m_rps m_p50 m_p99 m_non2xx m_sock m_req m_ovf m_cpu m_stall <<<"$RESULT"
-    kill -0 "$MDP_PID" 2>/dev/null || die "mdpserve died during the run"
-    ratio=$(python3 -c "print(f'{$m_rps / max($n_rps, 1):.3f}')")
-    ROWS+=("nginx - $round $n_rps $n_p50 $n_p99 $n_non2xx $n_sock $n_stall $n_req $n_ovf $n_cpu -")
-    ROWS+=("mdpserve $threads $round $m_rps $m_p50 $m_p99 $m_non2xx $m_sock $m_stall $m_req $m_ovf $m_cpu $ratio")
+    ROWS+=("nginx - - $round $n_rps $n_p50 $n_p99 $n_non2xx $n_sock $n_stall $n_req $n_ovf $n_cpu -")
+    for slice in $HTTP_SLICES_LIST; do
+      echo "-- round $round, mdpserve --http-threads $threads --http-slice-us $slice ..." >&2
+      paths=()
+      for s in "${STATES[@]}"; do paths+=("/v1/models/${SLICE_MODEL[$slice]}/policy?state=$s"); done
+      run_wrk "mdpserve-t$threads-s$slice-r$round" "${SLICE_PID[$slice]}" "${SLICE_PORT[$slice]}" \
+        "${paths[@]}"
+      read -r m_rps m_p50 m_p99 m_non2xx m_sock m_req m_ovf m_cpu m_stall <<<"$RESULT"
+      kill -0 "${SLICE_PID[$slice]}" 2>/dev/null || die "mdpserve died during the run"
+      ratio=$(python3 -c "print(f'{$m_rps / max($n_rps, 1):.3f}')")
+      ROWS+=("mdpserve $threads $slice $round $m_rps $m_p50 $m_p99 $m_non2xx $m_sock $m_stall $m_req $m_ovf $m_cpu $ratio")
+    done
   done
-  stop_mdpserve
+  for slice in $HTTP_SLICES_LIST; do stop_mdpserve "${SLICE_PID[$slice]}"; done
+  unset SLICE_PID SLICE_PORT SLICE_MODEL
 done
 
 # --- Report ------------------------------------------------------------------------------
@@ -404,7 +454,8 @@ target_ratio, target_p99 = float(sys.argv[1]), int(sys.argv[2])
 rows = [r.split() for r in sys.argv[3:]]
 print()
 print("== results")
-print("   ratio    mdpserve req/s over the req/s of the nginx run just before it")
+print("   slice    mdpserve's --http-slice-us (0: the kernel's default time slice)")
+print("   ratio    mdpserve req/s over the req/s of the round's nginx run")
 print("   sockerr  wrk socket errors (connect, read, write, timeout)")
 print("   stalled  open connections that got no byte from the server for 1/3 of the run;")
 print("            wrk's latencies cannot see them, so they count as errors here")
@@ -412,13 +463,14 @@ print("   lsn-ovf  connections the kernel dropped on a full listen queue (host-w
 print("   cpu/req  server CPU microseconds per answered request")
 print("   p50/p99  wrk's, which adds samples for the requests a stall held back (its")
 print("            coordinated-omission correction): one 1 s stall can move p99 a lot")
-head = (f'{"server":<9} {"http-thr":>8} {"round":>5} {"req/s":>8} {"p50 ms":>7} {"p99 ms":>8} '
+head = (f'{"server":<9} {"http-thr":>8} {"slice":>6} {"round":>5} {"req/s":>8} {"p50 ms":>7} '
+        f'{"p99 ms":>8} '
         f'{"non-2xx":>7} {"sockerr":>7} {"stalled":>7} {"requests":>9} {"lsn-ovf":>7} '
         f'{"cpu/req":>7} {"ratio":>6}  targets')
 print(head)
 print("-" * len(head))
 by_threads = {}
-for server, thr, rnd, rps, p50, p99, non2xx, sock, stall, req, ovf, cpu, ratio in rows:
+for server, thr, slc, rnd, rps, p50, p99, non2xx, sock, stall, req, ovf, cpu, ratio in rows:
     verdict = ""
     errors = int(non2xx) + int(sock) + int(stall)
     if server == "mdpserve":
@@ -427,18 +479,18 @@ for server, thr, rnd, rps, p50, p99, non2xx, sock, stall, req, ovf, cpu, ratio i
         if int(p99) >= target_p99: miss.append(f"p99>={target_p99/1000:g}ms")
         if errors > 0: miss.append("errors")
         verdict = "ok" if not miss else "MISS " + ",".join(miss)
-        by_threads.setdefault(thr, []).append((float(ratio), int(p99), errors))
-    print(f'{server:<9} {thr:>8} {rnd:>5} {int(rps):>8} {int(p50)/1000:>7.3f} '
+        by_threads.setdefault((thr, slc), []).append((float(ratio), int(p99), errors))
+    print(f'{server:<9} {thr:>8} {slc:>6} {rnd:>5} {int(rps):>8} {int(p50)/1000:>7.3f} '
           f'{int(p99)/1000:>8.3f} {non2xx:>7} {sock:>7} {stall:>7} {req:>9} {ovf:>7} '
           f'{float(cpu):>7.1f} {ratio:>6}  {verdict}')
 print()
 print(f"== targets: ratio >= {target_ratio}, mdpserve p99 < {target_p99/1000:g} ms, "
       "zero errors (non-2xx + socket errors + stalled connections)")
-for thr, runs in by_threads.items():
+for (thr, slc), runs in by_threads.items():
     ratio = statistics.median(r for r, _, _ in runs)
     p99 = max(p for _, p, _ in runs)
     errors = sum(e for _, _, e in runs)
-    print(f"--http-threads {thr:>4}: median ratio {ratio:.3f} "
+    print(f"--http-threads {thr:>4} --http-slice-us {slc:>6}: median ratio {ratio:.3f} "
           f"[{'holds' if ratio >= target_ratio else 'MISSED'}], "
           f"worst p99 {p99/1000:.3f} ms [{'holds' if p99 < target_p99 else 'MISSED'}], "
           f"errors {errors} [{'holds' if errors == 0 else 'MISSED'}]")
