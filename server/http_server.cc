@@ -15,6 +15,7 @@
 #include "server/canonical.h"
 #include "server/http_context.h"
 #include "server/http_transport.h"
+#include "server/log_budget.h"
 #include "solver/options.h"
 
 namespace mdp::server {
@@ -219,20 +220,33 @@ struct HttpServer::Impl {
     Record(req, "unmatched", unmatched, status, start);
   }
 
-  static void Record(const httplib::Request& req, const char* route_name,
-                     HttpMetrics::RequestHandle* handle, int status,
-                     std::chrono::steady_clock::time_point start) {
-    const double seconds =
-        std::chrono::duration<double>(std::chrono::steady_clock::now() - start).count();
+  void Record(const httplib::Request& req, const char* route_name,
+              HttpMetrics::RequestHandle* handle, int status,
+              std::chrono::steady_clock::time_point start) {
+    const auto now = std::chrono::steady_clock::now();
+    const double seconds = std::chrono::duration<double>(now - start).count();
     HttpMetrics::Record(handle, status, seconds);
     // Answered requests at debug: at the default level (info) a line per query cost the
     // query benchmark p99 1.50-1.85 ms against 1.11-1.31 ms (4 alternating rounds, wrk -t1
     // -c64, log to a file) and wrote 5 MB/s; /metrics counts them by route and status.
-    const spdlog::level::level_enum level = status >= 500   ? spdlog::level::warn
-                                            : status >= 400 ? spdlog::level::info
-                                                            : spdlog::level::debug;
-    spdlog::log(level, "{} {} {} {}us", req.method, route_name, status,
-                static_cast<int64_t>(seconds * 1e6));
+    // 501 and 505 answer requests the transport cannot read: the client's fault, like a 4xx.
+    const bool server_fault = status >= 500 && status != 501 && status != 505;
+    const bool refused = !server_fault && status >= 400;
+    const spdlog::level::level_enum level = server_fault ? spdlog::level::warn
+                                            : refused    ? spdlog::level::info
+                                                         : spdlog::level::debug;
+    if (!spdlog::should_log(level)) return;
+    int64_t suppressed = 0;
+    if (refused && !refused_log.Take(now, &suppressed)) return;
+    if (suppressed > 0) {
+      spdlog::log(level,
+                  "{} {} {} {}us ({} more refused requests since the last such line "
+                  "were not logged; /metrics counts them)",
+                  req.method, route_name, status, static_cast<int64_t>(seconds * 1e6), suppressed);
+    } else {
+      spdlog::log(level, "{} {} {} {}us", req.method, route_name, status,
+                  static_cast<int64_t>(seconds * 1e6));
+    }
   }
 
   struct CompiledRoute {
@@ -243,6 +257,8 @@ struct HttpServer::Impl {
   HttpContext context;
   HttpOptions options;
   HttpMetrics metrics;
+  // Lines for refused requests: 20 at once, then 10 a second (log_budget.h).
+  LogBudget refused_log{10.0, 20.0};
   std::string token_digest;
   HttpMetrics::RequestHandle* unmatched;
   std::vector<CompiledRoute> routes;

@@ -2,7 +2,8 @@
 // transport (http_transport.h: an epoll set served by a fixed pool of threads, which idle
 // connections do not hold), it checks the bearer token, body size and content type, routes
 // requests to thin handlers (routes.cc), records per-route metrics and logs one line per
-// request (at debug when answered with 2xx or 3xx, info for 4xx, warn for 5xx). Solves never
+// request (at debug when answered with 2xx or 3xx; info when refused: 4xx, 501 and 505, at
+// most as many as a LogBudget allows (log_budget.h); warn for the other 5xx). Solves never
 // run on its threads. Serve() blocks; Stop() may be called from any
 // thread.
 #ifndef MDP_SERVER_HTTP_SERVER_H_

@@ -36,15 +36,17 @@ void BecomeBackgroundThread(const char* name, int increment);
 Status CheckThreadNiceness(int increment);
 
 // Time slices. Linux 6.12 and later let a thread ask its scheduler (EEVDF) for a shorter time
-// slice than the default (which grows with the CPU count: 1.4 ms on the 2-core host, as
-// `se.slice` in /proc/PID/task/TID/sched shows) without privilege: a waking thread with a shorter
-// slice than the thread that runs on its CPU then preempts it at once, where with equal slices it
-// often waits for the running one's slice to end. The threads that answer queries ask for the
-// shortest, so that a query that arrives while another program (or a solve at the same
-// priority) holds the CPU waits microseconds, not a slice. On the 2-core host with wrk's 2
-// threads and the server's 2 HTTP threads sharing both cores, 5 alternating rounds of 8 s:
-// p99 1.36-1.81 ms with 0.1 ms slices against 1.89-2.28 ms with the default, at the same
-// requests per second (bench_queries.sh, BENCHMARKS.md has the full run).
+// slice than the default (1.4 ms on the 2-core host, as `se.slice` in
+// /proc/PID/task/TID/sched shows), without privilege. A thread with a shorter
+// slice has an earlier deadline, so when it wakes it can preempt the thread running on its
+// CPU instead of waiting for that one's slice to end. The threads that answer queries ask for
+// the shortest, so that a query that arrives while another busy thread holds the CPU waits
+// less. On the 2-core host, wrk with 2 threads and 64 connections sharing both cores with the
+// server: p99 1.36-1.81 ms with 0.1 ms slices against 1.89-2.28 ms with the default, at the
+// same requests per second (5 rounds of 8 s, one server whose HTTP threads' slice was switched
+// between runs); scripts/bench_queries.sh with BENCH_HTTP_SLICES="100 0" (a server per value,
+// 3 rounds of 10 s after a warm-up) 1.71-1.88 against 2.27-3.20 ms. Beside a CPU-bound solve
+// at the same priority it did little (DEVELOPERS.md): the nice value handles that case.
 inline constexpr int kMinSliceMicroseconds = 100;  // The kernel's bounds on a custom slice.
 inline constexpr int kMaxSliceMicroseconds = 100000;
 

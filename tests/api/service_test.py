@@ -54,6 +54,7 @@ models and seeded random models generated here.
 """
 
 import argparse
+import collections
 import glob
 import http.client
 import json
@@ -2265,6 +2266,44 @@ def scenario_k(api, server):
     R.check("k: --log-level info logs the 404 and the 429s, not the answered requests",
             "GET /v1/models/{id} 404" in log and " 429 " in log and " 200 " not in log and
             " 201 " not in log, log[-600:])
+
+    # A flood of refused requests writes few log lines (server/log_budget.h: 20 at once, then
+    # 10 a second); the next refused request's line says how many were left out, and /metrics
+    # counts every one. 500 pipelined requests for an unknown path on one connection.
+    def unmatched_404s():
+        resp = raw_exchange(port, b"GET /metrics HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n")
+        return metric_samples((resp.body or b"").decode()).get(
+            ("mdpserve_http_requests_total",
+             (("method", "other"), ("route", "unmatched"), ("status", "404"))), 0)
+    flood = 500
+    counted_before = unmatched_404s()
+    with open(server.log.name, "rb") as f:
+        log_start = len(f.read())
+    started = time.monotonic()
+    request = b"GET /v1/k-flood HTTP/1.1\r\nHost: x\r\n\r\n"
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(request * (flood - 1) + request.replace(b"\r\n\r\n",
+                                                          b"\r\nConnection: close\r\n\r\n"))
+        answers = [r[0] for r in split_responses(read_response(s, whole=True))]
+    elapsed = time.monotonic() - started
+    time.sleep(0.3)  # Three lines' worth of budget again.
+    raw_exchange(port, b"GET /v1/k-flood-after HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n")
+    time.sleep(0.2)
+    with open(server.log.name, "rb") as f:
+        new_lines = f.read()[log_start:].decode("utf-8", "replace").splitlines()
+    lines_404 = [l for l in new_lines if "GET unmatched 404" in l]
+    summary = [l for l in lines_404 if "were not logged" in l]
+    left_out = sum(int(re.search(r"\((\d+) more refused", l).group(1)) for l in summary)
+    R.check("k: %d refused requests in %.0f ms: all answered 404, at most 20 + 10 per second of "
+            "them logged, the next line says how many were left out (together all %d), and "
+            "/metrics counts all %d" % (flood, 1000 * elapsed, flood, flood + 1),
+            answers == [404] * flood and len(lines_404) - 1 <= 20 + 10 * elapsed + 1 and
+            bool(summary) and summary[-1] == lines_404[-1] and
+            len(lines_404) - 1 + left_out == flood and
+            unmatched_404s() - counted_before == flood + 1,
+            "answers %s, %d lines, summary %s, counted %d" %
+            (collections.Counter(answers), len(lines_404), summary[-1:],
+             unmatched_404s() - counted_before))
 
     # Priorities: the threads answering requests keep the process's nice value; the solve
     # worker, the OpenMP threads a solve starts (this server has --solver-threads 2) and the

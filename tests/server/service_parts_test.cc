@@ -13,6 +13,7 @@
 
 #include "server/canonical.h"
 #include "server/job_queue.h"
+#include "server/log_budget.h"
 #include "server/model_codec.h"
 #include "server/problem.h"
 #include "server/result_cache.h"
@@ -380,6 +381,30 @@ TEST(ThreadSetupTest, TimeSlicesArePerThreadAndChecked) {
     EXPECT_EQ(set.code(), StatusCode::kUnavailable) << set.message();
     EXPECT_EQ(CheckThreadSlice(kMinSliceMicroseconds).code(), StatusCode::kUnavailable);
   }
+}
+
+TEST(LogBudgetTest, AllowsABurstThenARateAndCountsWhatItLeftOut) {
+  using std::chrono::milliseconds;
+  LogBudget budget(/*per_second=*/10.0, /*burst=*/3.0);
+  const LogBudget::Clock::time_point t0 = LogBudget::Clock::time_point{} + std::chrono::hours(1);
+  int64_t left_out = -1;
+  for (int i = 0; i < 3; ++i) {
+    EXPECT_TRUE(budget.Take(t0, &left_out)) << i;
+    EXPECT_EQ(left_out, 0);
+  }
+  for (int i = 0; i < 5; ++i) EXPECT_FALSE(budget.Take(t0, &left_out)) << i;
+  EXPECT_FALSE(budget.Take(t0 + milliseconds(50), &left_out));  // Half a line's worth.
+  EXPECT_TRUE(budget.Take(t0 + milliseconds(150), &left_out));  // One and a half.
+  EXPECT_EQ(left_out, 6);
+  EXPECT_FALSE(budget.Take(t0 + milliseconds(150), &left_out));
+  // An earlier time than one already seen (another thread's clock reading) adds nothing.
+  EXPECT_FALSE(budget.Take(t0, &left_out));
+  // A long quiet spell refills up to the burst, no further.
+  for (int i = 0; i < 3; ++i) {
+    EXPECT_TRUE(budget.Take(t0 + std::chrono::hours(1), &left_out)) << i;
+    EXPECT_EQ(left_out, i == 0 ? 2 : 0);
+  }
+  EXPECT_FALSE(budget.Take(t0 + std::chrono::hours(1), &left_out));
 }
 
 TEST(ProblemTest, MapsStatusesToHttpAndRfc9457Bodies) {
