@@ -2,9 +2,10 @@
 // disk through the log. The HTTP server logs one line per refused request (4xx, and the 501
 // and 505 the transport answers to requests it cannot read). Without a budget, wrk asking for
 // an unknown path over 16 connections for 5 s (72,000 requests a second) wrote 18.8 MB of
-// log, a line per request; with the server's budget (20, 10 a second), 8.4 KB. A token bucket: `burst` lines at once, then `per_second` on average; the lines
-// refused meanwhile are counted, and the next line allowed says how many there were. Nothing
-// else is lost: /metrics counts every request by route and status. Thread-safe.
+// log, a line per request; with the server's budget (20, 10 a second), 8.4 KB. A token
+// bucket: `burst` lines at once, then `per_second` on average; the lines refused meanwhile
+// are counted, and the next line allowed says how many there were. Nothing else is lost:
+// /metrics counts every request by route and status. Thread-safe.
 #ifndef MDP_SERVER_LOG_BUDGET_H_
 #define MDP_SERVER_LOG_BUDGET_H_
 
