@@ -412,17 +412,18 @@ warm_up() {
 # so that each round compares runs made seconds apart.
 ROWS=()  # "server threads slice round rps p50 p99 non2xx sock stalled requests ovf cpu ratio"
 for threads in $HTTP_THREADS_LIST; do
-  declare -A SLICE_PID=() SLICE_PORT=() SLICE_MODEL=()
+  # The model's id is its content hash, the same on every server: MDP_PATHS serves them all.
+  declare -A SLICE_PID=() SLICE_PORT=()
   for slice in $HTTP_SLICES_LIST; do
     if [[ -z $MDP_PID ]]; then start_mdpserve "$threads" "$slice"; fi
-    SLICE_PID[$slice]=$MDP_PID SLICE_PORT[$slice]=$MDP_PORT SLICE_MODEL[$slice]=$MODEL_ID
+    SLICE_PID[$slice]=$MDP_PID SLICE_PORT[$slice]=$MDP_PORT
     MDP_PID=""
   done
   if (( WARMUP_SECONDS > 0 )); then
     echo "-- warm-up, ${WARMUP_SECONDS} s per server (not recorded) ..." >&2
     warm_up "$NGINX_PORT" "/answer.json"
     for slice in $HTTP_SLICES_LIST; do
-      warm_up "${SLICE_PORT[$slice]}" "/v1/models/${SLICE_MODEL[$slice]}/policy?state=${STATES[0]}"
+      warm_up "${SLICE_PORT[$slice]}" "${MDP_PATHS[0]}"
     done
   fi
   for round in $(seq "$ROUNDS"); do
@@ -433,10 +434,8 @@ for threads in $HTTP_THREADS_LIST; do
     ROWS+=("nginx - - $round $n_rps $n_p50 $n_p99 $n_non2xx $n_sock $n_stall $n_req $n_ovf $n_cpu -")
     for slice in $HTTP_SLICES_LIST; do
       echo "-- round $round, mdpserve --http-threads $threads --http-slice-us $slice ..." >&2
-      paths=()
-      for s in "${STATES[@]}"; do paths+=("/v1/models/${SLICE_MODEL[$slice]}/policy?state=$s"); done
       run_wrk "mdpserve-t$threads-s$slice-r$round" "${SLICE_PID[$slice]}" "${SLICE_PORT[$slice]}" \
-        "${paths[@]}"
+        "${MDP_PATHS[@]}"
       read -r m_rps m_p50 m_p99 m_non2xx m_sock m_req m_ovf m_cpu m_stall <<<"$RESULT"
       kill -0 "${SLICE_PID[$slice]}" 2>/dev/null || die "mdpserve died during the run"
       ratio=$(python3 -c "print(f'{$m_rps / max($n_rps, 1):.3f}')")
@@ -444,7 +443,7 @@ for threads in $HTTP_THREADS_LIST; do
     done
   done
   for slice in $HTTP_SLICES_LIST; do stop_mdpserve "${SLICE_PID[$slice]}"; done
-  unset SLICE_PID SLICE_PORT SLICE_MODEL
+  unset SLICE_PID SLICE_PORT
 done
 
 # --- Report ------------------------------------------------------------------------------

@@ -238,15 +238,12 @@ struct HttpServer::Impl {
     if (!spdlog::should_log(level)) return;
     int64_t suppressed = 0;
     if (refused && !refused_log.Take(now, &suppressed)) return;
-    if (suppressed > 0) {
-      spdlog::log(level,
-                  "{} {} {} {}us ({} more refused requests since the last such line "
-                  "were not logged; /metrics counts them)",
-                  req.method, route_name, status, static_cast<int64_t>(seconds * 1e6), suppressed);
-    } else {
-      spdlog::log(level, "{} {} {} {}us", req.method, route_name, status,
-                  static_cast<int64_t>(seconds * 1e6));
-    }
+    spdlog::log(level, "{} {} {} {}us{}", req.method, route_name, status,
+                static_cast<int64_t>(seconds * 1e6),
+                suppressed == 0 ? std::string()
+                                : fmt::format(" ({} more refused requests since the last such "
+                                              "line were not logged; /metrics counts them)",
+                                              suppressed));
   }
 
   struct CompiledRoute {

@@ -27,11 +27,9 @@ class LogBudget {
   // since the last one allowed (0 if none), which the line should mention.
   bool Take(Clock::time_point now, int64_t* suppressed) {
     std::lock_guard<std::mutex> lock(mu_);
-    if (started_) {
-      const double seconds = std::chrono::duration<double>(now - last_).count();
-      if (seconds > 0) tokens_ = std::min(burst_, tokens_ + seconds * per_second_);
-    }
-    started_ = true;
+    // The first call refills from the clock's epoch: to the burst, where the bucket starts.
+    const double seconds = std::chrono::duration<double>(now - last_).count();
+    if (seconds > 0) tokens_ = std::min(burst_, tokens_ + seconds * per_second_);
     last_ = std::max(last_, now);
     if (tokens_ < 1.0) {
       ++suppressed_;
@@ -48,7 +46,6 @@ class LogBudget {
   const double burst_;
   std::mutex mu_;
   double tokens_;
-  bool started_ = false;
   Clock::time_point last_{};
   int64_t suppressed_ = 0;
 };

@@ -47,11 +47,22 @@ void BecomeBackgroundThread(const char* name, int increment) {
   (void)RaiseThisThreadNiceness(increment);
 }
 
-Status CheckThreadNiceness(int increment) {
+namespace {
+
+// What `setting` returns when run on a short-lived thread of its own, so that the caller's
+// scheduling is unchanged.
+template <typename Setting>
+Status OnProbeThread(Setting setting) {
   Status status = Status::Ok();
-  std::thread probe([&status, increment] { status = RaiseThisThreadNiceness(increment); });
+  std::thread probe([&status, &setting] { status = setting(); });
   probe.join();
   return status;
+}
+
+}  // namespace
+
+Status CheckThreadNiceness(int increment) {
+  return OnProbeThread([increment] { return RaiseThisThreadNiceness(increment); });
 }
 
 namespace {
@@ -115,10 +126,7 @@ Status SetThisThreadSlice(int microseconds) {
 }
 
 Status CheckThreadSlice(int microseconds) {
-  Status status = Status::Ok();
-  std::thread probe([&status, microseconds] { status = SetThisThreadSlice(microseconds); });
-  probe.join();
-  return status;
+  return OnProbeThread([microseconds] { return SetThisThreadSlice(microseconds); });
 }
 
 void ExecAgainWithOpenMpSpinCount(char** argv) {
