@@ -15,14 +15,36 @@
 namespace mdp::internal {
 
 // Work units: one product with P_pi is 1; a lower-triangle solve reads about half the
-// entries, sequentially.
+// entries.
 inline constexpr double kLowerSolveCost = 0.8;
+
+// The lower-triangle preconditioner is the lower triangle of A's diagonal blocks of this many
+// unknowns (in index order): each block's forward substitution leaves out the entries that
+// reach into earlier blocks, so the blocks are solved at once on all threads, and the result
+// does not depend on the thread count. Forward substitution over the whole triangle kept one
+// thread busy while the others waited. 1,000,000-cell grid with slip, policy iteration on 2
+// threads, 6 runs each in 3 sets alternating with the whole-triangle build: 18.7-20.3 s against
+// 23.8-25.2 s (3,001 against 2,922 work units); an inventory of 1,000,000 stock levels
+// 2.41-2.58 s against 2.73-3.11 s.
+inline constexpr int64_t kLowerSolveBlock = 65536;
+
+// Calls solve_block(lo, hi) for each block [lo, hi) of kLowerSolveBlock unknowns (the last
+// one shorter) that covers [0, n), the blocks handed out to `threads` threads on demand.
+template <class SolveBlock>
+void ForEachLowerSolveBlock(int64_t n, int threads, const SolveBlock& solve_block) {
+  const int64_t blocks = (n + kLowerSolveBlock - 1) / kLowerSolveBlock;
+#pragma omp parallel for num_threads(threads) schedule(dynamic, 1) if (blocks > 1)
+  for (int64_t b = 0; b < blocks; ++b) {
+    solve_block(b * kLowerSolveBlock, std::min(n, (b + 1) * kLowerSolveBlock));
+  }
+}
 
 enum class Preconditioner {
   kUnknown,        // Not chosen yet: the next solve probes both.
   kDiagonal,       // Jacobi: cheap and parallel; good when next states scatter.
-  kLowerTriangle,  // Forward Gauss-Seidel (D - L): sequential, but follows transitions to
-                   // lower indices in one pass (stock that drains, queues that empty).
+  kLowerTriangle,  // Forward Gauss-Seidel (D - L) within blocks of kLowerSolveBlock: follows
+                   // transitions to lower indices of the same block in one pass (stock that
+                   // drains, queues that empty).
 };
 
 // What a pass's `look` reports on the true residual of an iterate.
@@ -34,8 +56,9 @@ struct BiCgStabLook {
 using BiCgStabLookFn = std::function<BiCgStabLook(const std::vector<double>& x)>;
 
 // Operator provides: size(), the number of unknowns; MultiplySystem(x, y, threads), y = A x;
-// LowerSolve(b, z), solves (D - L) z = b for D - L the lower triangle of A in index order;
-// and diagonal(), A's diagonal, every entry positive.
+// LowerSolve(b, z, threads), solves (D - L) z = b for D - L the lower triangle of A's
+// diagonal blocks of kLowerSolveBlock unknowns (ForEachLowerSolveBlock); and diagonal(), A's
+// diagonal, every entry positive.
 template <class Operator>
 class BiCgStab {
  public:
@@ -102,7 +125,7 @@ class BiCgStab {
         dir_[i] = res[i] + beta * (dir_[i] - omega * v_[i]);
         if (!lower) y_[i] = dir_[i] / d[i];
       }
-      if (lower) a_.LowerSolve(dir_.data(), y_.data());
+      if (lower) a_.LowerSolve(dir_.data(), y_.data(), threads_);
       a_.MultiplySystem(y_.data(), v_.data(), threads_);
       work += half_step;
       const double rv = Dot(rhat_, v_);
@@ -120,7 +143,7 @@ class BiCgStab {
         for (int64_t i = 0; i < n_; ++i) x[i] += alpha * y_[i];
         break;
       }
-      if (lower) a_.LowerSolve(res.data(), z_.data());
+      if (lower) a_.LowerSolve(res.data(), z_.data(), threads_);
       a_.MultiplySystem(z_.data(), t_.data(), threads_);
       work += half_step;
       double ts = 0.0, tt = 0.0;

@@ -62,15 +62,16 @@ double PolicyMatrix::GaussSeidel(double* x) const {
   return diff;
 }
 
-void PolicyMatrix::LowerSolve(const double* b, double* z) const {
-  const StateId n = size();
-  for (StateId s = 0; s < n; ++s) {
-    double acc = b[s];
-    for (int64_t e = begin_[s], end = begin_[s + 1]; e < end && next_[e] < s; ++e) {
-      acc += scaled_probability_[e] * z[next_[e]];
+void PolicyMatrix::LowerSolve(const double* b, double* z, int threads) const {
+  ForEachLowerSolveBlock(size(), threads, [&](int64_t lo, int64_t hi) {
+    for (int64_t s = lo; s < hi; ++s) {
+      double acc = b[s];
+      for (int64_t e = begin_[s], end = begin_[s + 1]; e < end && next_[e] < s; ++e) {
+        if (next_[e] >= lo) acc += scaled_probability_[e] * z[next_[e]];
+      }
+      z[s] = acc / diagonal_[s];
     }
-    z[s] = acc / diagonal_[s];
-  }
+  });
 }
 
 void PolicyMatrix::MultiplySystem(const double* x, double* y, int threads) const {
@@ -136,8 +137,8 @@ EvaluationResult SolvePolicyValues(const PolicyMatrix& p, double target, double 
         best_x = x;
       }
     }
-    plan.preconditioner =
-        rate[1] > rate[0] ? Preconditioner::kLowerTriangle : Preconditioner::kDiagonal;
+    plan.preconditioner = rate[1] > kLowerTriangleMargin * rate[0] ? Preconditioner::kLowerTriangle
+                                                                   : Preconditioner::kDiagonal;
     x = best_x.empty() ? start : best_x;
     out.residual = TrueResidual(p, x, scratch, res, threads);
     out.work += 1.0;

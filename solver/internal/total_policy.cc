@@ -122,14 +122,16 @@ void TotalPolicyMatrix::GaussSeidel(const double* b, double* x) const {
   }
 }
 
-void TotalPolicyMatrix::LowerSolve(const double* b, double* z) const {
-  for (int64_t i = 0, n = size(); i < n; ++i) {
-    double acc = b[i];
-    for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
-      if (column_[e] < i) acc += probability_[e] * z[column_[e]];
+void TotalPolicyMatrix::LowerSolve(const double* b, double* z, int threads) const {
+  ForEachLowerSolveBlock(size(), threads, [&](int64_t lo, int64_t hi) {
+    for (int64_t i = lo; i < hi; ++i) {
+      double acc = b[i];
+      for (int64_t e = begin_[i], end = begin_[i + 1]; e < end; ++e) {
+        if (column_[e] < i && column_[e] >= lo) acc += probability_[e] * z[column_[e]];
+      }
+      z[i] = acc / diagonal_[i];
     }
-    z[i] = acc / diagonal_[i];
-  }
+  });
 }
 
 namespace {

@@ -42,8 +42,9 @@ class TotalPolicyMatrix {
   void MultiplySystem(const double* x, double* y, int threads) const;
   // One forward Gauss-Seidel sweep of x = b + P x, in place.
   void GaussSeidel(const double* b, double* x) const;
-  // Solves (D - L) z = b, D - L the lower triangle of I - P (index order).
-  void LowerSolve(const double* b, double* z) const;
+  // Solves (D - L) z = b, D - L the lower triangle of the diagonal blocks of I - P of
+  // kLowerSolveBlock unknowns (index order; bicgstab.h), the blocks on `threads` threads.
+  void LowerSolve(const double* b, double* z, int threads) const;
   // 1 - p(s | s): the diagonal of I - P, positive for a proper policy.
   const std::vector<double>& diagonal() const { return diagonal_; }
 

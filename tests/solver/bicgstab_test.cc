@@ -45,7 +45,10 @@ class SparseSystem {
     ++products_;
     Eigen::Map<Eigen::VectorXd>(y, size()) = a_ * Eigen::Map<const Eigen::VectorXd>(x, size());
   }
-  void LowerSolve(const double* b, double* z) const {
+  // The whole lower triangle: these test systems have fewer than kLowerSolveBlock unknowns,
+  // one block.
+  void LowerSolve(const double* b, double* z, int /*threads*/) const {
+    EXPECT_LT(size(), internal::kLowerSolveBlock);
     ++lower_solves_;
     Eigen::Map<Eigen::VectorXd>(z, size()) =
         a_.triangularView<Eigen::Lower>().solve(Eigen::Map<const Eigen::VectorXd>(b, size()));

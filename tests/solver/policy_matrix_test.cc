@@ -173,6 +173,62 @@ TEST(PolicyMatrixTest, DrainingChainPicksTheLowerTrianglePreconditioner) {
   }
 }
 
+// The same draining chain over three blocks of the lower-triangle preconditioner
+// (kLowerSolveBlock states each, the last shorter). Derived here for b = 1: in the first
+// block z(s) = (1 + g z(s - 1)) with z(0) = 1 / (1 - g) (state 0 holds), so every z(s) is
+// 1 / (1 - g); a later block starting at lo leaves out the entry into the block before, so
+// z(lo + k) = sum_{j<=k} g^j = (1 - g^(k+1)) / (1 - g). Both thread counts give the same
+// bits. The evaluation still reaches V(s) = s + g V(s - 1), V(0) = 0 (the chain's own
+// equation, solved forward here), though one pass no longer inverts the system.
+TEST(PolicyMatrixTest, LowerSolveRunsOnBlocksTheSameOnAnyThreadCount) {
+  const int64_t block = internal::kLowerSolveBlock;
+  const int n = static_cast<int>(2 * block + 500);
+  const double g = 0.99;
+  ModelSpec spec;  // Written directly: SpecWriter looks names up one by one.
+  spec.name = "draining-chain";
+  spec.objective = Objective::kMaximize;
+  spec.criterion.discount = g;
+  spec.action_names = {"hold", "drain"};
+  spec.AddState("level0");
+  spec.AddStateAction(0, 0.0);
+  spec.AddOutcome(0, 1.0);
+  for (int s = 1; s < n; ++s) {
+    spec.AddState("level" + std::to_string(s));
+    spec.AddStateAction(1, static_cast<double>(s));
+    spec.AddOutcome(s - 1, 1.0);
+  }
+  const Model m = testing::MustBuild(spec);
+  std::vector<RowId> rows(n);
+  for (StateId s = 0; s < n; ++s) rows[s] = m.row_begin(s);
+  PolicyMatrix p;
+  p.Assign(m, rows.data(), 2);
+  const std::vector<double> ones(n, 1.0);
+  std::vector<double> z1(n), z2(n);
+  p.LowerSolve(ones.data(), z1.data(), 1);
+  p.LowerSolve(ones.data(), z2.data(), 2);
+  for (int s = 0; s < n; ++s) ASSERT_EQ(z1[s], z2[s]) << "state " << s;
+  for (int s : {0, 1, 1000, static_cast<int>(block) - 1}) {
+    EXPECT_NEAR(z1[s], 1.0 / (1.0 - g), 1e-12 / (1.0 - g)) << "state " << s;
+  }
+  for (int64_t lo : {block, 2 * block}) {
+    for (int64_t k : {int64_t{0}, int64_t{1}, int64_t{37}, int64_t{499}}) {
+      const double expected = (1.0 - std::pow(g, static_cast<double>(k + 1))) / (1.0 - g);
+      EXPECT_NEAR(z1[lo + k], expected, 1e-12 / (1.0 - g)) << "state " << lo + k;
+    }
+  }
+  std::vector<double> x(n, 0.0);
+  internal::EvaluationPlan plan;
+  const EvaluationResult r = SolvePolicyValues(p, 1e-9, 1e7, 2, kNever, plan, x);
+  ASSERT_LE(r.residual, 1e-9);
+  double v = 0.0;
+  for (int s = 1; s < n; ++s) {
+    v = s + g * v;
+    if (s % 9973 == 0 || s == n - 1) {
+      EXPECT_NEAR(x[s], v, 1e-9 / (1.0 - g) + 1e-12 * v) << "state " << s;
+    }
+  }
+}
+
 TEST(PolicyMatrixTest, BudgetAndInterruptionLeaveAnHonestResidual) {
   const Model m = RandomModel(11, 2000, 0.99, Objective::kMaximize);
   const std::vector<RowId> rows = RandomRows(m, 11);
