@@ -64,10 +64,10 @@ class PolicyMatrix {
 inline constexpr double kProbeWork = 24.0;
 // The probe keeps the lower triangle only when its rate (log of the residual's fall per unit
 // of work) beats the diagonal's by this factor. On the 1M-state near-state ring the two rates
-// came within 2 % of each other (0.0203 and 0.0199-0.0206 per unit, by the block size), and
-// the whole solve then took 392 units with the diagonal against 522-524 with the lower
-// triangle; where the lower triangle pays the rates lie far apart (the 1M-cell grid with slip:
-// 0.114 against 0).
+// came within 4 % of each other (diagonal 0.0203; lower triangle 0.0199 over the whole
+// triangle, 0.0206-0.0211 on blocks of 262,144 or 65,536 states), and the whole solve then took
+// 392 units with the diagonal against 522-524 with the lower triangle; where the lower
+// triangle pays the rates lie far apart (the 1M-cell grid with slip: 0.10-0.11 against 0).
 inline constexpr double kLowerTriangleMargin = 1.1;
 
 // What the evaluations of one solve learn and keep: policies of one model share their
