@@ -488,7 +488,8 @@ Status FinishMultichain(const Model& m, const AverageEvaluation& eval,
   double loss = 0.0;
   if (!std::equal(policy.begin(), policy.end(), out.best_row.begin())) {
     AverageEvaluation picked;
-    const Status status = internal::EvaluateAverage(m, out.best_row, target, stop, eval, picked);
+    const Status status =
+        internal::EvaluateAverage(m, out.best_row, target, stop, eval, picked, nullptr, threads);
     if (status.ok()) {
       const double sign = kMaximize ? 1.0 : -1.0;
       for (size_t s = 0; s < g.size(); ++s) loss = std::max(loss, sign * (g[s] - picked.gain[s]));
@@ -750,8 +751,8 @@ internal::LeakySystem DiscountedSystem(const Model& m, std::span<const RowId> ro
 // they fit the budget the average evaluation uses; accurate entry by entry however close the
 // discount is to 1. Returns false, v unchanged, if the factors do not fit or fail; the
 // stop_check's status if it fires.
-Result<bool> FactoredDiscountedValues(const Model& m, std::span<const RowId> rows,
-                                      double discount, const internal::StopCheck& stop_check,
+Result<bool> FactoredDiscountedValues(const Model& m, std::span<const RowId> rows, double discount,
+                                      const internal::StopCheck& stop_check, int threads,
                                       double* work, std::vector<double>& v) {
   const internal::LeakySystem a = DiscountedSystem(m, rows, discount);
   const double budget = internal::FactorBudgetBytes(m);
@@ -761,7 +762,7 @@ Result<bool> FactoredDiscountedValues(const Model& m, std::span<const RowId> row
   const double entries = static_cast<double>(std::max<int64_t>(1, a.entries()));
   *work += plan.multiply_adds / entries;
   internal::MMatrixLu factors;
-  const Status status = factors.Factorize(a, std::move(plan), stop_check);
+  const Status status = factors.Factorize(a, std::move(plan), stop_check, threads);
   if (status.code() == StatusCode::kFailedPrecondition) return false;
   MDP_RETURN_IF_ERROR(status);
   std::vector<double> x(m.num_states());
@@ -804,7 +805,7 @@ int64_t DiscountedWarmStart(const Model& m, const internal::StopCheck& stop_chec
       bool solved = false;
       if (factor) {
         const Result<bool> factored =
-            FactoredDiscountedValues(m, rows, discount, stop_check, &work, v);
+            FactoredDiscountedValues(m, rows, discount, stop_check, threads, &work, v);
         if (!factored.ok()) return static_cast<int64_t>(std::ceil(work));
         solved = *factored;
         if (!solved) factor = factors_fit = false;  // BiCGSTAB from here on.
@@ -882,7 +883,7 @@ Result<AverageRewardSolution> PolicyIterationT(const Model& m, const AverageRewa
     AverageEvaluation next;
     internal::AverageSolveCounts counts;
     const Status status =
-        internal::EvaluateAverage(m, rows, target, stop_check, eval, next, &counts);
+        internal::EvaluateAverage(m, rows, target, stop_check, eval, next, &counts, threads);
     if (!status.ok()) {
       // Stopped inside the evaluation: the result is the last policy evaluated in full.
       if (status.code() == StatusCode::kCancelled) {

@@ -110,6 +110,7 @@ using Triplets = std::vector<Eigen::Triplet<double>>;
 struct SolveContext {
   StopCheck stop;
   double budget_bytes = 0.0;
+  int threads = 1;  // For factorisations (MMatrixLu::Factorize).
   // Systems of at least this many unknowns go straight to BiCGSTAB: the previous evaluation
   // declined factors for one so large (an expander stays one from policy to policy, and
   // planning costs a few passes over the system).
@@ -221,7 +222,8 @@ class SparseSolver {
 
   Status UseFactors() {
     ++context_.counts.factored;
-    const Status status = factors_.Factorize(*leaky_, std::move(plan_), context_.stop);
+    const Status status =
+        factors_.Factorize(*leaky_, std::move(plan_), context_.stop, context_.threads);
     if (status.code() == StatusCode::kFailedPrecondition) {
       // Transient states the chain leaves only after more steps than a double can count.
       return InternalError(status.message());
@@ -441,7 +443,8 @@ Status EvaluateClassFactored(const Model& m, std::span<const RowId> rows,
     }
     MMatrixLu factors;
     ++context.counts.factored;
-    const Status factored = factors.Factorize(system, std::move(plan), context.stop);
+    const Status factored =
+        factors.Factorize(system, std::move(plan), context.stop, context.threads);
     if (factored.code() == StatusCode::kFailedPrecondition) {
       if (solved) return Status::Ok();
       if (attempt + 1 >= kMaxAttempts) return InternalError(factored.message());
@@ -779,12 +782,13 @@ double FactorBudgetBytes(const Model& m) {
 // transient states, which see the classes only through the entries that lead into them.
 Status EvaluateAverage(const Model& m, std::span<const RowId> rows, double target,
                        const StopCheck& stop, const AverageEvaluation& previous,
-                       AverageEvaluation& out, AverageSolveCounts* counts) {
+                       AverageEvaluation& out, AverageSolveCounts* counts, int threads) {
   const StateId n = m.num_states();
   MDP_RETURN_IF_ERROR(stop.Poll());
   SolveContext context;
   context.stop = stop;
   context.budget_bytes = FactorBudgetBytes(m);
+  context.threads = std::max(1, threads);
   if (!previous.gain.empty()) {
     context.declined_before = previous.declined_factor_size;
     context.missed_before = previous.missed_iterative_size;

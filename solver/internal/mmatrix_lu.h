@@ -82,9 +82,11 @@ class MMatrixLu {
   // Factorises `a` in the order of `plan`. Returns kCancelled or kDeadlineExceeded when
   // `stop` says so (polled every few rows), kFailedPrecondition if a pivot is not positive:
   // A is singular, or its leak underflows (some part of the set keeps the chain for more
-  // than about 1e308 steps); singular_at() then names an unknown of that part.
+  // than about 1e308 steps); singular_at() then names an unknown of that part. A dissected
+  // plan is eliminated on up to `threads` threads (>= 1, as resolved), with the same factors
+  // and the same singular_at() on any number.
   // REQUIRES: plan.complete, plan came from PlanFactors(a, ...).
-  Status Factorize(const LeakySystem& a, FactorPlan plan, const StopCheck& stop);
+  Status Factorize(const LeakySystem& a, FactorPlan plan, const StopCheck& stop, int threads = 1);
 
   // After Factorize returned kFailedPrecondition: the unknown whose pivot vanished; else -1.
   int32_t singular_at() const { return singular_at_; }
@@ -102,8 +104,11 @@ class MMatrixLu {
   // Factorize's two kernels (see there): the rows' patterns found during the elimination, or
   // all of them first. Both start from order_ set and the other members cleared.
   Status FactorizeByRows(const LeakySystem& a, const FactorPlan& plan, const StopCheck& stop);
-  Status FactorizeByPattern(const LeakySystem& a, const FactorPlan& plan, const StopCheck& stop);
+  Status FactorizeByPattern(const LeakySystem& a, const FactorPlan& plan, const StopCheck& stop,
+                            int threads);
   Status SetPivot(int32_t k, double leak, double diagonal, std::vector<double>& schur_leak);
+  // Records row k as singular (singular_at_) and returns kFailedPrecondition.
+  Status Singular(int32_t k);
 
   std::vector<int32_t> order_;    // As FactorPlan::order.
   std::vector<int64_t> l_begin_;  // L by rows (unit diagonal not stored), by position.
