@@ -47,7 +47,8 @@ void TotalPolicyMatrix::Assign(const Model& m, const std::vector<StateId>& state
     diagonal_[i] = 1.0 - self;
     leak_[i] = leak;
   }
-  factors_ = MMatrixLu();
+  // factors_ keeps its buffers for the next policy's factors (Factor() refills them; until
+  // then factored_ says they are stale): fresh pages each time cost the kernel's zeroing.
   factored_ = false;
 }
 
