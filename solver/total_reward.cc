@@ -908,7 +908,7 @@ struct InexactRun {
     const double max_work = kFactorWorkFloor + kFactorWorkPerEntry *
                                                    static_cast<double>(policy.size()) *
                                                    static_cast<double>(policy.terms());
-    const Status status = policy.Factor(budget_bytes, max_work, stop);
+    const Status status = policy.Factor(budget_bytes, max_work, stop, threads);
     // Policies of one model share their structure: one refusal stands for the run.
     declined = status.ok() && !policy.factored();
   }

@@ -31,6 +31,102 @@ void SpinPause() {
 // A pivot the factors can divide by: positive and finite.
 bool PivotOk(double diagonal) { return diagonal > 0.0 && std::isfinite(diagonal); }
 
+// Rows 0..n-1 of an elimination handed out in turn to the threads that run it, each thread
+// taking the next row not yet taken: row k waits for an earlier row i only where it is about
+// to subtract row i (WaitFor), so rows that each subtract many earlier ones overlap except
+// for their last updates. A row's arithmetic is the same whatever thread runs it and
+// whenever, so the factors are the same bit for bit on any number of threads.
+class RowTurns {
+ public:
+  RowTurns(int32_t n, const StopCheck& stop) : done_(n), singular_row_(n), stop_(stop) {}
+
+  // The next row for the calling thread, or -1 once there is none left that is needed.
+  int32_t Next() {
+    const int32_t k = next_row_.fetch_add(1, std::memory_order_relaxed);
+    if (k >= static_cast<int32_t>(done_.size()) ||
+        k > singular_row_.load(std::memory_order_acquire) ||
+        stopped_.load(std::memory_order_acquire)) {
+      return -1;
+    }
+    if (k % kPollRows == 0) {
+      if (Status poll = stop_.Poll(); !poll.ok()) {
+        const std::lock_guard<std::mutex> lock(stop_mutex_);
+        if (!stopped_.load(std::memory_order_relaxed)) stop_status_ = std::move(poll);
+        stopped_.store(true, std::memory_order_release);
+        return -1;
+      }
+    }
+    return k;
+  }
+
+  // Waits until row i < k is final. False if row k must give up instead: the stop check
+  // fired, or row k lies past the first singular row and row i may never come.
+  bool WaitFor(int32_t i, int32_t k) const {
+    for (int spins = 0; !done_[i].load(std::memory_order_acquire); ++spins) {
+      if (stopped_.load(std::memory_order_relaxed) ||
+          k > singular_row_.load(std::memory_order_relaxed)) {
+        return false;
+      }
+      if (spins < kSpinsBeforeYield) {
+        SpinPause();
+      } else {
+        std::this_thread::yield();
+      }
+    }
+    return true;
+  }
+
+  // Row k is final: its pivot and leak are set, as SetPivot does, if the pivot is positive,
+  // and what its thread wrote becomes visible to those that wait for it. The first row whose
+  // pivot is not is kept: rows after it are not needed, and every row before it is still
+  // finished (none waits for a later one), so the row named is the first on any number of
+  // threads.
+  void Settle(int32_t k, double leak, double diagonal, std::vector<double>& schur_leak,
+              std::vector<double>& pivot) {
+    if (PivotOk(diagonal)) {
+      schur_leak[k] = leak;
+      pivot[k] = diagonal;
+    } else {
+      int32_t first = singular_row_.load(std::memory_order_relaxed);
+      while (k < first && !singular_row_.compare_exchange_weak(first, k)) {
+      }
+    }
+    done_[k].store(1, std::memory_order_release);
+  }
+
+  // Once every thread has returned: the stop check's status, if it fired.
+  bool stopped() const { return stopped_.load(); }
+  const Status& stop_status() const { return stop_status_; }
+  // The first singular row, or n.
+  int32_t singular_row() const { return singular_row_.load(); }
+
+ private:
+  std::vector<std::atomic<uint8_t>> done_;
+  std::atomic<int32_t> next_row_{0};
+  std::atomic<int32_t> singular_row_;
+  std::atomic<bool> stopped_{false};
+  const StopCheck& stop_;
+  std::mutex stop_mutex_;
+  Status stop_status_;
+};
+
+// Runs eliminate(scratch) on up to `threads` threads, fewer so that each has at least
+// kMinRowsPerThread of the n rows; each thread makes its own scratch first.
+template <typename MakeScratch, typename Eliminate>
+void RunOnThreads(int32_t n, int threads, MakeScratch make_scratch, Eliminate eliminate) {
+  const int workers = static_cast<int>(std::min<int64_t>(threads, n / kMinRowsPerThread));
+  if (workers > 1) {
+#pragma omp parallel num_threads(workers)
+    {
+      auto scratch = make_scratch();
+      eliminate(scratch);
+    }
+  } else {
+    auto scratch = make_scratch();
+    eliminate(scratch);
+  }
+}
+
 // The pattern of A + A^T without the diagonal, by rows, each neighbour once.
 void SymmetricPattern(const LeakySystem& a, std::vector<int64_t>& begin,
                       std::vector<int32_t>& adj) {
@@ -380,15 +476,16 @@ FactorPlan PlanWithin(const LeakySystem& a, double budget_bytes, FactorOrdering 
 
 namespace {
 
-// Keeps the nonzero values of rows r = [begin[r], end[r]) of (col, value), packed in place.
-void DropZeros(std::vector<int64_t>& begin, const std::vector<int64_t>& end,
-               LargeVector<int32_t>& col, LargeVector<double>& value) {
+// Packs rows r = [begin[r], end[r]) of (col, value) in place, dropping the zero values iff
+// `drop_zeros`.
+void Pack(std::vector<int64_t>& begin, const std::vector<int64_t>& end, bool drop_zeros,
+          LargeVector<int32_t>& col, LargeVector<double>& value) {
   int64_t out = 0;
   for (size_t r = 0; r < end.size(); ++r) {
     const int64_t from = begin[r];
     begin[r] = out;
     for (int64_t e = from; e < end[r]; ++e) {
-      if (value[e] == 0.0) continue;
+      if (drop_zeros && value[e] == 0.0) continue;
       col[out] = col[e];
       value[out++] = value[e];
     }
@@ -424,12 +521,15 @@ void CountFactors(FactorPlan& plan, int64_t max_lower_entries) {
   // Column counts from the row patterns; every step of a walk is one entry of L, so the
   // count costs no more than the cap.
   std::vector<int32_t> mark(n, -1);
-  std::vector<int64_t> count(n, 0);
+  std::vector<int32_t>& count = plan.column_count;
+  count.assign(n, 0);
+  plan.row_count.assign(n, 0);
   int64_t total = 0;
   plan.complete = false;
   for (int32_t k = 0; k < n; ++k) {
     RowSubtree(k, plan.order, plan.position, begin, adj, plan.parent, mark, [&](int32_t r) {
       ++count[r];
+      ++plan.row_count[k];
       ++total;
     });
     if (total > max_lower_entries) return;
@@ -518,7 +618,7 @@ Status MMatrixLu::Factorize(const LeakySystem& a, FactorPlan plan, const StopChe
   // 0.78-0.86 s on one, with steps up to 2 cells away 2.9 against 5.2-6.1 s, and a 1000 x 1000
   // grid 15.2-17.7 against 29.2-32.5 s (2 runs each).
   return plan.ordering == FactorOrdering::kDissection ? FactorizeByPattern(a, plan, stop, threads)
-                                                      : FactorizeByRows(a, plan, stop);
+                                                      : FactorizeByRows(a, plan, stop, threads);
 }
 
 // Row k's pivot from the leak its Schur complement row keeps (`leak`) and the sum of its
@@ -539,75 +639,154 @@ Status MMatrixLu::Singular(int32_t k) {
   return FailedPreconditionError("policy evaluation: the chain never leaves a set of states");
 }
 
+// One thread's working rows for FactorizeByRows.
+struct MMatrixLu::RowScratch {
+  explicit RowScratch(int32_t n) : w(n, 0.0), mark(n, -1), touched(n, -1), upper(n + 1) {}
+  std::vector<double> w;         // Row k of the partly eliminated matrix, scattered.
+  std::vector<int32_t> mark;     // Row pattern walk.
+  std::vector<int32_t> touched;  // == k iff column j of row k has been seen.
+  std::vector<int32_t> lower;    // Row k's pattern in L.
+  std::vector<int32_t> upper;    // Columns j > k seen in row k.
+};
+
+// Row k of FactorizeByRows: L's entries to emit_l(i, l) in increasing i, U's nonzeros to
+// emit_u(j, v) in the order their columns were first met, the row's leak and pivot into
+// `leak` and `diagonal` (not checked); row i of U is [u_begin_[i], u_end(i)), read once
+// wait(i) has returned true. Returns false, x.w cleared, if wait(i) returned false.
+template <typename UEnd, typename Wait, typename EmitL, typename EmitU>
+bool MMatrixLu::EliminateByRows(int32_t k, const LeakySystem& a, const FactorPlan& plan,
+                                const std::vector<double>& schur_leak, RowScratch& x, UEnd u_end,
+                                Wait wait, EmitL emit_l, EmitU emit_u, double& leak,
+                                double& diagonal) const {
+  const int32_t row = order_[k];
+  x.lower.clear();
+  int64_t uppers = 0;
+  RowSubtree(k, order_, plan.position, plan.pattern_begin, plan.pattern, plan.parent, x.mark,
+             [&](int32_t r) { x.lower.push_back(r); });
+  std::sort(x.lower.begin(), x.lower.end());
+  // Columns j > k are collected without a branch on data (j > k and first sight vary
+  // unpredictably along a row): each j is written, and kept by advancing the count.
+  for (int64_t e = a.row_begin[row]; e < a.row_begin[row + 1]; ++e) {
+    const int32_t j = plan.position[a.col[e]];
+    x.w[j] = -a.weight[e];
+    x.upper[uppers] = j;
+    uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(x.touched[j] != k);
+    x.touched[j] = k;
+  }
+  // Row-oriented elimination (the i-k-j form of Gaussian elimination), in increasing order
+  // of the pivots used. Off-diagonal entries only ever receive l * u >= 0 subtracted from
+  // values <= 0: no cancellation. The diagonal, where cancellation would be, is not
+  // updated; it is recovered from the row sum below.
+  leak = a.leak[row];
+  for (const int32_t i : x.lower) {
+    const double wi = x.w[i];
+    if (wi == 0.0) continue;
+    x.w[i] = 0.0;
+    if (!wait(i)) {
+      std::fill(x.w.begin(), x.w.end(), 0.0);
+      return false;
+    }
+    const double l = wi / pivot_[i];
+    emit_l(i, l);
+    leak -= l * schur_leak[i];
+    for (int64_t e = u_begin_[i], end = u_end(i); e < end; ++e) {
+      const int32_t j = u_col_[e];
+      x.w[j] -= l * u_value_[e];  // Into w[k] too, which is discarded.
+      x.upper[uppers] = j;
+      uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(x.touched[j] != k);
+      x.touched[j] = k;
+    }
+  }
+  x.w[k] = 0.0;
+  diagonal = leak;
+  for (int64_t q = 0; q < uppers; ++q) {
+    const int32_t j = x.upper[q];
+    const double v = x.w[j];
+    x.w[j] = 0.0;
+    if (v == 0.0) continue;
+    emit_u(j, v);
+    diagonal -= v;
+  }
+  return true;
+}
+
 Status MMatrixLu::FactorizeByRows(const LeakySystem& a, const FactorPlan& plan,
-                                  const StopCheck& stop) {
+                                  const StopCheck& stop, int threads) {
   const int32_t n = a.size;
-  const std::vector<int32_t>& position = plan.position;
-  l_col_.reserve(plan.lower_entries);
-  l_value_.reserve(plan.lower_entries);
-  u_col_.reserve(plan.lower_entries);
-  u_value_.reserve(plan.lower_entries);
   // schur_leak[k]: the row sum of the Schur complement row that row k's U row is, which is
   // leak(k) plus the leak it inherits through L; every term is >= 0.
   std::vector<double> schur_leak(n, 0.0);
-  std::vector<double> w(n, 0.0);        // Row k of the partly eliminated matrix, scattered.
-  std::vector<int32_t> mark(n, -1);     // Row pattern walk.
-  std::vector<int32_t> touched(n, -1);  // == k iff column j of row k has been seen.
-  std::vector<int32_t> lower;
-  std::vector<int32_t> upper(static_cast<size_t>(n) + 1);  // Columns j > k seen in row k.
-  for (int32_t k = 0; k < n; ++k) {
-    if (k % kPollRows == 0) MDP_RETURN_IF_ERROR(stop.Poll());
-    const int32_t row = order_[k];
-    lower.clear();
-    int64_t uppers = 0;
-    RowSubtree(k, order_, position, plan.pattern_begin, plan.pattern, plan.parent, mark,
-               [&](int32_t r) { lower.push_back(r); });
-    std::sort(lower.begin(), lower.end());
-    // Columns j > k are collected without a branch on data (j > k and first sight vary
-    // unpredictably along a row): each j is written, and kept by advancing the count.
-    for (int64_t e = a.row_begin[row]; e < a.row_begin[row + 1]; ++e) {
-      const int32_t j = position[a.col[e]];
-      w[j] = -a.weight[e];
-      upper[uppers] = j;
-      uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(touched[j] != k);
-      touched[j] = k;
+  if (std::min<int64_t>(threads, n / kMinRowsPerThread) <= 1 ||
+      plan.multiply_adds < kBandRowWorkForThreads * static_cast<double>(n)) {
+    // One thread: the rows are appended as they come.
+    l_col_.reserve(plan.lower_entries);
+    l_value_.reserve(plan.lower_entries);
+    u_col_.reserve(plan.lower_entries);
+    u_value_.reserve(plan.lower_entries);
+    RowScratch x(n);
+    for (int32_t k = 0; k < n; ++k) {
+      if (k % kPollRows == 0) MDP_RETURN_IF_ERROR(stop.Poll());
+      double leak = 0.0, diagonal = 0.0;
+      EliminateByRows(
+          k, a, plan, schur_leak, x, [&](int32_t i) { return u_begin_[i + 1]; },
+          [](int32_t) { return true; },
+          [&](int32_t i, double l) {
+            l_col_.push_back(i);
+            l_value_.push_back(l);
+          },
+          [&](int32_t j, double v) {
+            u_col_.push_back(j);
+            u_value_.push_back(v);
+          },
+          leak, diagonal);
+      MDP_RETURN_IF_ERROR(SetPivot(k, leak, diagonal, schur_leak));
+      l_begin_[k + 1] = static_cast<int64_t>(l_col_.size());
+      u_begin_[k + 1] = static_cast<int64_t>(u_col_.size());
     }
-    // Row-oriented elimination (the i-k-j form of Gaussian elimination), in increasing order
-    // of the pivots used. Off-diagonal entries only ever receive l * u >= 0 subtracted from
-    // values <= 0: no cancellation. The diagonal, where cancellation would be, is not
-    // updated; it is recovered from the row sum below.
-    double leak = a.leak[row];
-    for (const int32_t i : lower) {
-      const double wi = w[i];
-      if (wi == 0.0) continue;
-      w[i] = 0.0;
-      const double l = wi / pivot_[i];
-      l_col_.push_back(i);
-      l_value_.push_back(l);
-      leak -= l * schur_leak[i];
-      for (int64_t e = u_begin_[i]; e < u_begin_[i + 1]; ++e) {
-        const int32_t j = u_col_[e];
-        w[j] -= l * u_value_[e];  // Into w[k] too, which is discarded.
-        upper[uppers] = j;
-        uppers += static_cast<int64_t>(j > k) & static_cast<int64_t>(touched[j] != k);
-        touched[j] = k;
-      }
-    }
-    w[k] = 0.0;
-    double diagonal = leak;
-    for (int64_t q = 0; q < uppers; ++q) {
-      const int32_t j = upper[q];
-      const double v = w[j];
-      w[j] = 0.0;
-      if (v == 0.0) continue;
-      u_col_.push_back(j);
-      u_value_.push_back(v);
-      diagonal -= v;
-    }
-    MDP_RETURN_IF_ERROR(SetPivot(k, leak, diagonal, schur_leak));
-    l_begin_[k + 1] = static_cast<int64_t>(l_col_.size());
-    u_begin_[k + 1] = static_cast<int64_t>(u_col_.size());
+    return Status::Ok();
   }
+  // Several threads: each row is written into slots sized by the plan's counts (the pattern
+  // of A + A^T, which holds A's fill), which are closed up at the end; the values, and so
+  // the factors once closed up, are the one-thread kernel's bit for bit.
+  for (int32_t k = 0; k < n; ++k) {
+    l_begin_[k + 1] = l_begin_[k] + plan.row_count[k];
+    u_begin_[k + 1] = u_begin_[k] + plan.column_count[k];
+  }
+  l_col_.resize(l_begin_[n]);
+  l_value_.resize(l_begin_[n]);
+  u_col_.resize(u_begin_[n]);
+  u_value_.resize(u_begin_[n]);
+  std::vector<int64_t> l_end(n), u_end(n);
+  RowTurns turns(n, stop);
+  const auto eliminate = [&](RowScratch& x) {
+    for (int32_t k; (k = turns.Next()) >= 0;) {
+      int64_t lf = l_begin_[k], uf = u_begin_[k];
+      double leak = 0.0, diagonal = 0.0;
+      if (!EliminateByRows(
+              k, a, plan, schur_leak, x, [&](int32_t i) { return u_end[i]; },
+              [&](int32_t i) { return turns.WaitFor(i, k); },
+              [&](int32_t i, double l) {
+                l_col_[lf] = i;
+                l_value_[lf++] = l;
+              },
+              [&](int32_t j, double v) {
+                u_col_[uf] = j;
+                u_value_[uf++] = v;
+              },
+              leak, diagonal)) {
+        return;
+      }
+      l_end[k] = lf;
+      u_end[k] = uf;
+      turns.Settle(k, leak, diagonal, schur_leak, pivot_);
+    }
+  };
+  RunOnThreads(
+      n, threads, [n] { return RowScratch(n); }, eliminate);
+  if (turns.stopped()) return turns.stop_status();
+  if (const int32_t k = turns.singular_row(); k < n) return Singular(k);
+  Pack(l_begin_, l_end, false, l_col_, l_value_);
+  Pack(u_begin_, u_end, false, u_col_, u_value_);
   return Status::Ok();
 }
 
@@ -645,52 +824,9 @@ Status MMatrixLu::FactorizeByPattern(const LeakySystem& a, const FactorPlan& pla
   u_value_.assign(u_col_.size(), 0.0);
   std::vector<double> schur_leak(n, 0.0);  // As in FactorizeByRows.
   std::vector<int64_t> u_end(n);  // Row k of U: its nonzeros are [u_begin_[k], u_end[k]).
-  // The rows are eliminated in turn by as many threads as asked for, each taking the next row
-  // not yet taken: row k waits for row i only where it is about to subtract row i, so on a
-  // dissected grid, where a separator's rows each subtract hundreds of earlier rows, the
-  // threads' rows overlap except for their last few updates. Each row's arithmetic is the
-  // same whatever thread runs it and whenever, so the factors are the same bit for bit on any
-  // number of threads.
-  std::vector<std::atomic<uint8_t>> done(n);  // Row k is final (its U row, pivot and leak).
-  std::atomic<int32_t> next_row{0};
-  // The first row found singular: rows after it are not needed, and every row before it is
-  // still finished (none waits for a later one), so the row named is the first on any
-  // number of threads.
-  std::atomic<int32_t> singular_row{n};
-  std::atomic<bool> stopped{false};  // The stop check fired: all threads give up.
-  std::mutex stop_mutex;
-  Status stop_status;
+  RowTurns turns(n, stop);
   const auto eliminate = [&](std::vector<double>& w) {
-    for (;;) {
-      const int32_t k = next_row.fetch_add(1, std::memory_order_relaxed);
-      if (k >= n || k > singular_row.load(std::memory_order_acquire) ||
-          stopped.load(std::memory_order_acquire)) {
-        return;
-      }
-      if (k % kPollRows == 0) {
-        if (Status poll = stop.Poll(); !poll.ok()) {
-          const std::lock_guard<std::mutex> lock(stop_mutex);
-          if (!stopped.load(std::memory_order_relaxed)) stop_status = std::move(poll);
-          stopped.store(true, std::memory_order_release);
-          return;
-        }
-      }
-      // False if row k must give up waiting for row i (the stop check fired, or row k is past
-      // the first singular row and row i may never come).
-      const auto wait_for = [&](int32_t i) {
-        for (int spins = 0; !done[i].load(std::memory_order_acquire); ++spins) {
-          if (stopped.load(std::memory_order_relaxed) ||
-              k > singular_row.load(std::memory_order_relaxed)) {
-            return false;
-          }
-          if (spins < kSpinsBeforeYield) {
-            SpinPause();
-          } else {
-            std::this_thread::yield();
-          }
-        }
-        return true;
-      };
+    for (int32_t k; (k = turns.Next()) >= 0;) {
       const int32_t row = order_[k];
       for (int64_t e = a.row_begin[row]; e < a.row_begin[row + 1]; ++e) {
         w[position[a.col[e]]] = -a.weight[e];
@@ -702,7 +838,7 @@ Status MMatrixLu::FactorizeByPattern(const LeakySystem& a, const FactorPlan& pla
         const double wi = w[i];
         if (wi == 0.0) continue;
         w[i] = 0.0;
-        if (!wait_for(i)) {
+        if (!turns.WaitFor(i, k)) {
           std::fill(w.begin(), w.end(), 0.0);
           return;
         }
@@ -728,34 +864,17 @@ Status MMatrixLu::FactorizeByPattern(const LeakySystem& a, const FactorPlan& pla
         diagonal -= v;
       }
       u_end[k] = kept;
-      if (PivotOk(diagonal)) {
-        schur_leak[k] = leak;
-        pivot_[k] = diagonal;
-      } else {
-        int32_t first = singular_row.load(std::memory_order_relaxed);
-        while (k < first && !singular_row.compare_exchange_weak(first, k)) {
-        }
-      }
-      done[k].store(1, std::memory_order_release);
+      turns.Settle(k, leak, diagonal, schur_leak, pivot_);
     }
   };
-  const int workers = static_cast<int>(std::min<int64_t>(threads, n / kMinRowsPerThread));
-  if (workers > 1) {
-#pragma omp parallel num_threads(workers)
-    {
-      std::vector<double> w(n, 0.0);
-      eliminate(w);
-    }
-  } else {
-    std::vector<double> w(n, 0.0);
-    eliminate(w);
-  }
-  if (stopped.load()) return stop_status;
-  if (const int32_t k = singular_row.load(); k < n) return Singular(k);
+  RunOnThreads(
+      n, threads, [n] { return std::vector<double>(n, 0.0); }, eliminate);
+  if (turns.stopped()) return turns.stop_status();
+  if (const int32_t k = turns.singular_row(); k < n) return Singular(k);
   // The solves skip the entries that stayed 0 too.
   std::vector<int64_t> l_end(l_begin_.begin() + 1, l_begin_.end());
-  DropZeros(l_begin_, l_end, l_col_, l_value_);
-  DropZeros(u_begin_, u_end, u_col_, u_value_);
+  Pack(l_begin_, l_end, true, l_col_, l_value_);
+  Pack(u_begin_, u_end, true, u_col_, u_value_);
   return Status::Ok();
 }
 

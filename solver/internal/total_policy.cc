@@ -53,7 +53,7 @@ void TotalPolicyMatrix::Assign(const Model& m, const std::vector<StateId>& state
 }
 
 Status TotalPolicyMatrix::Factor(double budget_bytes, double max_multiply_adds,
-                                 const StopCheck& stop) {
+                                 const StopCheck& stop, int threads) {
   factored_ = false;
   const int64_t n = size();
   LeakySystem system;
@@ -78,7 +78,7 @@ Status TotalPolicyMatrix::Factor(double budget_bytes, double max_multiply_adds,
   if (!plan.complete || plan.bytes() > budget_bytes || plan.multiply_adds > max_multiply_adds) {
     return Status::Ok();
   }
-  const Status status = factors_.Factorize(system, std::move(plan), stop);
+  const Status status = factors_.Factorize(system, std::move(plan), stop, threads);
   factored_ = status.ok();
   if (!factored_) factors_ = MMatrixLu();
   if (status.code() == StatusCode::kCancelled || status.code() == StatusCode::kDeadlineExceeded) {

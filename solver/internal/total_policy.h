@@ -52,7 +52,8 @@ class TotalPolicyMatrix {
   // counted before a byte is spent on it) if the factors take at most budget_bytes and
   // max_multiply_adds; else, or if a pivot is not positive, leaves the policy unfactored.
   // Returns kCancelled or kDeadlineExceeded (unfactored) if `stop` fires while it factors.
-  Status Factor(double budget_bytes, double max_multiply_adds, const StopCheck& stop);
+  // Factors on `threads` threads (>= 1), the same factors on any number.
+  Status Factor(double budget_bytes, double max_multiply_adds, const StopCheck& stop, int threads);
   bool factored() const { return factored_; }
   // x <- (I - P)^-1 x, up to rounding. REQUIRES: factored().
   void SolveFactored(std::span<double> x) const { factors_.Solve(x); }

@@ -392,14 +392,12 @@ TEST(MMatrixLuTest, ASetThatNeverLeaksIsNamed) {
   EXPECT_LE(lu.singular_at(), 2);
 }
 
-// A dissected grid large enough that FactorizeByPattern splits its rows between threads
-// (at least 4,096 rows per thread): on 2 and 3 threads the factors solve as Eigen's sparse LU
-// does, and give the very bits of the one-thread factors.
-TEST(MMatrixLuTest, DissectedFactorsAreTheSameOnAnyThreadCount) {
+// A grid large enough that the factorisation splits its rows between threads (at least
+// 4,096 rows per thread), in both orders (a band: FactorizeByRows; dissected:
+// FactorizeByPattern): on 2 and 3 threads the factors solve as Eigen's sparse LU does, and
+// give the very bits of the one-thread factors.
+TEST(MMatrixLuTest, FactorsAreTheSameOnAnyThreadCount) {
   const LeakySystem a = GridLeakySystem(11, 110);  // 12,100 unknowns.
-  const FactorPlan plan = PlanFactors(a, kNoCap, FactorOrdering::kDissection);
-  ASSERT_TRUE(plan.complete);
-  ASSERT_EQ(plan.ordering, FactorOrdering::kDissection);
   const Eigen::SparseMatrix<double> matrix = Assemble(a);
   Eigen::SparseLU<Eigen::SparseMatrix<double>> reference;
   reference.compute(matrix);
@@ -408,29 +406,43 @@ TEST(MMatrixLuTest, DissectedFactorsAreTheSameOnAnyThreadCount) {
   Eigen::VectorXd b(a.size);
   for (int32_t i = 0; i < a.size; ++i) b[i] = static_cast<double>(rng() % 2001) / 1000.0 - 1.0;
   const Eigen::VectorXd want = reference.solve(b);
-  std::vector<Eigen::VectorXd> x, z;
-  for (const int threads : {1, 2, 3}) {
-    SCOPED_TRACE(::testing::Message() << threads << " threads");
-    MMatrixLu lu;
-    ASSERT_OK(lu.Factorize(a, plan, StopCheck{}, threads));
-    x.push_back(b);
-    lu.Solve(std::span<double>(x.back().data(), x.back().size()));
-    EXPECT_LE((x.back() - want).lpNorm<Eigen::Infinity>(),
-              1e-9 * (1.0 + want.lpNorm<Eigen::Infinity>()));
-    z.push_back(b);
-    lu.SolveTransposed(std::span<double>(z.back().data(), z.back().size()));
-  }
-  for (size_t k = 1; k < x.size(); ++k) {
-    for (int32_t i = 0; i < a.size; ++i) {
-      ASSERT_EQ(x[k][i], x[0][i]) << "unknown " << i << ", run " << k;
-      ASSERT_EQ(z[k][i], z[0][i]) << "unknown " << i << ", run " << k;
+  for (const FactorOrdering ordering :
+       {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
+    const FactorPlan plan = PlanFactors(a, kNoCap, ordering);
+    ASSERT_TRUE(plan.complete);
+    ASSERT_EQ(plan.ordering, ordering);
+    if (ordering == FactorOrdering::kCuthillMcKee) {  // A band wide enough for threads.
+      ASSERT_GE(plan.multiply_adds, internal::kBandRowWorkForThreads * a.size);
+    }
+    std::vector<Eigen::VectorXd> x, z;
+    std::vector<int64_t> entries;
+    for (const int threads : {1, 2, 3}) {
+      SCOPED_TRACE(::testing::Message()
+                   << "ordering " << static_cast<int>(ordering) << ", " << threads << " threads");
+      MMatrixLu lu;
+      ASSERT_OK(lu.Factorize(a, plan, StopCheck{}, threads));
+      entries.push_back(lu.lower_entries() + lu.upper_entries());
+      x.push_back(b);
+      lu.Solve(std::span<double>(x.back().data(), x.back().size()));
+      EXPECT_LE((x.back() - want).lpNorm<Eigen::Infinity>(),
+                1e-9 * (1.0 + want.lpNorm<Eigen::Infinity>()));
+      z.push_back(b);
+      lu.SolveTransposed(std::span<double>(z.back().data(), z.back().size()));
+    }
+    for (size_t k = 1; k < x.size(); ++k) {
+      EXPECT_EQ(entries[k], entries[0]);
+      for (int32_t i = 0; i < a.size; ++i) {
+        ASSERT_EQ(x[k][i], x[0][i]) << "unknown " << i << ", run " << k;
+        ASSERT_EQ(z[k][i], z[0][i]) << "unknown " << i << ", run " << k;
+      }
     }
   }
 }
 
 // The same grid with a closed corner: the unknowns of the 12 x 12 corner at the origin move
-// only among themselves and never leak. Whatever the number of threads, the factorisation
-// names the same unknown, one of the corner's; rows after it that wait for it give up.
+// only among themselves and never leak. Whatever the order and the number of threads, the
+// factorisation names the same unknown, one of the corner's; rows after it that wait for it
+// give up.
 TEST(MMatrixLuTest, ASetThatNeverLeaksIsNamedTheSameOnAnyThreadCount) {
   const int32_t side = 110, corner = 12;
   LeakySystem a = GridLeakySystem(12, side);
@@ -450,19 +462,26 @@ TEST(MMatrixLuTest, ASetThatNeverLeaksIsNamedTheSameOnAnyThreadCount) {
     if (inside && kept == 0.0) FAIL() << "corner unknown " << i << " has no entries";
     closed.row_begin.push_back(static_cast<int64_t>(closed.col.size()));
   }
-  const FactorPlan plan = PlanFactors(closed, kNoCap, FactorOrdering::kDissection);
-  ASSERT_TRUE(plan.complete);
-  std::vector<int32_t> named;
-  for (const int threads : {1, 2, 3}) {
-    MMatrixLu lu;
-    EXPECT_EQ(lu.Factorize(closed, plan, StopCheck{}, threads).code(),
-              StatusCode::kFailedPrecondition);
-    named.push_back(lu.singular_at());
+  for (const FactorOrdering ordering :
+       {FactorOrdering::kCuthillMcKee, FactorOrdering::kDissection}) {
+    SCOPED_TRACE(::testing::Message() << "ordering " << static_cast<int>(ordering));
+    const FactorPlan plan = PlanFactors(closed, kNoCap, ordering);
+    ASSERT_TRUE(plan.complete);
+    if (ordering == FactorOrdering::kCuthillMcKee) {
+      ASSERT_GE(plan.multiply_adds, internal::kBandRowWorkForThreads * closed.size);
+    }
+    std::vector<int32_t> named;
+    for (const int threads : {1, 2, 3}) {
+      MMatrixLu lu;
+      EXPECT_EQ(lu.Factorize(closed, plan, StopCheck{}, threads).code(),
+                StatusCode::kFailedPrecondition);
+      named.push_back(lu.singular_at());
+    }
+    EXPECT_LT(named[0] / side, corner);
+    EXPECT_LT(named[0] % side, corner);
+    EXPECT_EQ(named[1], named[0]);
+    EXPECT_EQ(named[2], named[0]);
   }
-  EXPECT_LT(named[0] / side, corner);
-  EXPECT_LT(named[0] % side, corner);
-  EXPECT_EQ(named[1], named[0]);
-  EXPECT_EQ(named[2], named[0]);
 }
 
 TEST(MMatrixLuTest, FactorizationHearsStop) {
@@ -478,8 +497,12 @@ TEST(MMatrixLuTest, FactorizationHearsStop) {
   // On threads too.
   const LeakySystem grid = GridLeakySystem(9, 100);
   const FactorPlan dissected = PlanFactors(grid, kNoCap, FactorOrdering::kDissection);
-  EXPECT_EQ(lu.Factorize(grid, dissected, StopCheck{&cancel}, 2).code(), StatusCode::kCancelled);
-  EXPECT_EQ(lu.Factorize(grid, dissected, past, 2).code(), StatusCode::kDeadlineExceeded);
+  const FactorPlan band = PlanFactors(grid, kNoCap, FactorOrdering::kCuthillMcKee);
+  ASSERT_GE(band.multiply_adds, internal::kBandRowWorkForThreads * grid.size);
+  for (const FactorPlan* plan : {&dissected, &band}) {
+    EXPECT_EQ(lu.Factorize(grid, *plan, StopCheck{&cancel}, 2).code(), StatusCode::kCancelled);
+    EXPECT_EQ(lu.Factorize(grid, *plan, past, 2).code(), StatusCode::kDeadlineExceeded);
+  }
 }
 
 TEST(MMatrixLuTest, PlanGivesUpOnAnExpanderAndCountsABand) {

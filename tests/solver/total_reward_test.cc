@@ -1017,7 +1017,7 @@ TEST(TotalRewardLargeTest, PolicySolvesAgreeWithSparseLu) {
     internal::TotalPolicyMatrix p;
     p.Assign(*c.model, f.states, f.local, f.rows, 1);
     if (c.factor_work > 0) {
-      EXPECT_OK(p.Factor(64e6, c.factor_work, internal::StopCheck()));
+      EXPECT_OK(p.Factor(64e6, c.factor_work, internal::StopCheck(), 1));
     }
     EXPECT_EQ(p.factored(), c.factored);
     internal::TotalSolvePlan plan;
@@ -1048,7 +1048,7 @@ TEST(TotalRewardLargeTest, AnInterruptedPolicySolveReportsAnHonestResidual) {
     stop.cancel = &cancelled;
     internal::TotalPolicyMatrix p;
     p.Assign(chain, f.states, f.local, f.rows, 1);
-    EXPECT_EQ(p.Factor(64e6, 1e8, stop).code(), StatusCode::kCancelled);
+    EXPECT_EQ(p.Factor(64e6, 1e8, stop, 1).code(), StatusCode::kCancelled);
     EXPECT_FALSE(p.factored());
   }
   for (bool sweeps_only : {false, true}) {
