@@ -527,11 +527,12 @@ void CountFactors(FactorPlan& plan, int64_t max_lower_entries) {
   int64_t total = 0;
   plan.complete = false;
   for (int32_t k = 0; k < n; ++k) {
+    const int64_t before = total;
     RowSubtree(k, plan.order, plan.position, begin, adj, plan.parent, mark, [&](int32_t r) {
       ++count[r];
-      ++plan.row_count[k];
       ++total;
     });
+    plan.row_count[k] = static_cast<int32_t>(total - before);
     if (total > max_lower_entries) return;
   }
   plan.lower_entries = total;
