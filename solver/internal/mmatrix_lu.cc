@@ -15,8 +15,8 @@ namespace {
 // a 1M-state ring's factors takes about a microsecond).
 constexpr int32_t kPollRows = 256;
 
-// FactorizeByPattern on several threads: at least this many rows per thread, and this many
-// spins waiting for a row before the waiting thread yields its core.
+// A factorisation on several threads (RowTurns): at least this many rows per thread, and
+// this many spins waiting for a row before the waiting thread yields its core.
 constexpr int32_t kMinRowsPerThread = 4096;
 constexpr int kSpinsBeforeYield = 4096;
 
