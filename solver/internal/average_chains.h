@@ -100,8 +100,8 @@ bool FactorsFit(const FactorPlan& plan, int64_t entries, double budget_bytes, bo
 // `previous` (may be empty) is a warm start and gives the anchors of the factored solves.
 // Returns kCancelled or kDeadlineExceeded when `stop` says so (polled inside factorisations
 // and between rounds of BiCGSTAB), kInternal if a linear solve fails. `counts` may be null.
-// Factorisations of dissected systems run on `threads` threads (>= 1, as resolved; the same
-// results on any number).
+// Factorisations run on up to `threads` threads (>= 1, as resolved; MMatrixLu::Factorize,
+// the same results on any number).
 Status EvaluateAverage(const Model& m, std::span<const RowId> rows, double target,
                        const StopCheck& stop, const AverageEvaluation& previous,
                        AverageEvaluation& out, AverageSolveCounts* counts = nullptr,

@@ -110,11 +110,17 @@ class RowTurns {
   Status stop_status_;
 };
 
-// Runs eliminate(scratch) on up to `threads` threads, fewer so that each has at least
-// kMinRowsPerThread of the n rows; each thread makes its own scratch first.
+// The threads an elimination of n rows runs on: up to `threads`, fewer so that each has at
+// least kMinRowsPerThread rows.
+int Workers(int32_t n, int threads) {
+  return static_cast<int>(std::max<int64_t>(1, std::min<int64_t>(threads, n / kMinRowsPerThread)));
+}
+
+// Runs eliminate(scratch) on Workers(n, threads) threads; each thread makes its own scratch
+// first.
 template <typename MakeScratch, typename Eliminate>
 void RunOnThreads(int32_t n, int threads, MakeScratch make_scratch, Eliminate eliminate) {
-  const int workers = static_cast<int>(std::min<int64_t>(threads, n / kMinRowsPerThread));
+  const int workers = Workers(n, threads);
   if (workers > 1) {
 #pragma omp parallel num_threads(workers)
     {
@@ -717,7 +723,7 @@ Status MMatrixLu::FactorizeByRows(const LeakySystem& a, const FactorPlan& plan,
   // schur_leak[k]: the row sum of the Schur complement row that row k's U row is, which is
   // leak(k) plus the leak it inherits through L; every term is >= 0.
   std::vector<double> schur_leak(n, 0.0);
-  if (std::min<int64_t>(threads, n / kMinRowsPerThread) <= 1 ||
+  if (Workers(n, threads) == 1 ||
       plan.multiply_adds < kBandRowWorkForThreads * static_cast<double>(n)) {
     // One thread: the rows are appended as they come.
     l_col_.reserve(plan.lower_entries);
